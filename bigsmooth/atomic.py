@@ -1,0 +1,77 @@
+"""Atomic writes: a file is either complete or absent, never partial.
+
+Every write goes to a temporary sibling, is fsync'd, renamed into place with
+``os.replace`` and the directory is fsync'd, so a crash never leaves a file
+that looks finished.
+"""
+import contextlib
+import json
+import os
+import tempfile
+
+import numpy as np
+
+
+def fsync_dir(path):
+    """fsync a directory so that a rename inside it is durable."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+@contextlib.contextmanager
+def atomic_path(target):
+    """Yield a temporary path beside ``target``; on success rename it into place.
+
+    On an exception the temporary file is removed and ``target`` is untouched.
+    """
+    target = os.fspath(target)
+    parent = os.path.dirname(os.path.abspath(target))
+    os.makedirs(parent, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(target) + ".", suffix=".tmp", dir=parent)
+    os.close(fd)
+    try:
+        yield tmp
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, target)
+        fsync_dir(parent)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+
+
+def write_bytes(target, data):
+    with atomic_path(target) as tmp:
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+
+
+def write_json(target, obj):
+    write_bytes(target, (json.dumps(obj, indent=2, sort_keys=True, default=_json_default) + "\n").encode())
+
+
+def read_json(path):
+    with open(path, "rb") as fh:
+        return json.load(fh)
+
+
+def save_npy(target, array):
+    with atomic_path(target) as tmp:
+        with open(tmp, "wb") as fh:
+            np.save(fh, np.asarray(array), allow_pickle=False)
+
+
+def _json_default(obj):
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return float(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")

@@ -1,0 +1,170 @@
+"""Command line: parses arguments and calls the pipeline; no work of its own."""
+import argparse
+import json
+import logging
+import os
+import sys
+import time
+import traceback
+
+from . import __version__
+from .errors import EXIT_CODES, EXIT_OK, EXIT_SOFTWARE, EXIT_USAGE, BigsmoothError
+
+log = logging.getLogger("bigsmooth")
+
+EPILOG = "exit codes:\n" + "\n".join(f"  {code:>3}  {what}" for code, what in EXIT_CODES.items())
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # bad usage: sysexits EX_USAGE rather than argparse's 2
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+
+
+def build_parser():
+    p = _Parser(prog="bigsmooth", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+                description="Nightly post-processing of model scores so that similar people get similar "
+                            "scores: reads a scored Parquet table, builds a neighbour graph in a fair "
+                            "feature space that ignores protected attributes, smooths the scores over the "
+                            "graph (graph-Laplacian smoothing) and publishes the adjusted scores with an "
+                            "audit.")
+    p.add_argument("--version", action="version", version=f"bigsmooth {__version__}")
+    p.add_argument("-q", "--quiet", action="store_true", help="log warnings and errors only")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    r = sub.add_parser("run", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+                       help="run (or resume) the job described by a config file",
+                       description="Run the job described by CONFIG (TOML; see configs/template.toml). "
+                                   "The run directory is named by a hash of the settings and the input "
+                                   "files: the same config and input resume an interrupted run, and a "
+                                   "finished one is not redone.")
+    r.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
+    r.add_argument("--fresh", action="store_true", help="discard any earlier state of this run and start over")
+
+    d = sub.add_parser("demo", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+                       help="generate the synthetic demo table and run the job on it",
+                       description="Generate a synthetic nightly tenancy pre-screen of a fictional housing "
+                                   "co-operative (hive-partitioned Parquet under DIR/data), write its config "
+                                   "to DIR/bigsmooth.toml and run the job. Prints where the output and the "
+                                   "audit are.")
+    d.add_argument("--rows", type=int, default=200_000, help="applicants to generate (default 200000)")
+    d.add_argument("--dir", default="bigsmooth-demo", help="folder for the demo's data, runs and output "
+                                                          "(default ./bigsmooth-demo)")
+    d.add_argument("--seed", type=int, default=7, help="seed of the generated data (default 7)")
+
+    s = sub.add_parser("status", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+                       help="show the stages, timings and solver record of a run directory",
+                       description="Print each stage's state and timing and the solver's convergence "
+                                   "record for RUN_DIR (a folder under run.dir holding manifest.json).")
+    s.add_argument("run_dir", metavar="RUN_DIR")
+    s.add_argument("--json", action="store_true", help="print the manifest as JSON instead")
+    return p
+
+
+def _setup_logging(quiet):
+    handler = logging.StreamHandler(sys.stderr)
+    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s", "%Y-%m-%dT%H:%M:%SZ")
+    fmt.converter = time.gmtime
+    handler.setFormatter(fmt)
+    root = logging.getLogger("bigsmooth")
+    root.handlers[:] = [handler]
+    root.setLevel(logging.WARNING if quiet else logging.INFO)
+    root.propagate = False
+
+
+def _print_result(res):
+    from .atomic import read_json
+    from .stages.audit import summary_lines
+
+    out = res["output"]
+    report = read_json(os.path.join(out, "_audit.json"))
+    if res["already_complete"]:
+        print(f"run {res['run_id']} was already complete; nothing done.")
+    else:
+        for line in summary_lines(report):
+            print(line)
+    print(f"output:    {out}")
+    print(f"audit:     {os.path.join(out, '_audit.json')}")
+    print(f"run dir:   {res['run_dir']}")
+
+
+def cmd_run(args):
+    from .pipeline import run_job
+
+    _print_result(run_job(args.config, fresh=args.fresh))
+    return EXIT_OK
+
+
+def cmd_demo(args):
+    from . import demo
+    from .pipeline import run_job
+
+    if args.rows < 100:
+        raise BigsmoothError("--rows must be at least 100")
+    base = os.path.abspath(args.dir)
+    data = os.path.join(base, "data", "applicants")
+    if not os.path.isdir(data) or not os.listdir(data):
+        log.info("generating %d synthetic applicants under %s", args.rows, data)
+        demo.write_demo_table(data, args.rows, seed=args.seed)
+    else:
+        log.info("using the demo table already under %s (delete the folder to regenerate)", data)
+    cfg_path = demo.write_demo_config(os.path.join(base, "bigsmooth.toml"), "data/applicants", "output", "runs")
+    print(f"demo config: {cfg_path}")
+    _print_result(run_job(cfg_path))
+    return EXIT_OK
+
+
+def cmd_status(args):
+    from .atomic import read_json
+
+    path = os.path.join(args.run_dir, "manifest.json")
+    if not os.path.exists(path):
+        from .errors import InputMissingError
+        raise InputMissingError(f"{args.run_dir} is not a run directory (no manifest.json)")
+    m = read_json(path)
+    if args.json:
+        print(json.dumps(m, indent=2))
+        return EXIT_OK
+    print(f"run {m['run_id']}  created {m['created']}  input {m['input']['rows']} rows in "
+          f"{len(m['input']['files'])} files")
+    print(f"{'stage':<9} {'state':<8} {'seconds':>9}")
+    for name, st in m["stages"].items():
+        secs = f"{st['seconds']:.1f}" if "seconds" in st else "-"
+        print(f"{name:<9} {st['state']:<8} {secs:>9}" + (f"  {st['error']}" if st.get("error") else ""))
+    sol = os.path.join(args.run_dir, "solve", "solve.json")
+    ck = os.path.join(args.run_dir, "checkpoint", "solver.npz")
+    if os.path.exists(sol):
+        s = read_json(sol)
+        print(f"solver: {s['method']} ({s['laplacian']}, lam={s['lam']:g}) {s['status']} after {s['sweeps']} "
+              f"sweeps; final relative residual {s['final_residual']:.3e}")
+        res = s["residuals"]
+        step = max(1, len(res) // 20)
+        for i in list(range(0, len(res), step)) + ([len(res) - 1] if (len(res) - 1) % step else []):
+            print(f"  sweep {i:>5}  residual {res[i]:.3e}")
+    elif os.path.exists(ck):
+        from .stages.solve import load_checkpoint
+        c = load_checkpoint(ck)
+        print(f"solver: in progress; checkpoint after sweep {c['sweep']}, residual {c['residuals'][-1]:.3e}")
+    return EXIT_OK
+
+
+def main(argv=None):
+    os.environ.setdefault("NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba"))
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not args.command:
+        parser.print_help(sys.stderr)
+        return EXIT_USAGE
+    _setup_logging(args.quiet)
+    try:
+        return {"run": cmd_run, "demo": cmd_demo, "status": cmd_status}[args.command](args)
+    except BigsmoothError as exc:
+        print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)
+        return exc.exit_code if exc.exit_code != EXIT_SOFTWARE else EXIT_USAGE
+    except KeyboardInterrupt:
+        print("bigsmooth: interrupted; run the same command again to resume", file=sys.stderr)
+        return 130
+    except Exception:
+        traceback.print_exc()
+        print("bigsmooth: internal error (a bug); the run can be resumed after it is fixed", file=sys.stderr)
+        return EXIT_SOFTWARE

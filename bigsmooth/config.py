@@ -1,0 +1,224 @@
+"""The job's configuration: declared rules, one place that checks them, and the run's identity.
+
+Each section's rules are data (:data:`RULES`): type, default, allowed range or choices and a
+one-line description. :func:`load_config` reads a TOML file, fills defaults, checks every value
+against its rule and returns a plain nested dict. Relative paths are taken relative to the
+config file's folder.
+"""
+import difflib
+import hashlib
+import json
+import math
+import os
+import tomllib
+from dataclasses import dataclass, field
+
+from .errors import ConfigError
+
+REQUIRED = object()
+
+
+@dataclass(frozen=True)
+class Rule:
+    kind: str                      # "int", "float", "str", "bool", "list[str]", "table[float]", "range"
+    default: object = REQUIRED
+    lo: float | None = None
+    hi: float | None = None
+    choices: tuple | None = None
+    doc: str = ""
+    affects_result: bool = True    # part of the run identity hash
+    nullable: bool = False
+    extra: dict = field(default_factory=dict)
+
+
+RULES = {
+    "input": {
+        "path": Rule("str", doc="Parquet file, folder (searched recursively) or glob of the night's scored table"),
+        "id": Rule("str", doc="column with a unique id per row (integer or string)"),
+        "scores": Rule("list[str]", doc="score column(s); several columns are smoothed together (e.g. one per class)"),
+        "score_range": Rule("range", default=[0.0, 1.0], doc="declared [min, max] of the scores; values outside are bad data"),
+        "numeric_features": Rule("list[str]", default=[], doc="numeric feature columns used to decide who is similar"),
+        "categorical_features": Rule("list[str]", default=[], doc="categorical feature columns (one-hot encoded)"),
+        "protected": Rule("list[str]", doc="protected-attribute columns; used only to define what the fair space ignores"),
+        "label": Rule("str", default="", doc="optional column of known outcomes (0/1, null where unknown); used by the audit only"),
+    },
+    "embed": {
+        "remove_sensitive": Rule("bool", default=True, doc="project out the feature directions that predict each protected attribute"),
+        "components": Rule("int", default=0, lo=0, hi=1000, doc="keep this many principal components of the fair space (0 = keep all)"),
+        "feature_weights": Rule("table[float]", default={}, lo=0.0, hi=1e6, doc="per-feature multipliers applied after standardising (missing = 1)"),
+        "leakage_warn_auc": Rule("float", default=0.65, lo=0.5, hi=1.0, doc="warn when a linear probe on the fair space predicts a protected attribute with AUC above this", affects_result=False),
+        "probe_rows": Rule("int", default=50000, lo=100, hi=10_000_000, doc="rows sampled for the leakage probe"),
+        "batch_rows": Rule("int", default=65536, lo=1, hi=10_000_000, doc="rows per streamed record batch", affects_result=False),
+    },
+    "graph": {
+        "neighbours": Rule("int", default=10, lo=1, hi=200, doc="nearest neighbours per row before symmetrising"),
+        "exact_below": Rule("int", default=20000, lo=0, hi=1_000_000, doc="use exact brute-force neighbours when the table has fewer rows than this"),
+        "kernel_scale": Rule("str", default="global", choices=("global", "local"), doc="heat-kernel scale: 'global' sigma = median neighbour distance; 'local' sigma_i = distance to the row's min(7,k)-th neighbour"),
+        "scale_factor": Rule("float", default=1.0, lo=1e-6, hi=1e6, doc="multiplies the heat-kernel scale (larger = flatter weights)"),
+        "index_trees": Rule("int", default=0, lo=0, hi=64, doc="random-projection trees for the approximate index (0 = pynndescent's default)"),
+    },
+    "solve": {
+        "laplacian": Rule("str", default="unnormalised", choices=("unnormalised", "random_walk"), doc="C = I (unnormalised) or C = D (random-walk normalised)"),
+        "lam": Rule("float", default=1.0, lo=0.0, hi=1e9, doc="smoothing strength lambda (0 changes nothing)"),
+        "method": Rule("str", default="blocks", choices=("blocks", "direct"), doc="'blocks' = blocked coordinate descent; 'direct' = sparse direct solve (small tables, reference)"),
+        "block_rows": Rule("int", default=4096, lo=1, hi=10_000_000, doc="rows per block of the coordinate-descent solver"),
+        "block_solve": Rule("str", default="exact", choices=("exact", "sweeps"), doc="solve each block exactly (sparse LU) or by inner Gauss-Seidel sweeps"),
+        "inner_sweeps": Rule("int", default=2, lo=1, hi=1000, doc="inner Gauss-Seidel sweeps per block when block_solve = 'sweeps'"),
+        "tol": Rule("float", default=1e-6, lo=1e-15, hi=1.0, doc="stop when ||C y - A f|| / ||C y|| falls below this"),
+        "max_sweeps": Rule("int", default=500, lo=1, hi=1_000_000, doc="cap on outer sweeps; hitting it warns and is recorded"),
+    },
+    "output": {
+        "path": Rule("str", doc="output folder; each run writes a new version folder inside it and then moves the 'current' pointer"),
+        "include_protected": Rule("bool", default=False, doc="copy the protected-attribute columns into the output"),
+        "suffix": Rule("str", default="_adjusted", doc="suffix of the adjusted score columns (the change column ends in '_change')"),
+    },
+    "audit": {
+        "select_rate": Rule("float", default=0.3, lo=1e-6, hi=1.0, doc="share of rows selected (highest scores) at the quantile cutoff used for decisions", affects_result=False),
+        "min_group_rows": Rule("int", default=10, lo=1, hi=1_000_000, doc="groups smaller than this are suppressed in the audit", affects_result=False),
+        "top_changes": Rule("int", default=10, lo=0, hi=10000, doc="list this many largest changes (ids) in the audit", affects_result=False),
+    },
+    "run": {
+        "dir": Rule("str", default="runs", doc="folder holding one run directory per (config, input) pair", affects_result=False),
+        "seed": Rule("int", default=0, lo=0, hi=2**32 - 1, doc="seed of every random choice (neighbour index, probe sample)"),
+    },
+}
+
+PATH_KEYS = {("input", "path"), ("output", "path"), ("run", "dir")}
+
+
+def _suggest(word, candidates):
+    close = difflib.get_close_matches(word, list(candidates), n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else ""
+
+
+def _check(section, key, rule, value):
+    name = f"{section}.{key}"
+
+    def fail(expect):
+        raise ConfigError(f"{name} must be {expect}; got {value!r}")
+
+    k = rule.kind
+    if k == "bool":
+        if not isinstance(value, bool):
+            fail("true or false")
+        return value
+    if k == "int":
+        if isinstance(value, bool) or not isinstance(value, int) or not (rule.lo <= value <= rule.hi):
+            fail(f"an integer in [{rule.lo}, {rule.hi}]")
+        return value
+    if k == "float":
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) \
+                or not (rule.lo <= value <= rule.hi):
+            fail(f"a number in [{rule.lo:g}, {rule.hi:g}]")
+        return float(value)
+    if k == "str":
+        if not isinstance(value, str):
+            fail("a string")
+        if rule.choices and value not in rule.choices:
+            fail("one of " + ", ".join(repr(c) for c in rule.choices))
+        return value
+    if k == "list[str]":
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) and v for v in value):
+            fail("a list of column names")
+        if len(set(value)) != len(value):
+            fail("a list without repeats")
+        return list(value)
+    if k == "range":
+        if (not isinstance(value, list) or len(value) != 2
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in value)
+                or not value[0] < value[1]):
+            fail("[min, max] with min < max")
+        return [float(value[0]), float(value[1])]
+    if k == "table[float]":
+        if not isinstance(value, dict):
+            fail("a table of feature = weight")
+        out = {}
+        for f, w in value.items():
+            if isinstance(w, bool) or not isinstance(w, (int, float)) or not (rule.lo <= w <= rule.hi):
+                raise ConfigError(f"{name}.{f} must be a number in [{rule.lo:g}, {rule.hi:g}]; got {w!r}")
+            out[f] = float(w)
+        return out
+    raise AssertionError(k)
+
+
+def validate(raw, base_dir="."):
+    """Check a raw config dict against :data:`RULES`; return the filled config."""
+    if not isinstance(raw, dict):
+        raise ConfigError("the config must be a TOML table")
+    for section in raw:
+        if section not in RULES:
+            raise ConfigError(f"unknown config section [{section}]{_suggest(section, RULES)}; "
+                              f"known sections: {', '.join(RULES)}")
+    cfg = {}
+    for section, rules in RULES.items():
+        given = raw.get(section, {})
+        if not isinstance(given, dict):
+            raise ConfigError(f"[{section}] must be a table")
+        for key in given:
+            if key not in rules:
+                raise ConfigError(f"unknown key {section}.{key}{_suggest(key, rules)}; "
+                                  f"known keys in [{section}]: {', '.join(rules)}")
+        out = {}
+        for key, rule in rules.items():
+            if key in given:
+                value = _check(section, key, rule, given[key])
+            elif rule.default is REQUIRED:
+                raise ConfigError(f"{section}.{key} is required ({rule.doc})")
+            else:
+                value = json.loads(json.dumps(rule.default))
+            if (section, key) in PATH_KEYS and not any(c in value for c in "*?[") and not os.path.isabs(value):
+                value = os.path.normpath(os.path.join(base_dir, value))
+            elif (section, key) in PATH_KEYS and not os.path.isabs(value):
+                value = os.path.join(os.path.abspath(base_dir), value)
+            out[key] = value
+        cfg[section] = out
+    _cross_checks(cfg)
+    return cfg
+
+
+def _cross_checks(cfg):
+    inp = cfg["input"]
+    feats = inp["numeric_features"] + inp["categorical_features"]
+    if not feats:
+        raise ConfigError("input.numeric_features and input.categorical_features are both empty; "
+                          "at least one feature column is needed to decide who is similar")
+    roles = [("id", [inp["id"]]), ("scores", inp["scores"]), ("numeric_features", inp["numeric_features"]),
+             ("categorical_features", inp["categorical_features"]), ("protected", inp["protected"]),
+             ("label", [inp["label"]] if inp["label"] else [])]
+    seen = {}
+    for role, cols in roles:
+        for c in cols:
+            if c in seen:
+                raise ConfigError(f"column {c!r} is given as both input.{seen[c]} and input.{role}; "
+                                  "each column has one role (protected attributes must not be features)")
+            seen[c] = role
+    for f in cfg["embed"]["feature_weights"]:
+        if f not in feats:
+            raise ConfigError(f"embed.feature_weights names {f!r}, which is not a feature{_suggest(f, feats)}")
+    if os.path.abspath(cfg["output"]["path"]) == os.path.abspath(inp["path"]):
+        raise ConfigError("output.path must differ from input.path")
+
+
+def load_config(path):
+    """Read and check a TOML config file. Raises :class:`ConfigError`."""
+    path = os.fspath(path)
+    try:
+        with open(path, "rb") as fh:
+            raw = tomllib.load(fh)
+    except FileNotFoundError:
+        raise ConfigError(f"config file not found: {path}") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
+    return validate(raw, base_dir=os.path.dirname(os.path.abspath(path)))
+
+
+def result_settings(cfg):
+    """The settings that change results (the run identity), as a nested dict."""
+    return {s: {k: v for k, v in cfg[s].items() if RULES[s][k].affects_result} for s in RULES}
+
+
+def config_hash(cfg):
+    canon = json.dumps(result_settings(cfg), sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(canon.encode()).hexdigest()

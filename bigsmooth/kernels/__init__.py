@@ -1,0 +1,1 @@
+"""Pure kernels: arrays (or CSR triplets) in, arrays out. No files, config or logging here."""

@@ -1,0 +1,120 @@
+"""Neighbour graphs: exact and approximate k nearest neighbours, heat-kernel weights, symmetrising.
+
+Every function takes arrays and returns arrays; the graph stage owns the files.
+"""
+import numpy as np
+import scipy.sparse as sp
+
+
+def exact_knn(X, k, block=2048):
+    """Exact k nearest neighbours by brute force (Euclidean), excluding each row itself.
+
+    Duplicates of a row (distance 0) are valid neighbours; only the row's own index is excluded.
+
+    Returns
+    -------
+    indices : ndarray of shape (n, k), int64
+    distances : ndarray of shape (n, k), float64, ascending per row
+    """
+    X = np.asarray(X, dtype=np.float64)
+    n = X.shape[0]
+    if not 1 <= k < n:
+        raise ValueError(f"k must be in [1, n_rows - 1] = [1, {n - 1}]; got {k}")
+    sq = np.einsum("ij,ij->i", X, X)
+    ind = np.empty((n, k), dtype=np.int64)
+    dist = np.empty((n, k), dtype=np.float64)
+    for s in range(0, n, block):
+        e = min(s + block, n)
+        d2 = sq[s:e, None] + sq[None, :] - 2.0 * (X[s:e] @ X.T)
+        np.maximum(d2, 0.0, out=d2)
+        d2[np.arange(e - s), np.arange(s, e)] = np.inf
+        part = np.argpartition(d2, k - 1, axis=1)[:, :k]
+        pd = np.take_along_axis(d2, part, axis=1)
+        # sort by (distance, index) so that ties are broken the same way every time
+        order = np.lexsort((part, pd), axis=1)
+        ind[s:e] = np.take_along_axis(part, order, axis=1)
+        dist[s:e] = np.sqrt(np.take_along_axis(pd, order, axis=1))
+    return ind, dist
+
+
+def drop_self(indices, distances, k):
+    """From (n, k+1) neighbour lists that may contain the row itself, keep k others per row.
+
+    The row's own index is removed wherever it appears (with duplicate points it need not be
+    first); rows that do not list themselves lose their farthest neighbour instead.
+    """
+    n = indices.shape[0]
+    is_self = indices == np.arange(n)[:, None]
+    no_self = ~is_self.any(axis=1)
+    is_self[no_self, -1] = True
+    # a row could list itself twice only if the index is broken; keep the first occurrence
+    extra = is_self.sum(axis=1) != 1
+    if extra.any():
+        first = np.argmax(is_self, axis=1)
+        is_self[:] = False
+        is_self[np.arange(n), first] = True
+    keep = ~is_self
+    return indices[keep].reshape(n, k), distances[keep].reshape(n, k)
+
+
+def approx_knn(X, k, seed, n_trees=0):
+    """Approximate k nearest neighbours with pynndescent (Euclidean), excluding each row itself."""
+    from pynndescent import NNDescent  # imported late: numba compiles on first use
+
+    X = np.ascontiguousarray(X, dtype=np.float32)
+    kw = {"n_trees": n_trees} if n_trees else {}
+    index = NNDescent(X, n_neighbors=k + 1, metric="euclidean", random_state=np.random.RandomState(seed),
+                      low_memory=True, compressed=False, n_jobs=1, **kw)
+    ind, dist = index.neighbor_graph
+    ind = np.asarray(ind, dtype=np.int64)
+    dist = np.asarray(dist, dtype=np.float64)
+    bad = ind < 0
+    if bad.any():  # pynndescent marks missing neighbours with -1; fill with self (dropped below)
+        rows = np.nonzero(bad)[0]
+        ind[bad] = rows
+        dist[bad] = 0.0
+    return drop_self(ind, dist, k)
+
+
+def kernel_scale(distances, rule="global", factor=1.0):
+    """The heat-kernel scale.
+
+    ``global``: one sigma, the median of the positive neighbour distances (times ``factor``).
+    ``local``: sigma_i = distance to row i's min(7, k)-th neighbour (self-tuning scale), falling
+    back to the global sigma where that distance is 0. Returns an array of shape (n,) either way.
+    """
+    pos = distances[distances > 0]
+    g = float(np.median(pos)) if pos.size else 1.0
+    n, k = distances.shape
+    if rule == "global":
+        return np.full(n, g * factor)
+    if rule == "local":
+        s = distances[:, min(7, k) - 1].astype(np.float64)
+        s = np.where(s > 0, s, g)
+        return s * factor
+    raise ValueError(f"kernel scale rule must be 'global' or 'local'; got {rule!r}")
+
+
+def heat_kernel_graph(indices, distances, sigma):
+    """Symmetric weight matrix from neighbour lists.
+
+    w_ij = exp(-d_ij^2 / (sigma_i sigma_j)); the graph is symmetrised by taking the larger weight of
+    (i, j) and (j, i) (an edge exists if either row lists the other). Weights that underflow to 0 are
+    dropped, so a row far from everyone may end up isolated.
+
+    Returns
+    -------
+    W : scipy.sparse.csr_matrix of shape (n, n)
+    """
+    n, k = indices.shape
+    rows = np.repeat(np.arange(n), k)
+    cols = indices.ravel()
+    d = distances.ravel()
+    w = np.exp(-(d * d) / (sigma[rows] * sigma[cols]))
+    W = sp.csr_matrix((w, (rows, cols)), shape=(n, n))
+    W.sum_duplicates()
+    W = W.maximum(W.T).tocsr()
+    W.setdiag(0)
+    W.eliminate_zeros()
+    W.sort_indices()
+    return W

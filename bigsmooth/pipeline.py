@@ -1,0 +1,77 @@
+"""The nightly job: create or resume a run and take it through every stage in order."""
+import logging
+import os
+import shutil
+import tempfile
+
+from . import config as config_mod
+from .errors import OutputError
+from .rundir import STAGES, RunDir, run_id
+from .stages import audit, embed, graph, order, publish, scan, solve
+from .table import fingerprint
+
+log = logging.getLogger("bigsmooth.run")
+
+
+def _check_writable(path):
+    try:
+        os.makedirs(path, exist_ok=True)
+        with tempfile.NamedTemporaryFile(dir=path, prefix=".bigsmooth-probe-"):
+            pass
+    except OSError as exc:
+        raise OutputError(f"output.path {path} is not writable: {exc.strerror or exc}") from None
+
+
+def _stage_calls(rd, cfg, fp, rid):
+    return {
+        "scan": lambda: scan.run(rd, cfg, fp),
+        "embed": lambda: embed.run(rd, cfg, fp),
+        "graph": lambda: graph.run(rd, cfg),
+        "order": lambda: order.run(rd, cfg),
+        "solve": lambda: solve.run(rd, cfg),
+        "audit": lambda: audit.run(rd, cfg, fp),
+        "publish": lambda: publish.run(rd, cfg, fp, rid),
+    }
+
+
+def run_job(config_path, fresh=False):
+    """Run (or resume) the job described by a config file.
+
+    Returns
+    -------
+    dict with ``run_dir``, ``run_id``, ``already_complete`` and the published ``output`` folder.
+    """
+    cfg = config_mod.load_config(config_path)
+    fp = fingerprint(cfg["input"]["path"])
+    chash = config_mod.config_hash(cfg)
+    rid = run_id(chash, fp["hash"])
+    rd = RunDir(os.path.join(cfg["run"]["dir"], rid))
+    with rd.lock():
+        if fresh and rd.exists():
+            log.info("--fresh: discarding the earlier state of run %s", rid)
+            for name in os.listdir(rd.path):
+                if name != ".lock":
+                    p = os.path.join(rd.path, name)
+                    shutil.rmtree(p) if os.path.isdir(p) else os.unlink(p)
+        if rd.exists():
+            m = rd.load()
+            if rd.all_done():
+                out = m["stages"]["publish"]["summary"]["path"]
+                log.info("run %s is already complete (same config and input); nothing to do. Output: %s", rid, out)
+                return {"run_dir": rd.path, "run_id": rid, "already_complete": True, "output": out}
+            log.info("resuming run %s", rid)
+        else:
+            rd.create({"run_id": rid, "config_hash": chash, "config_path": os.path.abspath(config_path),
+                       "settings": config_mod.result_settings(cfg), "input": fp})
+            log.info("new run %s: %d rows in %d files", rid, fp["rows"], len(fp["files"]))
+        _check_writable(cfg["output"]["path"])
+        calls = _stage_calls(rd, cfg, fp, rid)
+        for name in STAGES:
+            if rd.is_done(name):
+                log.info("stage %s already done; skipping", name)
+                continue
+            log.info("stage %s", name)
+            with rd.stage(name) as record:
+                record.update(calls[name]() or {})
+        out = rd.summary("publish")["path"]
+        return {"run_dir": rd.path, "run_id": rid, "already_complete": False, "output": out}

@@ -1,0 +1,122 @@
+"""The run directory: manifest, stage states and the run lock.
+
+    <run.dir>/<run-id>/manifest.json    identity (config hash, input fingerprint), stage states,
+                                        timings and each stage's summary
+    <run.dir>/<run-id>/<stage>/...      each stage's artifacts
+    <run.dir>/<run-id>/.lock            fcntl lock held for the whole run
+
+The run id is the first 16 hex digits of sha256(config hash + input hash): the same config and
+input give the same run directory, so a second run resumes or (when complete) does nothing.
+"""
+import contextlib
+import errno
+import fcntl
+import hashlib
+import logging
+import os
+import socket
+import time
+
+from . import atomic
+from .errors import LockHeldError, OutputError
+
+log = logging.getLogger("bigsmooth.run")
+
+STAGES = ("scan", "embed", "graph", "order", "solve", "audit", "publish")
+
+
+def run_id(cfg_hash, input_hash):
+    return hashlib.sha256((cfg_hash + ":" + input_hash).encode()).hexdigest()[:16]
+
+
+class RunDir:
+    def __init__(self, path):
+        self.path = os.fspath(path)
+        self.manifest_path = os.path.join(self.path, "manifest.json")
+
+    def stage_dir(self, stage):
+        d = os.path.join(self.path, stage)
+        os.makedirs(d, exist_ok=True)
+        return d
+
+    def file(self, stage, name):
+        return os.path.join(self.path, stage, name)
+
+    def exists(self):
+        return os.path.exists(self.manifest_path)
+
+    def load(self):
+        return atomic.read_json(self.manifest_path)
+
+    def create(self, identity):
+        try:
+            os.makedirs(self.path, exist_ok=True)
+        except OSError as exc:
+            raise OutputError(f"cannot create run directory {self.path}: {exc.strerror}") from None
+        manifest = {**identity, "created": _now(), "stages": {s: {"state": "pending"} for s in STAGES}}
+        self.save(manifest)
+        return manifest
+
+    def save(self, manifest):
+        try:
+            atomic.write_json(self.manifest_path, manifest)
+        except OSError as exc:
+            raise OutputError(f"cannot write {self.manifest_path}: {exc.strerror}") from None
+
+    def is_done(self, stage):
+        return self.load()["stages"][stage]["state"] == "done"
+
+    def summary(self, stage):
+        return self.load()["stages"][stage].get("summary", {})
+
+    def all_done(self):
+        return all(v["state"] == "done" for v in self.load()["stages"].values())
+
+    @contextlib.contextmanager
+    def stage(self, name):
+        """Mark a stage running, then done (with the summary the body stores) or failed."""
+        m = self.load()
+        entry = m["stages"][name]
+        entry.update(state="running", started=_now())
+        entry.pop("error", None)
+        self.save(m)
+        t0 = time.monotonic()
+        record = {}
+        try:
+            yield record
+        except BaseException as exc:
+            m = self.load()
+            m["stages"][name].update(state="failed", seconds=round(time.monotonic() - t0, 3),
+                                     error=f"{type(exc).__name__}: {exc}"[:2000])
+            with contextlib.suppress(Exception):
+                self.save(m)
+            raise
+        m = self.load()
+        m["stages"][name].update(state="done", finished=_now(), seconds=round(time.monotonic() - t0, 3),
+                                 summary=record)
+        self.save(m)
+        log.info("stage %s done in %.1f s", name, time.monotonic() - t0)
+
+    @contextlib.contextmanager
+    def lock(self):
+        """Hold an exclusive fcntl lock on the run for the whole block; fail at once if held."""
+        os.makedirs(self.path, exist_ok=True)
+        fd = os.open(os.path.join(self.path, ".lock"), os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except OSError as exc:
+                if exc.errno not in (errno.EAGAIN, errno.EACCES):
+                    raise
+                holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
+                raise LockHeldError(f"run {self.path} is in use by another bigsmooth process ({holder}); "
+                                    "retry later") from None
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {_now()}\n".encode(), 0)
+            yield
+        finally:
+            os.close(fd)
+
+
+def _now():
+    return time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())

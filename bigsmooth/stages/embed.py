@@ -1,0 +1,184 @@
+"""embed: stream the table twice and write the fair-space embedding.
+
+Pass 1 accumulates sufficient statistics (:class:`~bigsmooth.kernels.fairspace.Moments`) and writes
+the per-row arrays the later stages need (scores, labels, protected-level codes). The fair space is
+learned from the statistics. Pass 2 writes the embedding as a float32 memmap, one row per input row
+at its stable row index. Finally a linear probe on a sample measures how well the raw features and
+the fair space still predict each protected attribute (the leakage figure).
+"""
+import logging
+import os
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import scipy.sparse as sp
+
+from .. import atomic
+from ..kernels import fairspace
+from ..kernels.metrics import roc_auc
+from ..table import ROW, Source, connect, quote, stream
+from .scan import MISSING_LEVEL
+
+log = logging.getLogger("bigsmooth.embed")
+
+
+def feature_names(inp, levels):
+    names = list(inp["numeric_features"])
+    for c in inp["categorical_features"]:
+        names += [f"{c}={v}" for v, _ in levels[c]]
+    return names
+
+
+def _codes(batch, col, lv):
+    arr = batch.column(col)
+    arr = pc.fill_null(arr.cast(pa.string()), MISSING_LEVEL)
+    codes = pc.index_in(arr, value_set=pa.array(lv, pa.string()))
+    return np.asarray(codes.to_numpy(zero_copy_only=False), dtype=np.int64)
+
+
+def _features(batch, inp, levels):
+    """Numeric features plus one-hot categoricals for a batch: ndarray (b, p)."""
+    b = batch.num_rows
+    parts = [np.column_stack([batch.column(c).to_numpy(zero_copy_only=False).astype(np.float64)
+                              for c in inp["numeric_features"]])] if inp["numeric_features"] else []
+    for c in inp["categorical_features"]:
+        lv = [v for v, _ in levels[c]]
+        oh = np.zeros((b, len(lv)))
+        oh[np.arange(b), _codes(batch, c, lv)] = 1.0
+        parts.append(oh)
+    return np.hstack(parts)
+
+
+def _select_sql(inp):
+    cols = [ROW] + [quote(c) for c in inp["scores"] + inp["numeric_features"]]
+    cols += [f"CAST({quote(c)} AS VARCHAR) AS {quote(c)}" for c in inp["categorical_features"] + inp["protected"]]
+    if inp["label"]:
+        cols.append(f"CAST({quote(inp['label'])} AS DOUBLE) AS {quote(inp['label'])}")
+    return f"SELECT {', '.join(cols)} FROM {{src}}"
+
+
+class _Outputs:
+    """Row-indexed arrays written through memmaps in temporary files, renamed into place at the end."""
+
+    def __init__(self):
+        self.items = {}
+
+    def open(self, path, shape, dtype, fill=None):
+        tmp = path + ".partial"
+        mm = np.lib.format.open_memmap(tmp, mode="w+", dtype=dtype, shape=shape)
+        if fill is not None:
+            mm[:] = fill
+        self.items[path] = (tmp, mm)
+        return mm
+
+    def commit(self):
+        for path, (tmp, mm) in self.items.items():
+            mm.flush()
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
+            del mm
+            os.replace(tmp, path)
+        if self.items:
+            atomic.fsync_dir(os.path.dirname(next(iter(self.items))))
+        self.items.clear()
+
+
+def run(rundir, cfg, fp):
+    inp, ecfg = cfg["input"], cfg["embed"]
+    scan = atomic.read_json(rundir.file("scan", "scan.json"))
+    levels = scan["levels"]
+    n = scan["rows"]
+    names = feature_names(inp, levels)
+    p = len(names)
+    prot_levels = {c: [v for v, _ in levels[c]] for c in inp["protected"]}
+    m = sum(len(v) for v in prot_levels.values())
+    d = rundir.stage_dir("embed")
+    out = _Outputs()
+    Y = out.open(os.path.join(d, "scores.npy"), (n, len(inp["scores"])), np.float64)
+    label = out.open(os.path.join(d, "label.npy"), (n,), np.float64, fill=np.nan) if inp["label"] else None
+    codes = out.open(os.path.join(d, "protected.npy"), (n, len(inp["protected"])), np.int32)
+
+    con = connect()
+    src = Source(con, fp)
+    sql = _select_sql(inp)
+    batch_rows = ecfg["batch_rows"]
+    mom = None
+    seen = 0
+    for batch in stream(src.relation(con, sql), batch_rows):
+        rows = batch.column(ROW).to_numpy()
+        X = _features(batch, inp, levels)
+        S_parts, off = [], 0
+        for j, c in enumerate(inp["protected"]):
+            cc = _codes(batch, c, prot_levels[c])
+            codes[rows, j] = cc
+            S_parts.append(sp.csr_matrix((np.ones(len(cc)), (np.arange(len(cc)), cc + off)),
+                                         shape=(len(cc), m)))
+            off += len(prot_levels[c])
+        S = sum(S_parts[1:], S_parts[0]) if S_parts else sp.csr_matrix((len(rows), 0))
+        if mom is None:
+            mom = fairspace.Moments.empty(X.mean(axis=0), m)
+        mom.update(X, S)
+        for j, c in enumerate(inp["scores"]):
+            Y[rows, j] = batch.column(c).to_numpy(zero_copy_only=False).astype(np.float64)
+        if label is not None:
+            label[rows] = batch.column(inp["label"]).to_numpy(zero_copy_only=False)
+        seen += len(rows)
+        log.info("embed pass 1: %d / %d rows", seen, n)
+    if seen != n:
+        raise RuntimeError(f"embed pass 1 streamed {seen} rows; the footers say {n}")
+
+    weights = np.ones(p)
+    for f, w in ecfg["feature_weights"].items():
+        for i, name in enumerate(names):
+            if name == f or name.startswith(f + "="):
+                weights[i] = w
+    indicator = np.arange(p) >= len(inp["numeric_features"])
+    fs = fairspace.fit_fair_space(mom, weights, ecfg["remove_sensitive"], ecfg["components"], indicator)
+    if fs.constant.any():
+        log.warning("constant features (no information, ignored): %s",
+                    ", ".join(np.array(names)[fs.constant][:10]))
+    dim = fs.transform.shape[1]
+    if dim == 0:
+        raise RuntimeError("the fair space has no dimensions left (all features constant or explained "
+                           "by the protected attributes)")
+    E = out.open(os.path.join(d, "embedding.npy"), (n, dim), np.float32)
+
+    rng = np.random.default_rng(cfg["run"]["seed"])
+    sample = np.sort(rng.choice(n, size=min(n, ecfg["probe_rows"]), replace=False))
+    raw_sample = np.zeros((len(sample), p))
+    seen = 0
+    for batch in stream(src.relation(con, sql), batch_rows):
+        rows = batch.column(ROW).to_numpy()
+        X = _features(batch, inp, levels)
+        E[rows] = fs.apply(X).astype(np.float32)
+        pos = np.searchsorted(sample, rows)
+        hit = (pos < len(sample)) & (sample[np.minimum(pos, len(sample) - 1)] == rows)
+        raw_sample[pos[hit]] = (X[hit] - fs.mean) * fs.scale   # standardised, before the projection
+        seen += len(rows)
+        log.info("embed pass 2: %d / %d rows", seen, n)
+    if seen != n:
+        raise RuntimeError(f"embed pass 2 streamed {seen} rows; the footers say {n}")
+
+    leakage = {}
+    fair_sample = np.asarray(E[sample], dtype=np.float64)
+    code_sample = np.asarray(codes[sample])
+    for j, c in enumerate(inp["protected"]):
+        per_level = {}
+        for li, lv in enumerate(prot_levels[c]):
+            t = (code_sample[:, j] == li).astype(float)
+            before = fairspace.linear_probe_auc(raw_sample, t, np.random.default_rng(cfg["run"]["seed"] + 1), roc_auc)
+            after = fairspace.linear_probe_auc(fair_sample, t, np.random.default_rng(cfg["run"]["seed"] + 1), roc_auc)
+            per_level[lv] = {"features_auc": before, "fair_space_auc": after}
+        worst = max((v["fair_space_auc"] for v in per_level.values() if np.isfinite(v["fair_space_auc"])), default=float("nan"))
+        leakage[c] = {"levels": per_level, "max_fair_space_auc": worst}
+        if np.isfinite(worst) and worst > ecfg["leakage_warn_auc"]:
+            log.warning("leakage: a linear probe on the fair space predicts %r with AUC %.3f (> %.3f); "
+                        "the neighbour graph may still group rows by it", c, worst, ecfg["leakage_warn_auc"])
+    out.commit()
+    info = {"features": names, "dim": dim, "removed_dimensions": fs.removed,
+            "constant_features": list(np.array(names)[fs.constant]), "leakage": leakage,
+            "probe_rows": len(sample), "mean": fs.mean, "scale": fs.scale, "transform": fs.transform}
+    atomic.write_json(os.path.join(d, "embed.json"), info)
+    return {"rows": n, "features": p, "dim": dim, "removed_dimensions": fs.removed,
+            "max_leakage_auc": {c: v["max_fair_space_auc"] for c, v in leakage.items()}}

@@ -1,0 +1,107 @@
+"""publish: write the adjusted table as a new version folder, then move the pointer atomically.
+
+    <output.path>/<version>/...          one Parquet file per input file, at the same relative path
+                                         (so hive partition folders are kept), rows in input order
+    <output.path>/<version>/_audit.json  the run's audit
+    <output.path>/CURRENT                JSON naming the current version (replaced atomically)
+    <output.path>/current                symlink to the current version folder (replaced atomically)
+
+The version folder is built under a hidden staging name and renamed when complete, so readers of
+``current`` see last night's output until the new one is whole.
+"""
+import json
+import logging
+import os
+import shutil
+import time
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .. import atomic
+from ..errors import OutputError
+
+log = logging.getLogger("bigsmooth.publish")
+
+
+def output_columns(inp, out):
+    cols = [inp["id"]] + inp["scores"]
+    if out["include_protected"]:
+        cols += inp["protected"]
+    return cols
+
+
+def _write_file(src_path, dst_path, cols, inp, out, Y, F, lo, hi, offset, batch_rows):
+    pf = pq.ParquetFile(src_path)
+    present = set(pf.schema_arrow.names)
+    read = [c for c in cols if c in present]
+    writer = None
+    pos = offset
+    try:
+        for batch in pf.iter_batches(batch_size=batch_rows, columns=read):
+            b = batch.num_rows
+            arrays = {c: batch.column(c) for c in read}
+            for j, c in enumerate(inp["scores"]):
+                adj = np.clip(F[pos:pos + b, j], lo, hi)
+                arrays[c + out["suffix"]] = pa.array(adj)
+                arrays[c + "_change"] = pa.array(adj - Y[pos:pos + b, j])
+            t = pa.table(arrays)
+            if writer is None:
+                writer = pq.ParquetWriter(dst_path, t.schema)
+            writer.write_table(t)
+            pos += b
+    finally:
+        if writer is not None:
+            writer.close()
+    return pos - offset
+
+
+def run(rundir, cfg, fp, run_id):
+    inp, out = cfg["input"], cfg["output"]
+    root = out["path"]
+    version = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime()) + "-" + run_id[:8]
+    staging = os.path.join(root, f".staging-{version}")
+    final = os.path.join(root, version)
+    Y = np.load(rundir.file("embed", "scores.npy"), mmap_mode="r")
+    F = np.load(rundir.file("solve", "adjusted.npy"), mmap_mode="r")
+    lo, hi = inp["score_range"]
+    cols = output_columns(inp, out)
+    try:
+        os.makedirs(staging, exist_ok=False)
+    except OSError as exc:
+        raise OutputError(f"cannot create the output folder {staging}: {exc.strerror}") from None
+    try:
+        written = 0
+        for e in fp["files"]:
+            rel = os.path.relpath(e["path"], fp["root"])
+            dst = os.path.join(staging, rel)
+            os.makedirs(os.path.dirname(dst), exist_ok=True)
+            got = _write_file(e["path"], dst, cols, inp, out, Y, F, lo, hi, e["offset"], cfg["embed"]["batch_rows"])
+            if got != e["rows"]:
+                raise RuntimeError(f"{e['path']}: wrote {got} rows, the footer says {e['rows']}")
+            written += got
+        if written != fp["rows"]:
+            raise RuntimeError(f"wrote {written} rows; the input has {fp['rows']}")
+        shutil.copyfile(rundir.file("audit", "audit.json"), os.path.join(staging, "_audit.json"))
+        for dirpath, _, files in os.walk(staging):
+            for f in files:
+                with open(os.path.join(dirpath, f), "rb") as fh:
+                    os.fsync(fh.fileno())
+            atomic.fsync_dir(dirpath)
+        os.rename(staging, final)
+        atomic.fsync_dir(root)
+        pointer = {"version": version, "run_id": run_id, "rows": written, "published": version[:16]}
+        atomic.write_bytes(os.path.join(root, "CURRENT"), (json.dumps(pointer, indent=2) + "\n").encode())
+        link_tmp = os.path.join(root, f".current-{version}")
+        os.symlink(version, link_tmp)
+        os.replace(link_tmp, os.path.join(root, "current"))
+        atomic.fsync_dir(root)
+    except OSError as exc:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise OutputError(f"cannot write the output under {root}: {exc}") from None
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    log.info("published %d rows to %s", written, final)
+    return {"version": version, "path": final, "rows": written, "files": len(fp["files"])}

@@ -1,0 +1,131 @@
+"""scan: check the table against the config with DuckDB before any heavy work.
+
+Checks that every configured column exists with a usable type, then counts in one pass: rows,
+null ids, duplicate ids, null/NaN/inf scores and numeric features, scores outside the declared
+range, and label values that are not 0/1. Collects the levels of categorical and protected columns.
+Every problem is reported at once, each with its count and a few example ids.
+"""
+import difflib
+import logging
+
+from .. import atomic
+from ..errors import ConfigError, DataError, examples
+from ..table import Source, connect, quote
+
+log = logging.getLogger("bigsmooth.scan")
+
+NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
+                 "UBIGINT", "FLOAT", "DOUBLE", "BOOLEAN")
+FLOAT_TYPES = ("FLOAT", "DOUBLE")
+MAX_LEVELS = 1000
+MISSING_LEVEL = "(missing)"
+
+
+def _is_numeric(t):
+    return t in NUMERIC_TYPES or t.startswith("DECIMAL")
+
+
+def _is_float(t):
+    return t in FLOAT_TYPES or t.startswith("DECIMAL")
+
+
+def check_schema(columns, inp):
+    """Compare configured columns with the table's {name: duckdb type}; raise on any mismatch."""
+    problems = []
+    wanted = [("id", inp["id"])] + [("scores", c) for c in inp["scores"]] + \
+        [("numeric_features", c) for c in inp["numeric_features"]] + \
+        [("categorical_features", c) for c in inp["categorical_features"]] + \
+        [("protected", c) for c in inp["protected"]] + ([("label", inp["label"])] if inp["label"] else [])
+    for role, col in wanted:
+        if col not in columns:
+            close = difflib.get_close_matches(col, list(columns), n=1, cutoff=0.6)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            problems.append(f"input.{role}: column {col!r} is not in the table{hint}")
+            continue
+        t = columns[col]
+        if role in ("scores", "numeric_features", "label") and not _is_numeric(t):
+            problems.append(f"input.{role}: column {col!r} has type {t}; a numeric type is needed")
+        if role == "id" and not (t in NUMERIC_TYPES[:9] or t == "VARCHAR"):
+            problems.append(f"input.id: column {col!r} has type {t}; an integer or string type is needed")
+        if role in ("categorical_features", "protected") and (_is_float(t) or t.startswith(("STRUCT", "MAP", "LIST")) or t.endswith("[]")):
+            problems.append(f"input.{role}: column {col!r} has type {t}; a string, integer or boolean "
+                            "type is needed (bucket continuous values first)")
+    if problems:
+        raise DataError("the table does not match the config:\n  " + "\n  ".join(problems)
+                        + f"\nThe table's columns are: {', '.join(columns)}")
+
+
+def run(rundir, cfg, fp):
+    inp = cfg["input"]
+    con = connect()
+    src = Source(con, fp)
+    cols = dict((r[0], r[1]) for r in src.fetch(con, "DESCRIBE SELECT * FROM {src}"))
+    cols.pop("__bigsmooth_row", None)
+    check_schema(cols, inp)
+    n = fp["rows"]
+    if n == 0:
+        raise DataError(f"the input has 0 rows ({len(fp['files'])} files under {fp['root']}); nothing to smooth")
+    k = cfg["graph"]["neighbours"]
+    if k >= n:
+        raise ConfigError(f"graph.neighbours = {k} needs more rows than neighbours; the input has {n} rows. "
+                          f"Set graph.neighbours to at most {n - 1}.")
+
+    idq = quote(inp["id"])
+    lo, hi = inp["score_range"]
+    checks = [(f"{idq} IS NULL", "null id", False)]
+    for c in inp["scores"]:
+        q = quote(c)
+        checks.append((f"{q} IS NULL", f"null score in {c!r}", True))
+        if _is_float(cols[c]):
+            checks.append((f"isnan({q}) OR isinf({q})", f"NaN or infinite score in {c!r}", True))
+        checks.append((f"(CAST({q} AS DOUBLE) < $lo OR CAST({q} AS DOUBLE) > $hi)",
+                       f"score in {c!r} outside the declared score_range [{lo:g}, {hi:g}]", True))
+    for c in inp["numeric_features"]:
+        q = quote(c)
+        checks.append((f"{q} IS NULL", f"null value in numeric feature {c!r}", True))
+        if _is_float(cols[c]):
+            checks.append((f"isnan({q}) OR isinf({q})", f"NaN or infinite value in numeric feature {c!r}", True))
+    if inp["label"]:
+        q = quote(inp["label"])
+        checks.append((f"{q} IS NOT NULL AND CAST({q} AS DOUBLE) NOT IN (0, 1)",
+                       f"label {inp['label']!r} value other than 0, 1 or null", True))
+    agg = ", ".join(f"count(*) FILTER (WHERE {cond})" for cond, _, _ in checks)
+    rng = {"lo": lo, "hi": hi}
+    counts = src.fetch(con, f"SELECT count(*), count(DISTINCT {idq}), {agg} FROM {{src}}", **rng)[0]
+    total, distinct, bad = counts[0], counts[1], counts[2:]
+    problems = []
+    for (cond, what, show_ids), cnt in zip(checks, bad):
+        if cnt:
+            ex = ""
+            if show_ids:
+                ids = [r[0] for r in src.fetch(con, f"SELECT {idq} FROM {{src}} WHERE {cond} "
+                                                    f"ORDER BY __bigsmooth_row LIMIT 5", **rng)]
+                ex = f"; e.g. ids {examples(ids)}"
+            problems.append(f"{cnt} rows with {what}{ex}")
+    non_null_ids = total - bad[0]
+    if distinct < non_null_ids:
+        dup = src.fetch(con, f"SELECT {idq}, count(*) AS c FROM {{src}} WHERE {idq} IS NOT NULL GROUP BY {idq} "
+                             f"HAVING count(*) > 1 ORDER BY c DESC, {idq} LIMIT 5")
+        problems.append(f"{non_null_ids - distinct} duplicate rows of id column {inp['id']!r}; e.g. "
+                        + ", ".join(f"{v!r} x{c}" for v, c in dup))
+    levels = {}
+    for c in inp["categorical_features"] + inp["protected"]:
+        q = quote(c)
+        rows = src.fetch(con, f"SELECT CAST({q} AS VARCHAR) AS v, count(*) FROM {{src}} GROUP BY v "
+                              f"ORDER BY v NULLS LAST")
+        if len(rows) > MAX_LEVELS:
+            problems.append(f"column {c!r} has {len(rows)} distinct values (more than {MAX_LEVELS}); "
+                            "use it as a numeric feature or bucket it")
+            continue
+        levels[c] = [(MISSING_LEVEL if v is None else v, cnt) for v, cnt in rows]
+    for c in inp["protected"]:
+        if c in levels and len(levels[c]) < 2:
+            log.warning("protected attribute %r has a single level (%r): it defines nothing to remove",
+                        c, levels[c][0][0])
+    if problems:
+        raise DataError(f"the input has {len(problems)} problem(s) in {total} rows:\n  " + "\n  ".join(problems)
+                        + "\nFix the rows (or the config) and run again; nothing was written to the output.")
+    info = {"rows": total, "files": len(fp["files"]), "columns": cols, "levels": levels}
+    atomic.write_json(rundir.file("scan", "scan.json"), info)
+    log.info("scanned %d rows in %d files: all checks passed", total, len(fp["files"]))
+    return {"rows": total, "files": len(fp["files"])}

@@ -1,0 +1,146 @@
+"""The input table: finding the Parquet files, fingerprinting them, and streaming them with DuckDB.
+
+Rows get a stable index independent of DuckDB's scan order: files are sorted by path, each file's
+rows are numbered by their position in the file (DuckDB's ``file_row_number``), and the row index
+is the file's offset (from the Parquet footers) plus that position. Every identifier that goes into
+SQL is quoted; every value (paths, lists) is passed as a parameter.
+"""
+import glob
+import hashlib
+import json
+import logging
+import os
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .errors import DataError, InputMissingError
+
+log = logging.getLogger("bigsmooth.table")
+
+ROW = "__bigsmooth_row"
+
+
+def quote(name):
+    """Quote an SQL identifier (doubling embedded quotes)."""
+    return '"' + str(name).replace('"', '""') + '"'
+
+
+def _visible(path, root):
+    rel = os.path.relpath(path, root)
+    return not any(part.startswith((".", "_")) for part in rel.split(os.sep))
+
+
+def resolve_files(path):
+    """Sorted absolute paths of the Parquet files named by a file, folder or glob."""
+    if any(c in path for c in "*?["):
+        files = [os.path.abspath(f) for f in glob.glob(path, recursive=True) if os.path.isfile(f)]
+        if not files:
+            raise InputMissingError(f"input.path {path!r} matches no files")
+    elif os.path.isdir(path):
+        files = [os.path.abspath(f) for f in glob.glob(os.path.join(path, "**", "*.parquet"), recursive=True)
+                 if os.path.isfile(f) and _visible(f, path)]
+        if not files:
+            raise InputMissingError(f"input folder {path} holds no .parquet files")
+    elif os.path.isfile(path):
+        files = [os.path.abspath(path)]
+    else:
+        raise InputMissingError(f"input.path {path} does not exist")
+    for f in files:
+        if not os.access(f, os.R_OK):
+            raise InputMissingError(f"input file {f} is not readable (permissions)")
+    return sorted(files)
+
+
+def input_root(path, files):
+    """The folder that output paths mirror: the input folder, or the files' common folder."""
+    if os.path.isdir(path) and not any(c in path for c in "*?["):
+        return os.path.abspath(path)
+    return os.path.dirname(os.path.commonpath(files)) if len(files) == 1 else os.path.commonpath(
+        [os.path.dirname(f) for f in files])
+
+
+def fingerprint(path):
+    """Paths, sizes and footer row counts of the input; a hash of them identifies the input."""
+    files = resolve_files(path)
+    entries = []
+    offset = 0
+    bad = []
+    for f in files:
+        try:
+            rows = pq.ParquetFile(f).metadata.num_rows
+        except (OSError, pa.ArrowException) as exc:
+            bad.append((f, str(exc).splitlines()[0] if str(exc) else type(exc).__name__))
+            continue
+        entries.append({"path": f, "size": os.path.getsize(f), "rows": rows, "offset": offset})
+        offset += rows
+    if bad:
+        lines = "\n".join(f"  {f}: {why}" for f, why in bad[:5])
+        raise DataError(f"{len(bad)} of {len(files)} input files are not readable Parquet "
+                        f"(truncated or corrupt?):\n{lines}\nReplace or remove them and run again.")
+    digest = hashlib.sha256(json.dumps([(e["path"], e["size"], e["rows"]) for e in entries]).encode()).hexdigest()
+    return {"root": input_root(path, files), "files": entries, "rows": offset, "hash": digest}
+
+
+def connect(threads=None, memory_limit=None):
+    import duckdb
+
+    con = duckdb.connect()
+    if threads:
+        con.execute(f"SET threads = {int(threads)}")
+    if memory_limit:
+        con.execute(f"SET memory_limit = '{int(memory_limit)}B'")
+    return con
+
+
+class Source:
+    """The input as a FROM-clause fragment with the stable row index column :data:`ROW`.
+
+    Use as ``con.sql(f"SELECT ... FROM {src.sql}", params=src.params)``; the file list travels as
+    the ``$files`` parameter, never as SQL text.
+    """
+
+    def __init__(self, con, fp):
+        offsets = pa.table({"filename": [e["path"] for e in fp["files"]],
+                            "__offset": pa.array([e["offset"] for e in fp["files"]], pa.int64())})
+        con.register("__bigsmooth_offsets", offsets)
+        self.params = {"files": [e["path"] for e in fp["files"]]}
+        self.sql = (f"(SELECT o.__offset + t.file_row_number AS {ROW}, "
+                    f"t.* EXCLUDE (filename, file_row_number) "
+                    f"FROM read_parquet($files, hive_partitioning = true, union_by_name = true, "
+                    f"filename = true, file_row_number = true) t "
+                    f"JOIN __bigsmooth_offsets o USING (filename)) AS src")
+
+    def fetch(self, con, sql, **params):
+        """Run a query whose FROM names ``{src}``; return all result rows as tuples."""
+        return con.execute(sql.replace("{src}", self.sql), {**self.params, **params}).fetchall()
+
+    def relation(self, con, sql):
+        """A lazy DuckDB relation of a query whose FROM names ``{src}`` (for :func:`stream`)."""
+        return con.sql(sql.replace("{src}", self.sql), params=self.params)
+
+
+def stream(rel, batch_rows):
+    """Yield pyarrow RecordBatches of a DuckDB relation, ``batch_rows`` at a time (never the whole table)."""
+    reader = rel.to_arrow_reader(batch_rows)
+    for batch in reader:
+        if batch.num_rows:
+            yield batch
+
+
+def ids_at_rows(fp, id_col, rows):
+    """Look up the ids of a few row indices by reading only the files that hold them."""
+    import bisect
+
+    starts = [e["offset"] for e in fp["files"]]
+    out = {}
+    by_file = {}
+    for r in rows:
+        i = bisect.bisect_right(starts, int(r)) - 1
+        by_file.setdefault(i, []).append(int(r))
+    for i, rs in by_file.items():
+        e = fp["files"][i]
+        col = pq.read_table(e["path"], columns=[id_col]).column(0)
+        for r in rs:
+            out[r] = col[r - e["offset"]].as_py()
+    return [out[int(r)] for r in rows]
