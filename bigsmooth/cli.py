@@ -47,7 +47,7 @@ def build_parser():
                                    "co-operative (hive-partitioned Parquet under DIR/data), write its config "
                                    "to DIR/bigsmooth.toml and run the job. Prints where the output and the "
                                    "audit are.")
-    d.add_argument("--rows", type=int, default=200_000, help="applicants to generate (default 200000)")
+    d.add_argument("--rows", type=int, default=300_000, help="applicants to generate (default 300000)")
     d.add_argument("--dir", default="bigsmooth-demo", help="folder for the demo's data, runs and output "
                                                           "(default ./bigsmooth-demo)")
     d.add_argument("--seed", type=int, default=7, help="seed of the generated data (default 7)")

@@ -29,11 +29,13 @@ def exact_knn(X, k, block=2048):
         np.maximum(d2, 0.0, out=d2)
         d2[np.arange(e - s), np.arange(s, e)] = np.inf
         part = np.argpartition(d2, k - 1, axis=1)[:, :k]
-        pd = np.take_along_axis(d2, part, axis=1)
+        # recompute the chosen distances directly: the expanded form above leaves round-off
+        # (duplicates would come out at ~1e-8 instead of exactly 0)
+        pd = np.sqrt(np.sum((X[s:e, None, :] - X[part]) ** 2, axis=2))
         # sort by (distance, index) so that ties are broken the same way every time
         order = np.lexsort((part, pd), axis=1)
         ind[s:e] = np.take_along_axis(part, order, axis=1)
-        dist[s:e] = np.sqrt(np.take_along_axis(pd, order, axis=1))
+        dist[s:e] = np.take_along_axis(pd, order, axis=1)
     return ind, dist
 
 

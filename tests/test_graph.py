@@ -1,0 +1,72 @@
+"""Neighbour search and graph weights against exact references."""
+import numpy as np
+import pytest
+from sklearn.neighbors import NearestNeighbors
+
+from bigsmooth.kernels import graph as gk
+
+
+def sklearn_neighbours(X, k):
+    """Exact k nearest neighbours excluding self, from scikit-learn (the reference)."""
+    nn = NearestNeighbors(n_neighbors=k + 1, algorithm="brute").fit(X)   # sklearn.neighbors
+    dist, ind = nn.kneighbors(X)
+    return gk.drop_self(ind, dist, k)
+
+
+def test_exact_knn_matches_sklearn(rng):
+    X = rng.normal(size=(700, 6))
+    ind, dist = gk.exact_knn(X, 8, block=128)
+    ref_ind, ref_dist = sklearn_neighbours(X, 8)
+    np.testing.assert_allclose(dist, ref_dist, atol=1e-9)
+    # with continuous data there are no distance ties, so the neighbour sets agree exactly
+    assert all(set(a) == set(b) for a, b in zip(ind, ref_ind))
+
+
+def test_exact_knn_with_duplicate_points_excludes_only_self(rng):
+    X = np.repeat(rng.normal(size=(20, 3)), 5, axis=0)   # every point appears 5 times
+    ind, dist = gk.exact_knn(X, 6)
+    n = len(X)
+    assert not np.any(ind == np.arange(n)[:, None])
+    assert np.all(dist[:, :4] == 0)                        # its four twins come first
+    assert np.all(dist[:, 4:] > 0)
+
+
+def test_approximate_neighbours_recall_against_exact(rng):
+    # common practice: an approximate index is acceptable at recall@k >= 0.95
+    centres = rng.normal(scale=4, size=(30, 10))
+    X = (centres[rng.integers(0, 30, 4000)] + rng.normal(size=(4000, 10))).astype(np.float32)
+    k = 10
+    ind, dist = gk.approx_knn(X, k, seed=3)
+    ref_ind, _ = sklearn_neighbours(X.astype(np.float64), k)
+    recall = np.mean([len(set(a) & set(b)) / k for a, b in zip(ind, ref_ind)])
+    assert recall >= 0.95, recall
+    assert not np.any(ind == np.arange(len(X))[:, None])
+
+
+def test_approximate_neighbours_same_seed_same_graph(rng):
+    X = rng.normal(size=(3000, 5)).astype(np.float32)
+    a = gk.approx_knn(X, 5, seed=11)
+    b = gk.approx_knn(X, 5, seed=11)
+    assert np.array_equal(a[0], b[0]) and np.array_equal(a[1], b[1])
+
+
+@pytest.mark.parametrize("rule", ["global", "local"])
+def test_heat_kernel_graph_is_symmetric_with_unit_weight_for_duplicates(rng, rule):
+    X = np.vstack([rng.normal(size=(50, 3)), np.zeros((3, 3))])
+    ind, dist = gk.exact_knn(X, 4)
+    sigma = gk.kernel_scale(dist, rule)
+    W = gk.heat_kernel_graph(ind, dist, sigma)
+    assert abs(W - W.T).max() == 0
+    assert W.diagonal().sum() == 0
+    assert W[50, 51] == pytest.approx(1.0)           # exp(0) for a zero distance
+    # weights follow the heat-kernel formula exp(-d^2 / (sigma_i sigma_j)) on every listed edge
+    i, j = 0, ind[0, 0]
+    assert W[i, j] == pytest.approx(np.exp(-dist[0, 0] ** 2 / (sigma[i] * sigma[j])))
+
+
+def test_drop_self_when_self_is_not_listed():
+    ind = np.array([[1, 2, 3], [0, 1, 2], [5, 0, 1]])
+    dist = np.array([[0.1, 0.2, 0.3], [0.0, 0.0, 0.4], [0.1, 0.2, 0.3]])
+    i2, d2 = gk.drop_self(ind, dist, 2)
+    assert i2.tolist() == [[1, 2], [0, 2], [5, 0]]
+    assert d2.tolist() == [[0.1, 0.2], [0.0, 0.4], [0.1, 0.2]]

@@ -1,0 +1,109 @@
+"""Audit metrics against scikit-learn, and the fair space against a direct numpy computation."""
+import numpy as np
+import scipy.sparse as sp
+from sklearn.metrics import accuracy_score, roc_auc_score
+
+from bigsmooth.kernels import fairspace, metrics
+from conftest import random_graph
+
+
+def test_auc_matches_sklearn_with_ties(rng):
+    y = rng.integers(0, 2, 500)
+    s = np.round(rng.random(500) + 0.3 * y, 1)                 # rounding makes many ties
+    assert metrics.roc_auc(y, s) == np.float64(roc_auc_score(y, s))  # sklearn.metrics.roc_auc_score
+
+
+def test_accuracy_matches_sklearn(rng):
+    y = rng.integers(0, 2, 300)
+    d = rng.integers(0, 2, 300)
+    assert metrics.accuracy(y, d) == accuracy_score(y, d)       # sklearn.metrics.accuracy_score
+
+
+def test_quantile_cutoff_selects_the_rate(rng):
+    s = rng.random(1000)
+    cut = metrics.quantile_cutoff(s, 0.3)
+    assert (s >= cut).sum() == 300
+
+
+def test_edge_disagreement_matches_dense_formula(rng):
+    W = random_graph(80, 0.1, rng)
+    f = rng.random(80)
+    D = W.toarray()
+    expect = (D * (f[:, None] - f[None, :]) ** 2).sum() / D.sum()
+    assert np.isclose(metrics.edge_disagreement(W.indptr, W.indices, W.data, f), expect)
+
+
+def test_four_fifths_flag():
+    # 29 CFR 1607.4(D): a selection rate below four-fifths (80%) of the highest group's rate
+    codes = np.array([0] * 100 + [1] * 100)
+    selected = np.r_[np.ones(50), np.zeros(50), np.ones(39), np.zeros(61)].astype(bool)
+    rows = metrics.group_table(codes, ["a", "b"], np.zeros(200), selected, 10)
+    assert rows[1]["ratio_to_highest"] == 0.78 and rows[1]["below_four_fifths"]
+    assert not rows[0]["below_four_fifths"]
+
+
+def _stream_moments(X, S, batches):
+    mom = None
+    for part in np.array_split(np.arange(len(X)), batches):
+        if mom is None:
+            mom = fairspace.Moments.empty(X[part].mean(axis=0), S.shape[1])
+        mom.update(X[part], sp.csr_matrix(S[part]))
+    return mom
+
+
+def test_streamed_moments_match_numpy_covariance(rng):
+    X = rng.normal(loc=[1e4, 3, -2], scale=[50, 1, 0.1], size=(5000, 3))
+    S = np.eye(3)[rng.integers(0, 3, 5000)]
+    mom = _stream_moments(X, S, 7)
+    n = mom.n
+    mean = mom.shift + mom.sx / n
+    cov = mom.sxx / n - np.outer(mom.sx / n, mom.sx / n)
+    np.testing.assert_allclose(mean, X.mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(cov, np.cov(X.T, bias=True), rtol=1e-9)   # numpy.cov reference
+
+
+def test_fair_space_leaves_no_linear_correlation_with_protected(rng):
+    n = 4000
+    g = rng.integers(0, 3, n)
+    X = rng.normal(size=(n, 5))
+    X[:, 0] += 1.5 * g                                        # a proxy of the protected attribute
+    X[:, 3] += 0.8 * (g == 1)
+    S = np.eye(3)[g]
+    fs = fairspace.fit_fair_space(_stream_moments(X, S, 3))
+    E = fs.apply(X)
+    assert fs.removed == 2                                    # 3 levels -> 2 independent contrasts
+    # the cross-covariance of every embedding dimension with every level indicator vanishes
+    cross = (E - E.mean(axis=0)).T @ (S - S.mean(axis=0)) / n
+    assert np.abs(cross).max() < 1e-10
+    # without removal the proxy is plainly visible
+    fs0 = fairspace.fit_fair_space(_stream_moments(X, S, 3), remove_sensitive=False)
+    E0 = fs0.apply(X)
+    assert np.abs((E0 - E0.mean(axis=0)).T @ (S - S.mean(axis=0)) / n).max() > 0.1
+
+
+def test_fair_space_distance_is_mahalanobis(rng):
+    # Euclidean distance in the fair space equals the Mahalanobis-type distance sqrt(dx' M dx) with
+    # M = D T T' D (D = diag(scale)), checked directly on pairs.
+    X = rng.normal(size=(300, 4))
+    S = np.eye(2)[rng.integers(0, 2, 300)]
+    fs = fairspace.fit_fair_space(_stream_moments(X, S, 2), weights=np.array([1, 2, 1, 0.5]))
+    E = fs.apply(X)
+    M = np.diag(fs.scale) @ fs.transform @ fs.transform.T @ np.diag(fs.scale)
+    dx = X[:50] - X[50:100]
+    np.testing.assert_allclose(np.linalg.norm(E[:50] - E[50:100], axis=1),
+                               np.sqrt(np.einsum("ij,jk,ik->i", dx, M, dx)), rtol=1e-9)
+
+
+def test_constant_feature_is_ignored(rng):
+    X = np.column_stack([rng.normal(size=200), np.full(200, 7.0)])
+    S = np.eye(2)[rng.integers(0, 2, 200)]
+    fs = fairspace.fit_fair_space(_stream_moments(X, S, 2))
+    assert fs.constant.tolist() == [False, True]
+    assert np.all(np.isfinite(fs.apply(X)))
+
+
+def test_linear_probe_auc_detects_leak(rng):
+    t = rng.integers(0, 2, 2000)
+    E = np.column_stack([t + rng.normal(scale=0.5, size=2000), rng.normal(size=2000)])
+    assert fairspace.linear_probe_auc(E, t, np.random.default_rng(0), metrics.roc_auc) > 0.9
+    assert abs(fairspace.linear_probe_auc(E[:, 1:], t, np.random.default_rng(0), metrics.roc_auc) - 0.5) < 0.06
