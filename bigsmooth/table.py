@@ -96,8 +96,12 @@ def connect(threads=None, memory_limit=None):
 class Source:
     """The input as a FROM-clause fragment with the stable row index column :data:`ROW`.
 
-    Use as ``con.sql(f"SELECT ... FROM {src.sql}", params=src.params)``; the file list travels as
-    the ``$files`` parameter, never as SQL text.
+    Queries name the input as ``{src}`` (see :meth:`fetch` and :meth:`relation`); the file list
+    travels as the ``$files`` parameter, never as SQL text.
+
+    ``can_have_nan = true``: Parquet min/max statistics leave NaN out (as the format says), and
+    without this DuckDB prunes on them and silently drops NaN rows from filters (DuckDB issue
+    #25521, open at the time of writing); a NaN score must be found, not skipped.
     """
 
     def __init__(self, con, fp):
@@ -108,7 +112,7 @@ class Source:
         self.sql = (f"(SELECT o.__offset + t.file_row_number AS {ROW}, "
                     f"t.* EXCLUDE (filename, file_row_number) "
                     f"FROM read_parquet($files, hive_partitioning = true, union_by_name = true, "
-                    f"filename = true, file_row_number = true) t "
+                    f"filename = true, file_row_number = true, can_have_nan = true) t "
                     f"JOIN __bigsmooth_offsets o USING (filename)) AS src")
 
     def fetch(self, con, sql, **params):

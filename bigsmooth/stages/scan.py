@@ -78,7 +78,8 @@ def run(rundir, cfg, fp):
         checks.append((f"{q} IS NULL", f"null score in {c!r}", True))
         if _is_float(cols[c]):
             checks.append((f"isnan({q}) OR isinf({q})", f"NaN or infinite score in {c!r}", True))
-        checks.append((f"(CAST({q} AS DOUBLE) < $lo OR CAST({q} AS DOUBLE) > $hi)",
+        # DuckDB orders NaN above every number, so NaN is left to the check above
+        checks.append((f"(CAST({q} AS DOUBLE) < $lo OR (CAST({q} AS DOUBLE) > $hi AND NOT isnan(CAST({q} AS DOUBLE))))",
                        f"score in {c!r} outside the declared score_range [{lo:g}, {hi:g}]", True))
     for c in inp["numeric_features"]:
         q = quote(c)
@@ -99,7 +100,7 @@ def run(rundir, cfg, fp):
             ex = ""
             if show_ids:
                 ids = [r[0] for r in src.fetch(con, f"SELECT {idq} FROM {{src}} WHERE {cond} "
-                                                    f"ORDER BY __bigsmooth_row LIMIT 5", **rng)]
+                                                    f"ORDER BY __bigsmooth_row LIMIT 5", **(rng if "$lo" in cond else {}))]
                 ex = f"; e.g. ids {examples(ids)}"
             problems.append(f"{cnt} rows with {what}{ex}")
     non_null_ids = total - bad[0]
