@@ -73,9 +73,9 @@ RULES = {
         "suffix": Rule("str", default="_adjusted", doc="suffix of the adjusted score columns (the change column ends in '_change')"),
     },
     "audit": {
-        "select_rate": Rule("float", default=0.3, lo=1e-6, hi=1.0, doc="share of rows selected (highest scores) at the quantile cutoff used for decisions", affects_result=False),
-        "min_group_rows": Rule("int", default=10, lo=1, hi=1_000_000, doc="groups smaller than this are suppressed in the audit", affects_result=False),
-        "top_changes": Rule("int", default=10, lo=0, hi=10000, doc="list this many largest changes (ids) in the audit", affects_result=False),
+        "select_rate": Rule("float", default=0.3, lo=1e-6, hi=1.0, doc="share of rows selected (highest scores) at the quantile cutoff used for decisions"),
+        "min_group_rows": Rule("int", default=10, lo=1, hi=1_000_000, doc="groups smaller than this are suppressed in the audit"),
+        "top_changes": Rule("int", default=10, lo=0, hi=10000, doc="list this many largest changes (ids) in the audit"),
     },
     "run": {
         "dir": Rule("str", default="runs", doc="folder holding one run directory per (config, input) pair", affects_result=False),

@@ -1,0 +1,27 @@
+# Set-up and entry points. `make demo` and `make test` work on a fresh clone: each creates the
+# virtual environment in .venv (pinned versions from pyproject.toml) when it is missing or stale.
+PYTHON ?= python3
+VENV ?= .venv
+BIN := $(VENV)/bin
+
+.PHONY: demo test test-slow install clean
+
+$(VENV)/.installed: pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $@
+
+install: $(VENV)/.installed
+
+demo: $(VENV)/.installed
+	$(BIN)/bigsmooth demo $(DEMO_ARGS)
+
+test: $(VENV)/.installed
+	$(BIN)/python -m pytest -q $(TEST_ARGS)
+
+test-slow: $(VENV)/.installed
+	$(BIN)/python -m pytest -q -m slow $(TEST_ARGS)
+
+clean:
+	rm -rf $(VENV) bigsmooth-demo .pytest_cache
