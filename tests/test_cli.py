@@ -196,3 +196,15 @@ def test_unknown_config_key_suggests_the_close_key(tmp_path):
     res = cli("run", str(cfg))
     assert res.returncode == EXIT_CONFIG and "graph.neighbors" in res.stderr and "neighbours" in res.stderr
     _assert_nothing_published(tmp_path)
+
+
+def test_nightly_script_passes_the_exit_code_through(demo_run, tmp_path):
+    base, _ = demo_run
+    env = {**os.environ, "BIGSMOOTH": os.path.join(os.path.dirname(sys.executable), "bigsmooth")}
+    script = os.path.join(ROOT, "jobs", "nightly.sh")
+    ok = subprocess.run(["bash", script, str(base / "bigsmooth.toml")], capture_output=True, text=True, env=env)
+    assert ok.returncode == 0 and "already complete" in ok.stdout
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[input]\npath = 3\n")
+    res = subprocess.run(["bash", script, str(bad)], capture_output=True, text=True, env=env)
+    assert res.returncode == EXIT_CONFIG and "input.path must be a string" in res.stderr
