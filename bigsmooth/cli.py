@@ -128,7 +128,10 @@ def cmd_status(args):
     print(f"run {m['run_id']}  created {m['created']}  input {m['input']['rows']} rows in "
           f"{len(m['input']['files'])} files")
     print(f"{'stage':<9} {'state':<8} {'seconds':>9}")
-    for name, st in m["stages"].items():
+    from .rundir import STAGES
+
+    for name in STAGES:
+        st = m["stages"][name]
         secs = f"{st['seconds']:.1f}" if "seconds" in st else "-"
         print(f"{name:<9} {st['state']:<8} {secs:>9}" + (f"  {st['error']}" if st.get("error") else ""))
     sol = os.path.join(args.run_dir, "solve", "solve.json")

@@ -83,8 +83,9 @@ def test_status_shows_stages_and_solver(demo_run):
     (run_dir,) = [p for p in (base / "runs").iterdir() if p.is_dir()]
     res = cli("status", str(run_dir))
     assert res.returncode == 0, res.stderr
-    for stage in ("scan", "embed", "graph", "order", "solve", "audit", "publish"):
-        assert stage in res.stdout
+    stages = ("scan", "embed", "graph", "order", "solve", "audit", "publish")
+    listed = [line.split()[0] for line in res.stdout.splitlines()[2:9]]
+    assert listed == list(stages)           # in pipeline order, one line each
     assert "converged" in res.stdout and "residual" in res.stdout
     m = json.loads(cli("status", str(run_dir), "--json").stdout)
     assert all(s["state"] == "done" for s in m["stages"].values())
