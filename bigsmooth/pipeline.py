@@ -2,7 +2,6 @@
 import logging
 import os
 import shutil
-import tempfile
 
 from . import config as config_mod
 from .errors import OutputError
@@ -14,12 +13,18 @@ log = logging.getLogger("bigsmooth.run")
 
 
 def _check_writable(path):
-    try:
-        os.makedirs(path, exist_ok=True)
-        with tempfile.NamedTemporaryFile(dir=path, prefix=".bigsmooth-probe-"):
-            pass
-    except OSError as exc:
-        raise OutputError(f"output.path {path} is not writable: {exc.strerror or exc}") from None
+    """Fail early if the output folder (or, when it does not exist yet, its nearest parent) is not writable.
+
+    Nothing is created here: a run that fails before publishing leaves no trace in the output location.
+    """
+    probe = os.path.abspath(path)
+    while not os.path.exists(probe):
+        parent = os.path.dirname(probe)
+        if parent == probe:
+            break
+        probe = parent
+    if not os.path.isdir(probe) or not os.access(probe, os.W_OK | os.X_OK):
+        raise OutputError(f"output.path {path} is not writable (checked {probe})")
 
 
 def _stage_calls(rd, cfg, fp, rid):

@@ -209,3 +209,14 @@ def test_nightly_script_passes_the_exit_code_through(demo_run, tmp_path):
     bad.write_text("[input]\npath = 3\n")
     res = subprocess.run(["bash", script, str(bad)], capture_output=True, text=True, env=env)
     assert res.returncode == EXIT_CONFIG and "input.path must be a string" in res.stderr
+
+
+def test_unwritable_output_is_refused_before_any_work(tmp_path):
+    # a regular file where the output folder's parent should be: not writable even for root
+    cols = _small_table()
+    cfg = _write_case(tmp_path, cols)
+    (tmp_path / "blocker").write_text("not a folder")
+    cfg.write_text(cfg.read_text().replace('path = "out"', 'path = "blocker/out"'))
+    res = cli("run", str(cfg))
+    assert res.returncode == 73 and "not writable" in res.stderr
+    assert (tmp_path / "blocker").read_text() == "not a folder"

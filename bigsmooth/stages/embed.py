@@ -17,6 +17,7 @@ import scipy.sparse as sp
 from .. import atomic
 from ..kernels import fairspace
 from ..kernels.metrics import roc_auc
+from ..progress import Progress
 from ..table import ROW, Source, connect, quote, stream
 from .scan import MISSING_LEVEL
 
@@ -105,6 +106,7 @@ def run(rundir, cfg, fp):
     batch_rows = ecfg["batch_rows"]
     mom = None
     seen = 0
+    prog = Progress(log, "embed pass 1 (statistics)", n)
     for batch in stream(src.relation(con, sql), batch_rows):
         rows = batch.column(ROW).to_numpy()
         X = _features(batch, inp, levels)
@@ -124,7 +126,7 @@ def run(rundir, cfg, fp):
         if label is not None:
             label[rows] = batch.column(inp["label"]).to_numpy(zero_copy_only=False)
         seen += len(rows)
-        log.info("embed pass 1: %d / %d rows", seen, n)
+        prog.update(len(rows))
     if seen != n:
         raise RuntimeError(f"embed pass 1 streamed {seen} rows; the footers say {n}")
 
@@ -148,6 +150,7 @@ def run(rundir, cfg, fp):
     sample = np.sort(rng.choice(n, size=min(n, ecfg["probe_rows"]), replace=False))
     raw_sample = np.zeros((len(sample), p))
     seen = 0
+    prog = Progress(log, "embed pass 2 (embedding)", n)
     for batch in stream(src.relation(con, sql), batch_rows):
         rows = batch.column(ROW).to_numpy()
         X = _features(batch, inp, levels)
@@ -156,7 +159,7 @@ def run(rundir, cfg, fp):
         hit = (pos < len(sample)) & (sample[np.minimum(pos, len(sample) - 1)] == rows)
         raw_sample[pos[hit]] = (X[hit] - fs.mean) * fs.scale   # standardised, before the projection
         seen += len(rows)
-        log.info("embed pass 2: %d / %d rows", seen, n)
+        prog.update(len(rows))
     if seen != n:
         raise RuntimeError(f"embed pass 2 streamed {seen} rows; the footers say {n}")
 
