@@ -140,7 +140,7 @@ kernel_scale = "global"
 [solve]
 laplacian = "unnormalised"
 lam = 1.0
-method = "blocks"
+method = "sweep-cg"
 tol = 1e-6
 
 [output]

@@ -27,6 +27,17 @@ def _check_writable(path):
         raise OutputError(f"output.path {path} is not writable (checked {probe})")
 
 
+def _allow_numba_threads(threads):
+    """numba caps its thread count at NUMBA_NUM_THREADS (default: the cores) when it starts, and the
+    approximate index needs exactly graph.index_threads threads whatever the machine: raise the cap
+    before numba is imported (a no-op if it already was)."""
+    import sys
+
+    if "numba" not in sys.modules:
+        current = int(os.environ.get("NUMBA_NUM_THREADS", os.cpu_count() or 1))
+        os.environ["NUMBA_NUM_THREADS"] = str(max(current, threads))
+
+
 def _stage_calls(rd, cfg, fp, rid):
     return {
         "scan": lambda: scan.run(rd, cfg, fp),
@@ -47,6 +58,7 @@ def run_job(config_path, fresh=False):
     dict with ``run_dir``, ``run_id``, ``already_complete`` and the published ``output`` folder.
     """
     cfg = config_mod.load_config(config_path)
+    _allow_numba_threads(cfg["graph"]["index_threads"])
     fp = fingerprint(cfg["input"]["path"])
     chash = config_mod.config_hash(cfg)
     rid = run_id(chash, fp["hash"])

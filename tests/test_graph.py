@@ -36,17 +36,18 @@ def test_approximate_neighbours_recall_against_exact(rng):
     centres = rng.normal(scale=4, size=(30, 10))
     X = (centres[rng.integers(0, 30, 4000)] + rng.normal(size=(4000, 10))).astype(np.float32)
     k = 10
-    ind, dist = gk.approx_knn(X, k, seed=3)
+    ind, dist = gk.approx_knn(X, k, seed=3, search=15, threads=2)
     ref_ind, _ = sklearn_neighbours(X.astype(np.float64), k)
     recall = np.mean([len(set(a) & set(b)) / k for a, b in zip(ind, ref_ind)])
     assert recall >= 0.95, recall
     assert not np.any(ind == np.arange(len(X))[:, None])
 
 
-def test_approximate_neighbours_same_seed_same_graph(rng):
+@pytest.mark.parametrize("threads", [1, 2])
+def test_approximate_neighbours_same_seed_same_graph(rng, threads):
     X = rng.normal(size=(3000, 5)).astype(np.float32)
-    a = gk.approx_knn(X, 5, seed=11)
-    b = gk.approx_knn(X, 5, seed=11)
+    a = gk.approx_knn(X, 5, seed=11, threads=threads)
+    b = gk.approx_knn(X, 5, seed=11, threads=threads)
     assert np.array_equal(a[0], b[0]) and np.array_equal(a[1], b[1])
 
 

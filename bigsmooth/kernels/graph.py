@@ -59,15 +59,31 @@ def drop_self(indices, distances, k):
     return indices[keep].reshape(n, k), distances[keep].reshape(n, k)
 
 
-def approx_knn(X, k, seed, n_trees=0):
-    """Approximate k nearest neighbours with pynndescent (Euclidean), excluding each row itself."""
+def approx_knn(X, k, seed, n_trees=0, search=None, threads=1):
+    """Approximate k nearest neighbours with pynndescent (Euclidean), excluding each row itself.
+
+    The index looks for ``search`` (>= k) neighbours and the nearest k are kept: asking for more
+    than needed raises recall at a modest cost. pynndescent's result depends on its thread count,
+    so ``threads`` is a setting, not the machine's core count; numba must allow that many threads
+    (NUMBA_NUM_THREADS, which the pipeline raises before numba starts).
+    """
+    import numba
     from pynndescent import NNDescent  # imported late: numba compiles on first use
 
+    search = max(k, search or k)
+    if threads > numba.config.NUMBA_NUM_THREADS:
+        raise RuntimeError(f"graph.index_threads = {threads} but numba allows {numba.config.NUMBA_NUM_THREADS} "
+                           "threads in this process (set NUMBA_NUM_THREADS before start)")
     X = np.ascontiguousarray(X, dtype=np.float32)
     kw = {"n_trees": n_trees} if n_trees else {}
-    index = NNDescent(X, n_neighbors=k + 1, metric="euclidean", random_state=np.random.RandomState(seed),
-                      low_memory=True, compressed=False, n_jobs=1, **kw)
-    ind, dist = index.neighbor_graph
+    before = numba.get_num_threads()
+    try:
+        index = NNDescent(X, n_neighbors=min(search + 1, X.shape[0]), metric="euclidean",
+                          random_state=np.random.RandomState(seed), low_memory=True, compressed=False,
+                          n_jobs=threads, **kw)
+        ind, dist = index.neighbor_graph
+    finally:
+        numba.set_num_threads(before)
     ind = np.asarray(ind, dtype=np.int64)
     dist = np.asarray(dist, dtype=np.float64)
     bad = ind < 0
@@ -75,7 +91,8 @@ def approx_knn(X, k, seed, n_trees=0):
         rows = np.nonzero(bad)[0]
         ind[bad] = rows
         dist[bad] = 0.0
-    return drop_self(ind, dist, k)
+    ind, dist = drop_self(ind, dist, ind.shape[1] - 1)
+    return ind[:, :k], dist[:, :k]
 
 
 def kernel_scale(distances, rule="global", factor=1.0):

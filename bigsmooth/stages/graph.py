@@ -31,7 +31,9 @@ def run(rundir, cfg):
     if exact:
         ind, dist = gk.exact_knn(np.asarray(E), k)
     else:
-        ind, dist = gk.approx_knn(np.asarray(E), k, seed=cfg["run"]["seed"], n_trees=g["index_trees"])
+        search = g["search_neighbours"] or int(np.ceil(1.5 * k))
+        ind, dist = gk.approx_knn(np.asarray(E), k, seed=cfg["run"]["seed"], n_trees=g["index_trees"],
+                                  search=max(search, k), threads=g["index_threads"])
     sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"])
     W = gk.heat_kernel_graph(ind, dist, sigma)
     deg = np.asarray(W.sum(axis=1)).ravel()

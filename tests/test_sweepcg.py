@@ -1,0 +1,143 @@
+"""The sweep-preconditioned CG solver: exactness against scipy, determinism across workers, resume."""
+import os
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+from joblib import Parallel
+from scipy.sparse.csgraph import laplacian as csgraph_laplacian
+
+from bigsmooth.kernels import laplacian, sweepcg
+from conftest import random_graph
+
+
+def reference(W, Y, lam, kind):
+    L = csgraph_laplacian(W)                                         # scipy.sparse.csgraph.laplacian
+    d = np.asarray(W.sum(axis=1)).ravel()
+    c = np.ones(W.shape[0]) if kind == "unnormalised" else np.where(d > 0, d, 1.0)
+    return spla.spsolve((sp.diags(c) + lam * L).tocsc(), c[:, None] * Y).reshape(Y.shape)  # spsolve
+
+
+def _system(rng, n=500, density=0.015, lam=4.0, kind="unnormalised", cols=2):
+    W = random_graph(n, density, rng)
+    Y = rng.random((n, cols))
+    A, c = laplacian.system(W, lam, kind)
+    return W, Y, A, c[:, None] * Y
+
+
+@pytest.mark.parametrize("kind", ["unnormalised", "random_walk"])
+@pytest.mark.parametrize("bounds", [[0, 500], [0, 123, 350, 500], list(range(0, 501, 25))])
+@pytest.mark.parametrize("cols", [1, 3])
+def test_matches_spsolve(rng, kind, bounds, cols):
+    W, Y, A, b = _system(rng, kind=kind, cols=cols)
+    As, s = sweepcg.scale_system(A)
+    res = sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-12, max_sweeps=2000)
+    assert res.status == sweepcg.STATUS_CONVERGED
+    np.testing.assert_allclose(res.x, reference(W, Y, 4.0, kind), atol=1e-8)
+
+
+def test_compiled_kernels_match_python_references(rng):
+    _, Y, A, b = _system(rng)
+    As, s = sweepcg.scale_system(A)
+    bounds = [0, 200, 500]
+    fast = sweepcg.sweep_cg(As, s, b, bounds, tol=1e-10, max_sweeps=15)
+    slow = sweepcg.sweep_cg(As, s, b, bounds, tol=1e-10, max_sweeps=15, kernels=sweepcg.PY_KERNELS)
+    assert fast.sweeps == slow.sweeps
+    np.testing.assert_allclose(fast.x, slow.x, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(fast.residuals, slow.residuals, rtol=1e-9)
+
+
+def test_singleton_groups_are_jacobi_pcg(rng):
+    # With one row per group the preconditioner is diag(A): the iterates are Jacobi-preconditioned CG,
+    # so the iteration count matches scipy.sparse.linalg.cg with M = diag(A)^-1 to within a sweep.
+    _, Y, A, b = _system(rng, cols=1)
+    As, s = sweepcg.scale_system(A)
+    ours = sweepcg.sweep_cg(As, s, b, np.arange(501), tol=1e-8, max_sweeps=2000)
+    count = [0]
+    spla.cg(A, b[:, 0], rtol=1e-8, M=sp.diags(1 / A.diagonal()), callback=lambda x: count.__setitem__(0, count[0] + 1))
+    assert abs(ours.sweeps - count[0]) <= 1
+
+
+def test_fewer_sweeps_than_jacobi_with_local_groups(rng):
+    # a ring-of-cliques graph: groups that hold whole cliques make the sweeps a strong preconditioner
+    blocks = [sp.csr_matrix(np.ones((20, 20)) - np.eye(20)) for _ in range(25)]
+    W = sp.block_diag(blocks).tolil()
+    for i in range(25):
+        W[i * 20, ((i + 1) % 25) * 20 + 1] = W[((i + 1) % 25) * 20 + 1, i * 20] = 1.0
+    W = W.tocsr()
+    A, _ = laplacian.system(W, 10.0, "unnormalised")
+    b = rng.random((500, 1))
+    As, s = sweepcg.scale_system(A)
+    grouped = sweepcg.sweep_cg(As, s, b, np.arange(0, 501, 100), tol=1e-8)
+    jacobi = sweepcg.sweep_cg(As, s, b, np.arange(501), tol=1e-8)
+    assert grouped.sweeps < jacobi.sweeps
+
+
+@pytest.mark.parametrize("backend", ["threading", "loky"])
+def test_bit_identical_for_one_and_two_workers(rng, tmp_path, backend):
+    _, Y, A, b = _system(rng, n=2000, density=0.004, cols=2)
+    As, s = sweepcg.scale_system(A)
+    bounds = [0, 300, 700, 1200, 1600, 2000]
+    serial = sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-10)
+
+    def mm(name, shape):
+        return np.lib.format.open_memmap(str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape)
+
+    trip = []
+    for name, arr in (("ip", As.indptr), ("ix", As.indices), ("d", As.data)):
+        np.save(tmp_path / f"{name}.npy", arr)
+        trip.append(np.load(tmp_path / f"{name}.npy", mmap_mode="r"))
+    with Parallel(n_jobs=2, backend=backend) as par:
+        two = sweepcg.sweep_cg(tuple(trip), s, b, bounds, x0=Y, tol=1e-10, parallel=par,
+                               work=sweepcg.Work.allocate(2000, 2, mm), A=A)
+    assert two.sweeps == serial.sweeps
+    assert np.array_equal(two.x, serial.x)
+
+
+def test_resume_from_state_is_bit_identical(rng):
+    _, Y, A, b = _system(rng)
+    As, s = sweepcg.scale_system(A)
+    bounds = [0, 250, 500]
+    full = sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-11)
+    saved = {}
+
+    def stop_at_5(state, work):
+        if state["sweep"] == 5:
+            saved.update(state={k: (v.copy() if isinstance(v, np.ndarray) else (list(v) if isinstance(v, list) else v))
+                                for k, v in state.items()},
+                         x=work.x.copy(), r=work.r.copy(), p=work.p.copy())
+            return False
+
+    sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-11, on_sweep=stop_at_5)
+    work = sweepcg.Work.allocate(500, 2)
+    work.x[:], work.r[:], work.p[:] = saved["x"], saved["r"], saved["p"]
+    resumed = sweepcg.sweep_cg(As, s, b, bounds, tol=1e-11, work=work, state=saved["state"])
+    assert resumed.sweeps == full.sweeps
+    assert np.array_equal(resumed.x, full.x)
+
+
+def test_warm_start_converges_to_the_same_answer_in_fewer_sweeps(rng):
+    W, Y, A, b = _system(rng)
+    As, s = sweepcg.scale_system(A)
+    cold = sweepcg.sweep_cg(As, s, b, [0, 250, 500], x0=Y, tol=1e-9)
+    near = cold.x + 1e-5 * rng.standard_normal(cold.x.shape)
+    warm = sweepcg.sweep_cg(As, s, b, [0, 250, 500], x0=near, tol=1e-9)
+    assert warm.sweeps < cold.sweeps
+    np.testing.assert_allclose(warm.x, reference(W, Y, 4.0, "unnormalised"), atol=1e-7)
+
+
+def test_reports_max_sweeps_with_the_true_residual(rng):
+    _, Y, A, b = _system(rng, lam=100.0)
+    As, s = sweepcg.scale_system(A)
+    res = sweepcg.sweep_cg(As, s, b, [0, 500], tol=1e-14, max_sweeps=2)
+    assert res.status == sweepcg.STATUS_MAX_ITER and res.sweeps == 2
+    true = np.linalg.norm(b - A @ res.x) / np.linalg.norm(b)
+    assert res.final_residual == pytest.approx(true, rel=1e-9)
+
+
+def test_zero_right_hand_side():
+    A = sp.identity(5, format="csr") * 2.0
+    As, s = sweepcg.scale_system(A)
+    res = sweepcg.sweep_cg(As, s, np.zeros((5, 1)), [0, 5])
+    assert res.status == sweepcg.STATUS_CONVERGED and not res.x.any()
