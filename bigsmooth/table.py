@@ -11,6 +11,7 @@ import json
 import logging
 import os
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
@@ -105,6 +106,7 @@ class Source:
     """
 
     def __init__(self, con, fp):
+        self.files = fp["files"]
         offsets = pa.table({"filename": [e["path"] for e in fp["files"]],
                             "__offset": pa.array([e["offset"] for e in fp["files"]], pa.int64())})
         con.register("__bigsmooth_offsets", offsets)
@@ -119,17 +121,48 @@ class Source:
         """Run a query whose FROM names ``{src}``; return all result rows as tuples."""
         return con.execute(sql.replace("{src}", self.sql), {**self.params, **params}).fetchall()
 
-    def relation(self, con, sql):
-        """A lazy DuckDB relation of a query whose FROM names ``{src}`` (for :func:`stream`)."""
-        return con.sql(sql.replace("{src}", self.sql), params=self.params)
+    def chunks(self, con, select, batch_rows):
+        """Stream the table file by file in fixed chunks: yields (rows, pyarrow.Table).
+
+        ``select`` is the column list of a SELECT (quoted identifiers / casts); the stable row index
+        is added as :data:`ROW`. Each file is a plain single-file scan, whose order DuckDB keeps
+        (preserve_insertion_order); the row index comes from ``file_row_number`` and is checked to
+        run 0, 1, 2, ... so that a change in DuckDB's behaviour fails loudly instead of silently.
+        Chunks hold exactly ``batch_rows`` rows (fewer at the end of a file), so that the same input
+        is always cut the same way and every sum over chunks adds the same numbers in the same order.
+        """
+        con.execute("SET preserve_insertion_order = true")
+        for e in self.files:
+            rel = con.sql(f"SELECT file_row_number AS {ROW}, {select} FROM read_parquet($file, "
+                          f"hive_partitioning = true, file_row_number = true, can_have_nan = true)",
+                          params={"file": e["path"]})
+            pending, have, expect = [], 0, 0
+            for batch in rel.to_arrow_reader(batch_rows):
+                if not batch.num_rows:
+                    continue
+                pending.append(batch)
+                have += batch.num_rows
+                while have >= batch_rows:
+                    table = pa.Table.from_batches(pending)
+                    head, rest = table.slice(0, batch_rows), table.slice(batch_rows)
+                    expect = yield_check(head, e, expect)
+                    yield e["offset"] + head.column(ROW).to_numpy(), head
+                    pending, have = rest.to_batches(), rest.num_rows
+            if have:
+                table = pa.Table.from_batches(pending)
+                expect = yield_check(table, e, expect)
+                yield e["offset"] + table.column(ROW).to_numpy(), table
+            if expect != e["rows"]:
+                raise RuntimeError(f"{e['path']}: streamed {expect} rows; the footer says {e['rows']}")
 
 
-def stream(rel, batch_rows):
-    """Yield pyarrow RecordBatches of a DuckDB relation, ``batch_rows`` at a time (never the whole table)."""
-    reader = rel.to_arrow_reader(batch_rows)
-    for batch in reader:
-        if batch.num_rows:
-            yield batch
+def yield_check(table, entry, expect):
+    """Check that a chunk's file row numbers continue the file's sequence; return the next one."""
+    rows = table.column(ROW).to_numpy()
+    if rows[0] != expect or (len(rows) > 1 and not np.all(np.diff(rows) == 1)):
+        raise RuntimeError(f"{entry['path']}: DuckDB returned rows out of file order near row {expect}; "
+                           "refusing to continue (row order must be deterministic)")
+    return expect + len(rows)
 
 
 def ids_at_rows(fp, id_col, rows):

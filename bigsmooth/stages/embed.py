@@ -18,7 +18,7 @@ from .. import atomic
 from ..kernels import fairspace
 from ..kernels.metrics import roc_auc
 from ..progress import Progress
-from ..table import ROW, Source, connect, quote, stream
+from ..table import Source, connect, quote
 from .scan import MISSING_LEVEL
 
 log = logging.getLogger("bigsmooth.embed")
@@ -52,11 +52,11 @@ def _features(batch, inp, levels):
 
 
 def _select_sql(inp):
-    cols = [ROW] + [quote(c) for c in inp["scores"] + inp["numeric_features"]]
+    cols = [quote(c) for c in inp["scores"] + inp["numeric_features"]]
     cols += [f"CAST({quote(c)} AS VARCHAR) AS {quote(c)}" for c in inp["categorical_features"] + inp["protected"]]
     if inp["label"]:
         cols.append(f"CAST({quote(inp['label'])} AS DOUBLE) AS {quote(inp['label'])}")
-    return f"SELECT {', '.join(cols)} FROM {{src}}"
+    return ", ".join(cols)
 
 
 class _Outputs:
@@ -107,8 +107,7 @@ def run(rundir, cfg, fp):
     mom = None
     seen = 0
     prog = Progress(log, "embed pass 1 (statistics)", n)
-    for batch in stream(src.relation(con, sql), batch_rows):
-        rows = batch.column(ROW).to_numpy()
+    for rows, batch in src.chunks(con, sql, batch_rows):
         X = _features(batch, inp, levels)
         S_parts, off = [], 0
         for j, c in enumerate(inp["protected"]):
@@ -151,8 +150,7 @@ def run(rundir, cfg, fp):
     raw_sample = np.zeros((len(sample), p))
     seen = 0
     prog = Progress(log, "embed pass 2 (embedding)", n)
-    for batch in stream(src.relation(con, sql), batch_rows):
-        rows = batch.column(ROW).to_numpy()
+    for rows, batch in src.chunks(con, sql, batch_rows):
         X = _features(batch, inp, levels)
         E[rows] = fs.apply(X).astype(np.float32)
         pos = np.searchsorted(sample, rows)
