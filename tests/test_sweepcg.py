@@ -1,6 +1,4 @@
 """The sweep-preconditioned CG solver: exactness against scipy, determinism across workers, resume."""
-import os
-
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -31,18 +29,16 @@ def _system(rng, n=500, density=0.015, lam=4.0, kind="unnormalised", cols=2):
 @pytest.mark.parametrize("cols", [1, 3])
 def test_matches_spsolve(rng, kind, bounds, cols):
     W, Y, A, b = _system(rng, kind=kind, cols=cols)
-    As, s = sweepcg.scale_system(A)
-    res = sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-12, max_sweeps=2000)
+    res = sweepcg.sweep_cg(sweepcg.prepare(A, bounds), b, x0=Y, tol=1e-12, max_sweeps=2000)
     assert res.status == sweepcg.STATUS_CONVERGED
     np.testing.assert_allclose(res.x, reference(W, Y, 4.0, kind), atol=1e-8)
 
 
 def test_compiled_kernels_match_python_references(rng):
     _, Y, A, b = _system(rng)
-    As, s = sweepcg.scale_system(A)
-    bounds = [0, 200, 500]
-    fast = sweepcg.sweep_cg(As, s, b, bounds, tol=1e-10, max_sweeps=15)
-    slow = sweepcg.sweep_cg(As, s, b, bounds, tol=1e-10, max_sweeps=15, kernels=sweepcg.PY_KERNELS)
+    system = sweepcg.prepare(A, [0, 200, 500])
+    fast = sweepcg.sweep_cg(system, b, tol=1e-10, max_sweeps=15)
+    slow = sweepcg.sweep_cg(system, b, tol=1e-10, max_sweeps=15, kernels=sweepcg.PY_KERNELS)
     assert fast.sweeps == slow.sweeps
     np.testing.assert_allclose(fast.x, slow.x, rtol=0, atol=1e-12)
     np.testing.assert_allclose(fast.residuals, slow.residuals, rtol=1e-9)
@@ -52,8 +48,7 @@ def test_singleton_groups_are_jacobi_pcg(rng):
     # With one row per group the preconditioner is diag(A): the iterates are Jacobi-preconditioned CG,
     # so the iteration count matches scipy.sparse.linalg.cg with M = diag(A)^-1 to within a sweep.
     _, Y, A, b = _system(rng, cols=1)
-    As, s = sweepcg.scale_system(A)
-    ours = sweepcg.sweep_cg(As, s, b, np.arange(501), tol=1e-8, max_sweeps=2000)
+    ours = sweepcg.sweep_cg(sweepcg.prepare(A, np.arange(501)), b, tol=1e-8, max_sweeps=2000)
     count = [0]
     spla.cg(A, b[:, 0], rtol=1e-8, M=sp.diags(1 / A.diagonal()), callback=lambda x: count.__setitem__(0, count[0] + 1))
     assert abs(ours.sweeps - count[0]) <= 1
@@ -68,38 +63,38 @@ def test_fewer_sweeps_than_jacobi_with_local_groups(rng):
     W = W.tocsr()
     A, _ = laplacian.system(W, 10.0, "unnormalised")
     b = rng.random((500, 1))
-    As, s = sweepcg.scale_system(A)
-    grouped = sweepcg.sweep_cg(As, s, b, np.arange(0, 501, 100), tol=1e-8)
-    jacobi = sweepcg.sweep_cg(As, s, b, np.arange(501), tol=1e-8)
+    grouped = sweepcg.sweep_cg(sweepcg.prepare(A, np.arange(0, 501, 100)), b, tol=1e-8)
+    jacobi = sweepcg.sweep_cg(sweepcg.prepare(A, np.arange(501)), b, tol=1e-8)
     assert grouped.sweeps < jacobi.sweeps
 
 
 @pytest.mark.parametrize("backend", ["threading", "loky"])
 def test_bit_identical_for_one_and_two_workers(rng, tmp_path, backend):
     _, Y, A, b = _system(rng, n=2000, density=0.004, cols=2)
-    As, s = sweepcg.scale_system(A)
-    bounds = [0, 300, 700, 1200, 1600, 2000]
-    serial = sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-10)
+    system = sweepcg.prepare(A, [0, 300, 700, 1200, 1600, 2000])
+    serial = sweepcg.sweep_cg(system, b, x0=Y, tol=1e-10)
 
     def mm(name, shape):
         return np.lib.format.open_memmap(str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape)
 
-    trip = []
-    for name, arr in (("ip", As.indptr), ("ix", As.indices), ("d", As.data)):
-        np.save(tmp_path / f"{name}.npy", arr)
-        trip.append(np.load(tmp_path / f"{name}.npy", mmap_mode="r"))
+    parts = {}
+    for part in ("L", "U", "O"):
+        arrs = []
+        for i, arr in enumerate(getattr(system, part)):
+            np.save(tmp_path / f"{part}{i}.npy", arr)
+            arrs.append(np.load(tmp_path / f"{part}{i}.npy", mmap_mode="r"))
+        parts[part] = tuple(arrs)
+    shared = sweepcg.Grouped(system.s, system.bounds, parts["L"], parts["U"], parts["O"])
     with Parallel(n_jobs=2, backend=backend) as par:
-        two = sweepcg.sweep_cg(tuple(trip), s, b, bounds, x0=Y, tol=1e-10, parallel=par,
-                               work=sweepcg.Work.allocate(2000, 2, mm), A=A)
+        two = sweepcg.sweep_cg(shared, b, x0=Y, tol=1e-10, parallel=par, work=sweepcg.Work.allocate(2000, 2, mm))
     assert two.sweeps == serial.sweeps
     assert np.array_equal(two.x, serial.x)
 
 
 def test_resume_from_state_is_bit_identical(rng):
     _, Y, A, b = _system(rng)
-    As, s = sweepcg.scale_system(A)
-    bounds = [0, 250, 500]
-    full = sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-11)
+    system = sweepcg.prepare(A, [0, 250, 500])
+    full = sweepcg.sweep_cg(system, b, x0=Y, tol=1e-11)
     saved = {}
 
     def stop_at_5(state, work):
@@ -109,28 +104,27 @@ def test_resume_from_state_is_bit_identical(rng):
                          x=work.x.copy(), r=work.r.copy(), p=work.p.copy())
             return False
 
-    sweepcg.sweep_cg(As, s, b, bounds, x0=Y, tol=1e-11, on_sweep=stop_at_5)
+    sweepcg.sweep_cg(system, b, x0=Y, tol=1e-11, on_sweep=stop_at_5)
     work = sweepcg.Work.allocate(500, 2)
     work.x[:], work.r[:], work.p[:] = saved["x"], saved["r"], saved["p"]
-    resumed = sweepcg.sweep_cg(As, s, b, bounds, tol=1e-11, work=work, state=saved["state"])
+    resumed = sweepcg.sweep_cg(system, b, tol=1e-11, work=work, state=saved["state"])
     assert resumed.sweeps == full.sweeps
     assert np.array_equal(resumed.x, full.x)
 
 
 def test_warm_start_converges_to_the_same_answer_in_fewer_sweeps(rng):
     W, Y, A, b = _system(rng)
-    As, s = sweepcg.scale_system(A)
-    cold = sweepcg.sweep_cg(As, s, b, [0, 250, 500], x0=Y, tol=1e-9)
+    system = sweepcg.prepare(A, [0, 250, 500])
+    cold = sweepcg.sweep_cg(system, b, x0=Y, tol=1e-9)
     near = cold.x + 1e-5 * rng.standard_normal(cold.x.shape)
-    warm = sweepcg.sweep_cg(As, s, b, [0, 250, 500], x0=near, tol=1e-9)
+    warm = sweepcg.sweep_cg(system, b, x0=near, tol=1e-9)
     assert warm.sweeps < cold.sweeps
     np.testing.assert_allclose(warm.x, reference(W, Y, 4.0, "unnormalised"), atol=1e-7)
 
 
 def test_reports_max_sweeps_with_the_true_residual(rng):
     _, Y, A, b = _system(rng, lam=100.0)
-    As, s = sweepcg.scale_system(A)
-    res = sweepcg.sweep_cg(As, s, b, [0, 500], tol=1e-14, max_sweeps=2)
+    res = sweepcg.sweep_cg(sweepcg.prepare(A, [0, 500]), b, tol=1e-14, max_sweeps=2)
     assert res.status == sweepcg.STATUS_MAX_ITER and res.sweeps == 2
     true = np.linalg.norm(b - A @ res.x) / np.linalg.norm(b)
     assert res.final_residual == pytest.approx(true, rel=1e-9)
@@ -138,6 +132,20 @@ def test_reports_max_sweeps_with_the_true_residual(rng):
 
 def test_zero_right_hand_side():
     A = sp.identity(5, format="csr") * 2.0
-    As, s = sweepcg.scale_system(A)
-    res = sweepcg.sweep_cg(As, s, np.zeros((5, 1)), [0, 5])
+    res = sweepcg.sweep_cg(sweepcg.prepare(A, [0, 5]), np.zeros((5, 1)))
     assert res.status == sweepcg.STATUS_CONVERGED and not res.x.any()
+
+
+def test_split_reassembles_the_scaled_matrix(rng):
+    _, _, A, _ = _system(rng)
+    system = sweepcg.prepare(A, [0, 100, 420, 500])
+    L, U, O = system.matrices()
+    S = sp.diags(system.s)
+    np.testing.assert_allclose((sp.identity(500) + L + U + O).toarray(), (S @ A @ S).toarray(), atol=1e-15)
+    grp = np.searchsorted([0, 100, 420, 500], np.arange(500), side="right") - 1
+    for M, ok in ((L, lambda i, j: grp[i] == grp[j] and j < i), (U, lambda i, j: grp[i] == grp[j] and j > i),
+                  (O, lambda i, j: grp[i] != grp[j])):
+        Mc = M.tocoo()
+        assert all(ok(i, j) for i, j in zip(Mc.row, Mc.col))
+    x = rng.random((500, 2))
+    np.testing.assert_allclose(system.matvec(x), A @ x, atol=1e-12)

@@ -29,62 +29,51 @@ def gauss_seidel_rows(indptr, indices, data, b, x, start, stop, sweeps):
 
 
 # ---- sweep-CG kernels (see bigsmooth.kernels.sweepcg for the method and the Python references) ----
-# A is Jacobi-scaled (unit diagonal); a group is the row range [start, stop). Vectors are (n, c).
+# The Jacobi-scaled matrix is split into strictly lower (L) and strictly upper (U) couplings inside
+# a row's group and couplings to other groups (O), each a CSR triplet. Vectors are (n, c); the column
+# loop is outermost so that the inner loops are plain scalar loops.
 
 @numba.njit(cache=True, nogil=True)
-def backward_sweep(indptr, indices, data, r, p, t, beta, start, stop):
-    """p_g = r_g + beta p_g, then t_g = E_g^-T p_g (upper in-group couplings, backwards)."""
-    c = p.shape[1]
-    acc = np.empty(c)
-    for i in range(stop - 1, start - 1, -1):
-        for k in range(c):
-            p[i, k] = r[i, k] + beta[k] * p[i, k]
-            acc[k] = p[i, k]
-        for q in range(indptr[i], indptr[i + 1]):
-            j = indices[q]
-            if j > i and j < stop:
-                a = data[q]
-                for k in range(c):
-                    acc[k] -= a * t[j, k]
-        for k in range(c):
-            t[i, k] = acc[k]
+def backward_sweep(Up, Ui, Ud, r, p, t, beta, start, stop):
+    """p_g = r_g + beta p_g, then t_g = E_g^-T p_g = solve (I + U_g) t = p backwards."""
+    for k in range(p.shape[1]):
+        bk = beta[k]
+        for i in range(stop - 1, start - 1, -1):
+            pi = r[i, k] + bk * p[i, k]
+            p[i, k] = pi
+            acc = pi
+            for q in range(Up[i], Up[i + 1]):
+                acc -= Ud[q] * t[Ui[q], k]
+            t[i, k] = acc
 
 
 @numba.njit(cache=True, nogil=True)
-def forward_sweep(indptr, indices, data, p, t, w, ap, start, stop, pap):
+def forward_sweep(Lp, Li, Ld, Op, Oi, Od, p, t, w, ap, start, stop, pap):
     """w_g = E_g^-1 (p - t + O t)_g, ap_g = t_g + w_g; pap[k] = sum_g p[:, k] * ap[:, k]."""
-    c = p.shape[1]
-    acc = np.empty(c)
-    for k in range(c):
-        pap[k] = 0.0
-    for i in range(start, stop):
-        for k in range(c):
-            acc[k] = p[i, k] - t[i, k]
-        for q in range(indptr[i], indptr[i + 1]):
-            j = indices[q]
-            if j < start or j >= stop:
-                a = data[q]
-                for k in range(c):
-                    acc[k] += a * t[j, k]
-            elif j < i:
-                a = data[q]
-                for k in range(c):
-                    acc[k] -= a * w[j, k]
-        for k in range(c):
-            w[i, k] = acc[k]
-            ap[i, k] = t[i, k] + acc[k]
-            pap[k] += p[i, k] * ap[i, k]
+    for k in range(p.shape[1]):
+        acc_pap = 0.0
+        for i in range(start, stop):
+            acc = p[i, k] - t[i, k]
+            for q in range(Op[i], Op[i + 1]):
+                acc += Od[q] * t[Oi[q], k]
+            for q in range(Lp[i], Lp[i + 1]):
+                acc -= Ld[q] * w[Li[q], k]
+            w[i, k] = acc
+            api = t[i, k] + acc
+            ap[i, k] = api
+            acc_pap += p[i, k] * api
+        pap[k] = acc_pap
 
 
 @numba.njit(cache=True, nogil=True)
 def update_sweep(x, r, t, ap, alpha, start, stop, rr):
     """x_g += alpha t_g, r_g -= alpha ap_g; rr[k] = sum_g r[:, k]^2."""
-    c = x.shape[1]
-    for k in range(c):
-        rr[k] = 0.0
-    for i in range(start, stop):
-        for k in range(c):
-            x[i, k] += alpha[k] * t[i, k]
-            v = r[i, k] - alpha[k] * ap[i, k]
+    for k in range(x.shape[1]):
+        ak = alpha[k]
+        acc = 0.0
+        for i in range(start, stop):
+            x[i, k] += ak * t[i, k]
+            v = r[i, k] - ak * ap[i, k]
             r[i, k] = v
-            rr[k] += v * v
+            acc += v * v
+        rr[k] = acc

@@ -16,6 +16,10 @@ b of shape (n, c) (each column is its own CG run, all sharing the sweeps).
    cost about one matrix-vector product, so an iteration costs what a Jacobi-preconditioned CG
    iteration costs while needing fewer iterations. The iterate xs = E^-T yhat is updated with t.
 
+The scaled matrix is split once into L (strictly lower couplings inside a group), U (strictly
+upper inside a group) and O (couplings between groups), so the sweeps are plain loops over their
+own entries.
+
 Each iteration has three phases; in each, every group touches only its own rows of the outputs
 and the partial dot products are summed in group order, so results are bit-identical for any
 number of workers. Phase 1: p = r + beta p, t = E^-T p. Phase 2: ap = Ahat p and p.ap.
@@ -36,27 +40,23 @@ STATUS_STOPPED = "stopped"
 
 # ---- Python references of the compiled kernels in bigsmooth.kernels._fast (same signatures) ----
 
-def backward_sweep(indptr, indices, data, r, p, t, beta, start, stop):
+def backward_sweep(Up, Ui, Ud, r, p, t, beta, start, stop):
     for i in range(stop - 1, start - 1, -1):
         p[i] = r[i] + beta * p[i]
         acc = p[i].copy()
-        for q in range(indptr[i], indptr[i + 1]):
-            j = indices[q]
-            if i < j < stop:
-                acc -= data[q] * t[j]
+        for q in range(Up[i], Up[i + 1]):
+            acc -= Ud[q] * t[Ui[q]]
         t[i] = acc
 
 
-def forward_sweep(indptr, indices, data, p, t, w, ap, start, stop, pap):
+def forward_sweep(Lp, Li, Ld, Op, Oi, Od, p, t, w, ap, start, stop, pap):
     pap[:] = 0.0
     for i in range(start, stop):
         acc = p[i] - t[i]
-        for q in range(indptr[i], indptr[i + 1]):
-            j = indices[q]
-            if j < start or j >= stop:
-                acc += data[q] * t[j]
-            elif j < i:
-                acc -= data[q] * w[j]
+        for q in range(Op[i], Op[i + 1]):
+            acc += Od[q] * t[Oi[q]]
+        for q in range(Lp[i], Lp[i + 1]):
+            acc -= Ld[q] * w[Li[q]]
         w[i] = acc
         ap[i] = t[i] + acc
         pap += p[i] * ap[i]
@@ -77,15 +77,67 @@ def compiled_kernels():
     return {"backward": _fast.backward_sweep, "forward": _fast.forward_sweep, "update": _fast.update_sweep}
 
 
+@dataclass
+class Grouped:
+    """The Jacobi-scaled system split by block groups. Triplets are (indptr, indices, data)."""
+
+    s: np.ndarray        # (n,) diag(A)^-1/2
+    bounds: np.ndarray   # (G + 1,) group boundaries
+    L: tuple
+    U: tuple
+    O: tuple
+
+    @property
+    def n(self):
+        return len(self.s)
+
+    def matrices(self):
+        n = self.n
+        return [sp.csr_matrix((t[2], t[1], t[0]), shape=(n, n)) for t in (self.L, self.U, self.O)]
+
+    def matvec(self, x):
+        """A x for the unscaled A = S^-1 (I + L + U + O) S^-1, x of shape (n, c)."""
+        y = x / self.s[:, None]
+        out = y.copy()
+        for M in self.matrices():
+            out += M @ y
+        return out / self.s[:, None]
+
+
+def prepare(A, bounds):
+    """Scale A to a unit diagonal and split it by the group ``bounds`` into L, U and O."""
+    A = sp.csr_matrix(A, dtype=np.float64)
+    n = A.shape[0]
+    bounds = np.asarray(bounds, dtype=np.int64)
+    if bounds[0] != 0 or bounds[-1] != n or np.any(np.diff(bounds) <= 0):
+        raise ValueError(f"group bounds must rise strictly from 0 to n = {n}; got {bounds.tolist()}")
+    d = A.diagonal()
+    if np.any(d <= 0):
+        raise ValueError("A must have a positive diagonal")
+    s = 1.0 / np.sqrt(d)
+    As = (sp.diags(s) @ A @ sp.diags(s)).tocsr()
+    As.sort_indices()
+    rows = np.repeat(np.arange(n), np.diff(As.indptr))
+    cols = As.indices
+    grp = np.searchsorted(bounds, np.arange(n), side="right") - 1
+    same = grp[rows] == grp[cols]
+    parts = []
+    for mask in (same & (cols < rows), same & (cols > rows), ~same):
+        M = sp.csr_matrix((As.data[mask], (rows[mask], cols[mask])), shape=(n, n))
+        M.sort_indices()
+        parts.append((M.indptr.astype(np.int64), M.indices.astype(np.int32), M.data))
+    return Grouped(s, bounds, *parts)
+
+
 # ---- group tasks (module level so that process workers can import them) ----
 
-def _phase1(kern, As, r, p, t, beta, start, stop):
-    kern["backward"](As[0], As[1], As[2], r, p, t, beta, start, stop)
+def _phase1(kern, U, r, p, t, beta, start, stop):
+    kern["backward"](U[0], U[1], U[2], r, p, t, beta, start, stop)
 
 
-def _phase2(kern, As, p, t, w, ap, start, stop):
+def _phase2(kern, L, O, p, t, w, ap, start, stop):
     pap = np.zeros(p.shape[1])
-    kern["forward"](As[0], As[1], As[2], p, t, w, ap, start, stop, pap)
+    kern["forward"](L[0], L[1], L[2], O[0], O[1], O[2], p, t, w, ap, start, stop, pap)
     return pap
 
 
@@ -133,32 +185,14 @@ class SweepCGResult:
         return self.checks[-1][1] if self.checks else float("nan")
 
 
-def scale_system(A):
-    """Return (As, s): As = S A S with unit diagonal (CSR, sorted), s = diag(A)^-1/2."""
-    A = sp.csr_matrix(A, dtype=np.float64)
-    d = A.diagonal()
-    if np.any(d <= 0):
-        raise ValueError("A must have a positive diagonal")
-    s = 1.0 / np.sqrt(d)
-    As = (sp.diags(s) @ A @ sp.diags(s)).tocsr()
-    As.sort_indices()
-    return As, s
-
-
-def group_bounds(sizes):
-    b = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
-    return b
-
-
-def sweep_cg(As, s, b, bounds, x0=None, tol=1e-6, max_sweeps=500, parallel=None, kernels=None,
-             work=None, state=None, on_sweep=None, A=None):
+def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, parallel=None, kernels=None, work=None,
+             state=None, on_sweep=None):
     """Solve A x = b (b of shape (n, c)) by sweep-preconditioned CG; see the module docstring.
 
     Parameters
     ----------
-    As, s : from :func:`scale_system` (As may be given as a CSR triplet of memmaps ``(indptr, indices, data)``)
+    system : :class:`Grouped` from :func:`prepare` (its arrays may be memmaps)
     b : ndarray (n, c), the right-hand side of the unscaled system
-    bounds : ndarray (G + 1,), group boundaries (0 = bounds[0] < ... < bounds[G] = n)
     x0 : ndarray (n, c), optional initial iterate (warm start; default zeros)
     parallel : joblib.Parallel or None (serial); with process workers every array must be a memmap
     kernels : dict of the three kernels (default compiled; :data:`PY_KERNELS` are the references)
@@ -166,43 +200,43 @@ def sweep_cg(As, s, b, bounds, x0=None, tol=1e-6, max_sweeps=500, parallel=None,
     state : dict, optional resume state from ``on_sweep`` (``sweep``, ``rho``, ``beta``, ``nbhat``,
         ``residuals``, ``checks``, ``target``) with ``work`` holding the matching x, r, p
     on_sweep : callable(state_dict, work) -> bool or None, called after each iteration; False stops
-    A : the unscaled matrix (CSR) for the true residual (default rebuilt from As and s)
+
+    Returns
+    -------
+    SweepCGResult
     """
     kern = kernels or compiled_kernels()
-    if isinstance(As, tuple):
-        trip = As
-        n = len(trip[0]) - 1
-        As_mat = sp.csr_matrix((trip[2], trip[1], trip[0]), shape=(n, n))
-    else:
-        As_mat = As
-        trip = (As.indptr, As.indices, As.data)
-        n = As.shape[0]
+    sysm = system
+    n = sysm.n
+    s = sysm.s
     b = np.asarray(b, dtype=np.float64).reshape(n, -1)
     c = b.shape[1]
-    bounds = np.asarray(bounds, dtype=np.int64)
-    if bounds[0] != 0 or bounds[-1] != n or np.any(np.diff(bounds) <= 0):
-        raise ValueError(f"group bounds must rise strictly from 0 to n = {n}; got {bounds.tolist()}")
-    if A is None:
-        A = sp.diags(1.0 / s) @ As_mat @ sp.diags(1.0 / s)
+    bounds = sysm.bounds
     groups = list(zip(bounds[:-1].tolist(), bounds[1:].tolist()))
+    L, U, O = sysm.L, sysm.U, sysm.O
     work = work or Work.allocate(n, c)
-    bs = s[:, None] * b
     nb = float(np.linalg.norm(b))
     if nb == 0.0:
         work.x[:] = 0.0
         return SweepCGResult(np.zeros((n, c)), STATUS_CONVERGED, 0, [0.0], [(0, 0.0)])
+    bs = s[:, None] * b
 
     def forward_solve(v):
         """w = E^-1 v (one forward sweep with t = 0; p is scratch, ap and pap are by-products)."""
         work.t[:] = 0.0
         work.p[:] = v
-        _map(parallel, _phase2, [(kern, trip, work.p, work.t, work.w, work.ap, g0, g1) for g0, g1 in groups])
+        _map(parallel, _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, g0, g1) for g0, g1 in groups])
         return work.w
+
+    def true_residual():
+        x = s[:, None] * work.x
+        return float(np.linalg.norm(b - sysm.matvec(x)) / nb)
 
     if state is None:
         nbhat = float(np.linalg.norm(forward_solve(bs)))
         work.x[:] = 0.0 if x0 is None else np.asarray(x0, dtype=np.float64).reshape(n, c) / s[:, None]
-        work.r[:] = forward_solve(bs - As_mat @ work.x)        # r = E^-1 (bs - As xs)
+        # r = E^-1 (bs - As xs), with As xs = S A x
+        work.r[:] = forward_solve(bs - s[:, None] * sysm.matvec(s[:, None] * work.x))
         work.p[:] = 0.0
         state = {"sweep": 0, "rho": np.sum(work.r ** 2, axis=0), "beta": np.zeros(c), "nbhat": nbhat,
                  "residuals": [float(np.sqrt(np.sum(work.r ** 2)) / nbhat)], "checks": [], "target": tol}
@@ -212,10 +246,6 @@ def sweep_cg(As, s, b, bounds, x0=None, tol=1e-6, max_sweeps=500, parallel=None,
                  "beta": np.asarray(state["beta"], dtype=np.float64),
                  "residuals": list(state["residuals"]), "checks": [tuple(ch) for ch in state["checks"]]}
 
-    def true_residual():
-        x = s[:, None] * work.x
-        return float(np.linalg.norm(b - A @ x) / nb)
-
     status = STATUS_MAX_ITER
     if state["residuals"][-1] <= state["target"]:
         res = true_residual()
@@ -224,8 +254,8 @@ def sweep_cg(As, s, b, bounds, x0=None, tol=1e-6, max_sweeps=500, parallel=None,
             status = STATUS_CONVERGED
     while status != STATUS_CONVERGED and state["sweep"] < max_sweeps:
         beta = state["beta"]
-        _map(parallel, _phase1, [(kern, trip, work.r, work.p, work.t, beta, g0, g1) for g0, g1 in groups])
-        pap = np.sum(_map(parallel, _phase2, [(kern, trip, work.p, work.t, work.w, work.ap, g0, g1)
+        _map(parallel, _phase1, [(kern, U, work.r, work.p, work.t, beta, g0, g1) for g0, g1 in groups])
+        pap = np.sum(_map(parallel, _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, g0, g1)
                                               for g0, g1 in groups]), axis=0)
         rho = state["rho"]
         alpha = np.divide(rho, pap, out=np.zeros(c), where=pap > 0)

@@ -54,24 +54,28 @@ def _sweep_cg(rundir, s, A, b, Y, perm, bounds, ck_path):
     n, c = b.shape
     d = rundir.stage_dir("solve")
     Ap = A[perm][:, perm].tocsr()
-    Ap.sort_indices()
-    As, scale = sweepcg.scale_system(Ap)
+    del A
+    system = sweepcg.prepare(Ap, bounds)
+    del Ap
     processes = s["backend"] == "processes"
     if processes:
-        # workers map the scaled matrix and the vectors from the run directory
+        # workers map the split matrix and the vectors from the run directory
         sysdir = os.path.join(d, "system")
         os.makedirs(sysdir, exist_ok=True)
-        trip = []
-        for name, arr in (("indptr", As.indptr), ("indices", As.indices), ("data", As.data)):
-            atomic.save_npy(os.path.join(sysdir, f"{name}.npy"), arr)
-            trip.append(np.load(os.path.join(sysdir, f"{name}.npy"), mmap_mode="r"))
-        trip = tuple(trip)
+        parts = {}
+        for part in ("L", "U", "O"):
+            arrs = []
+            for name, arr in zip(("indptr", "indices", "data"), getattr(system, part)):
+                path = os.path.join(sysdir, f"{part}-{name}.npy")
+                atomic.save_npy(path, arr)
+                arrs.append(np.load(path, mmap_mode="r"))
+            parts[part] = tuple(arrs)
+        system = sweepcg.Grouped(system.s, system.bounds, parts["L"], parts["U"], parts["O"])
         workdir = os.path.join(d, "work")
         os.makedirs(workdir, exist_ok=True)
         work = sweepcg.Work.allocate(n, c, lambda name, shape: np.lib.format.open_memmap(
             os.path.join(workdir, f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
     else:
-        trip = (As.indptr, As.indices, As.data)
         work = sweepcg.Work.allocate(n, c)
     ck = load_checkpoint(ck_path)
     state = None
@@ -98,12 +102,11 @@ def _sweep_cg(rundir, s, A, b, Y, perm, bounds, ck_path):
         from joblib import Parallel
 
         with Parallel(n_jobs=nw, backend="loky" if processes else "threading") as par:
-            res = sweepcg.sweep_cg(trip, scale, b[perm], bounds, x0=Y[perm], tol=s["tol"],
-                                   max_sweeps=s["max_sweeps"], parallel=par, work=work, state=state,
-                                   on_sweep=on_sweep, A=Ap)
+            res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
+                                   parallel=par, work=work, state=state, on_sweep=on_sweep)
     else:
-        res = sweepcg.sweep_cg(trip, scale, b[perm], bounds, x0=Y[perm], tol=s["tol"],
-                               max_sweeps=s["max_sweeps"], work=work, state=state, on_sweep=on_sweep, A=Ap)
+        res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
+                               work=work, state=state, on_sweep=on_sweep)
     return res.x, {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
                    "true_residual_checks": [list(ch) for ch in res.checks], "final_residual": res.final_residual,
                    "groups": len(bounds) - 1, "workers": nw, "backend": s["backend"]}

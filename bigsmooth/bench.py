@@ -1,0 +1,192 @@
+"""Benchmark: the whole job on the demo scenario at a given size, and the solver against scipy's CG.
+
+    python -m bigsmooth.bench --rows 1000000 [--workers 2] [--dir DIR] [--json FILE]
+
+1. Generates the demo table (not timed as part of the job) and runs ``bigsmooth run`` in a fresh
+   child process, so numba compilation is included; reads per-stage wall times from the manifest
+   and the child's peak RSS (getrusage of waited-for children: the job and its workers).
+2. Neighbour recall@k of the graph against exact brute-force neighbours of a 2,000-row sample.
+3. On the job's own graph, for lam * mean degree in (10, 100): our solver (1 worker and
+   ``--workers``) and scipy.sparse.linalg.cg with a Jacobi preconditioner, side by side in this
+   process, each to the same relative residual; the table gives times and the ratio ours / CG.
+
+Prints one table and writes it as JSON. Timings are from this machine at this moment: compare
+ratios measured in the same run, not absolute seconds across machines.
+"""
+import argparse
+import json
+import os
+import platform
+import resource
+import shutil
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+
+def exact_sample_recall(E, ind, sample_rows, rng, chunk=200_000):
+    """Recall@k of neighbour lists ``ind`` against exact neighbours for a random sample of rows."""
+    n, k = ind.shape
+    s = np.sort(rng.choice(n, size=min(sample_rows, n), replace=False))
+    Q = np.asarray(E[s], dtype=np.float64)
+    best_d = np.full((len(s), k), np.inf)
+    best_i = np.full((len(s), k), -1, dtype=np.int64)
+    qq = np.einsum("ij,ij->i", Q, Q)
+    for a in range(0, n, chunk):
+        X = np.asarray(E[a:a + chunk], dtype=np.float64)
+        d2 = qq[:, None] + np.einsum("ij,ij->i", X, X)[None, :] - 2.0 * Q @ X.T
+        idx = np.arange(a, a + len(X))
+        d2[s[:, None] == idx[None, :]] = np.inf
+        cand_d = np.hstack([best_d, d2])
+        cand_i = np.hstack([best_i, np.broadcast_to(idx, d2.shape)])
+        part = np.argpartition(cand_d, k - 1, axis=1)[:, :k]
+        best_d = np.take_along_axis(cand_d, part, axis=1)
+        best_i = np.take_along_axis(cand_i, part, axis=1)
+    hits = [len(set(ind[r]) & set(best_i[j])) for j, r in enumerate(s)]
+    return float(np.sum(hits) / (len(s) * k))
+
+
+def solver_race(rundir, cfg, lam_degrees, workers):
+    """Our solver vs scipy CG (Jacobi) on the job's graph; returns a list of result dicts."""
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+    from joblib import Parallel
+
+    from .kernels import laplacian, sweepcg
+    from .rundir import RunDir
+    from .stages.graph import load_graph
+
+    rd = RunDir(rundir)
+    W = load_graph(rd, mmap=False)
+    Y = np.load(rd.file("embed", "scores.npy"))[:, :1]
+    perm = np.load(rd.file("order", "order.npy"))
+    bounds = np.load(rd.file("order", "groups.npy"))
+    tol = cfg["solve"]["tol"]
+    mean_deg = float(np.asarray(W.sum(axis=1)).mean())
+    # warm the compiled kernels on a tiny system so compilation is not timed
+    tiny = sp.csr_matrix(np.array([[2.0, -1.0], [-1.0, 2.0]]))
+    sweepcg.sweep_cg(sweepcg.prepare(tiny, [0, 1, 2]), np.ones((2, 1)))
+    out = []
+    for target in lam_degrees:
+        lam = target / mean_deg
+        A, c = laplacian.system(W, lam, cfg["solve"]["laplacian"])
+        b = c[:, None] * Y
+        row = {"lam_times_mean_degree": target, "lam": lam}
+        t0 = time.perf_counter()
+        M = sp.diags(1.0 / A.diagonal())
+        count = [0]
+        x, info = spla.cg(A, b[:, 0], rtol=tol, M=M, maxiter=100000,
+                          callback=lambda xk: count.__setitem__(0, count[0] + 1))
+        row["cg_seconds"] = time.perf_counter() - t0
+        row["cg_iterations"] = count[0]
+        row["cg_residual"] = float(np.linalg.norm(b[:, 0] - A @ x) / np.linalg.norm(b))
+        for w in sorted({1, workers}):
+            t0 = time.perf_counter()
+            Ap = A[perm][:, perm].tocsr()
+            Ap.sort_indices()
+            system = sweepcg.prepare(Ap, bounds)
+            t_setup = time.perf_counter() - t0
+            if w > 1:
+                with Parallel(n_jobs=w, backend="threading") as par:
+                    t1 = time.perf_counter()
+                    res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, parallel=par)
+            else:
+                t1 = time.perf_counter()
+                res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol)
+            t_iter = time.perf_counter() - t1
+            row[f"ours_w{w}_seconds"] = t_setup + t_iter
+            row[f"ours_w{w}_setup_seconds"] = t_setup
+            row[f"ours_w{w}_sweeps"] = res.sweeps
+            row[f"ours_w{w}_residual"] = res.final_residual
+            row[f"ratio_w{w}"] = (t_setup + t_iter) / row["cg_seconds"]
+        out.append(row)
+    return out
+
+
+def main(argv=None):
+    p = argparse.ArgumentParser(prog="python -m bigsmooth.bench", description=__doc__,
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--rows", type=int, default=1_000_000, help="demo rows (default 1000000)")
+    p.add_argument("--workers", type=int, default=2, help="solver workers for the job and the race (default 2)")
+    p.add_argument("--dir", default="bench-out", help="work folder (default ./bench-out; reused data if present)")
+    p.add_argument("--json", default=None, help="write the table here (default DIR/bench-<rows>.json)")
+    p.add_argument("--sample", type=int, default=2000, help="rows in the recall sample (default 2000)")
+    p.add_argument("--seed", type=int, default=7)
+    p.add_argument("--no-race", action="store_true", help="skip the solver comparison")
+    args = p.parse_args(argv)
+
+    from . import demo
+    from .atomic import read_json
+    from .config import load_config
+
+    base = os.path.abspath(os.path.join(args.dir, f"rows-{args.rows}"))
+    data = os.path.join(base, "data", "applicants")
+    t0 = time.perf_counter()
+    if not os.path.isdir(data):
+        demo.write_demo_table(data, args.rows, seed=args.seed, rows_per_file=1_000_000)
+    t_gen = time.perf_counter() - t0
+    shutil.rmtree(os.path.join(base, "runs"), ignore_errors=True)
+    shutil.rmtree(os.path.join(base, "output"), ignore_errors=True)
+    cfg_path = demo.write_demo_config(os.path.join(base, "bigsmooth.toml"), "data/applicants", "output", "runs")
+    text = open(cfg_path).read().replace("tol = 1e-6", f"tol = 1e-6\nworkers = {args.workers}")
+    with open(cfg_path, "w") as fh:
+        fh.write(text)
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "bigsmooth", "-q", "run", cfg_path], capture_output=True, text=True)
+    t_job = time.perf_counter() - t0
+    if proc.returncode != 0:
+        print(proc.stderr, file=sys.stderr)
+        raise SystemExit(f"the job failed with exit code {proc.returncode}")
+    peak_kb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    cfg = load_config(cfg_path)
+    (run_id,) = os.listdir(os.path.join(base, "runs"))
+    rundir = os.path.join(base, "runs", run_id)
+    m = read_json(os.path.join(rundir, "manifest.json"))
+    emb = read_json(os.path.join(rundir, "embed", "embed.json"))
+    solve = read_json(os.path.join(rundir, "solve", "solve.json"))
+    E = np.load(os.path.join(rundir, "embed", "embedding.npy"), mmap_mode="r")
+    ind = np.load(os.path.join(rundir, "graph", "neighbours.npy"), mmap_mode="r")
+    t0 = time.perf_counter()
+    recall = exact_sample_recall(E, ind, args.sample, np.random.default_rng(0))
+    t_recall = time.perf_counter() - t0
+    table = {
+        "machine": {"cores": os.cpu_count(), "memory_gib": round(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30, 1),
+                    "python": platform.python_version(), "platform": platform.platform()},
+        "rows": args.rows, "feature_columns": len(cfg["input"]["numeric_features"]) + len(cfg["input"]["categorical_features"]),
+        "encoded_features": len(emb["features"]), "fair_space_dim": emb["dim"],
+        "generate_seconds": t_gen, "job_seconds": t_job,
+        "stage_seconds": {k: v.get("seconds") for k, v in m["stages"].items()},
+        "peak_rss_gb": peak_kb * 1024 / 1e9, "rss_bytes_per_row": peak_kb * 1024 / args.rows,
+        "recall_at_k": recall, "recall_sample": args.sample, "recall_seconds": t_recall,
+        "job_solver": {k: solve.get(k) for k in ("method", "status", "sweeps", "final_residual", "workers", "groups")},
+        "workers": args.workers,
+    }
+    if not args.no_race:
+        table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers)
+    out = args.json or os.path.join(args.dir, f"bench-{args.rows}.json")
+    os.makedirs(os.path.dirname(os.path.abspath(out)), exist_ok=True)
+    with open(out, "w") as fh:
+        json.dump(table, fh, indent=2)
+    print(f"rows {table['rows']:,}  features {table['feature_columns']} columns -> {table['encoded_features']} encoded "
+          f"-> {table['fair_space_dim']} fair dims   machine {table['machine']['cores']} cores, "
+          f"{table['machine']['memory_gib']} GiB")
+    print(f"job {t_job:.1f} s (child process, incl. numba compilation); peak RSS {table['peak_rss_gb']:.2f} GB "
+          f"({table['rss_bytes_per_row']:.0f} B/row)")
+    print("stages: " + ", ".join(f"{k} {v:.1f} s" for k, v in table["stage_seconds"].items() if v is not None))
+    js = table["job_solver"]
+    print(f"job solver: {js['method']} {js['status']} in {js['sweeps']} sweeps, residual {js['final_residual']:.2e}, "
+          f"{js['workers']} workers, {js['groups']} groups")
+    print(f"neighbour recall@k vs exact on {args.sample} rows: {recall:.4f}")
+    for r in table.get("solver_race", []):
+        cells = [f"lam*deg {r['lam_times_mean_degree']:>4}: CG-Jacobi {r['cg_seconds']:.2f} s ({r['cg_iterations']} it)"]
+        for w in sorted({1, args.workers}):
+            cells.append(f"ours w={w} {r[f'ours_w{w}_seconds']:.2f} s ({r[f'ours_w{w}_sweeps']} sweeps, "
+                         f"setup {r[f'ours_w{w}_setup_seconds']:.2f} s) ratio {r[f'ratio_w{w}']:.2f}")
+        print("  " + "; ".join(cells))
+    print(f"table written to {out}")
+
+
+if __name__ == "__main__":
+    main()
