@@ -77,3 +77,67 @@ def update_sweep(x, r, t, ap, alpha, start, stop, rr):
             r[i, k] = v
             acc += v * v
         rr[k] = acc
+
+
+@numba.njit(cache=True)
+def split_system(indptr, indices, data, lam, c, perm, pos, group, counts_only, Lp, Up, Op, Li, Ld, Ui, Ud, Oi, Od, s):
+    """Build the Jacobi-scaled, permuted and group-split system of A = C + lam (D - W) straight from
+    the graph W (CSR), in the new row order perm (pos = inverse of perm). Twin of
+    :func:`bigsmooth.kernels.sweepcg.prepare` applied to the assembled, permuted A.
+
+    Called twice: with counts_only=True it fills the row counts into Lp/Up/Op[1:]; the caller turns
+    them into offsets (cumsum) and allocates; the second call fills indices and values.
+    Index arrays are unsigned (uint32 / uint64).
+    """
+    n = len(perm)
+    if counts_only:
+        for r in range(n):
+            ru = np.uint32(r)
+            i = perm[r]
+            gr = group[ru]
+            nl = 0
+            nu = 0
+            no = 0
+            for q in range(indptr[i], indptr[i + np.uint32(1)]):
+                j = pos[indices[q]]
+                if group[j] == gr:
+                    if j < ru:
+                        nl += 1
+                    elif j > ru:
+                        nu += 1
+                else:
+                    no += 1
+            Lp[r + 1] = nl
+            Up[r + 1] = nu
+            Op[r + 1] = no
+        return
+    for r in range(n):
+        i = perm[r]
+        d = 0.0
+        for q in range(indptr[i], indptr[i + np.uint32(1)]):
+            d += data[q]
+        s[r] = 1.0 / np.sqrt(c[i] + lam * d)
+    for r in range(n):
+        ru = np.uint32(r)
+        i = perm[r]
+        gr = group[ru]
+        a = np.int64(Lp[r])
+        b = np.int64(Up[r])
+        e = np.int64(Op[r])
+        sr = s[r]
+        for q in range(indptr[i], indptr[i + np.uint32(1)]):
+            j = pos[indices[q]]
+            v = -lam * data[q] * sr * s[j]
+            if group[j] == gr:
+                if j < ru:
+                    Li[a] = j
+                    Ld[a] = v
+                    a += 1
+                elif j > ru:
+                    Ui[b] = j
+                    Ud[b] = v
+                    b += 1
+            else:
+                Oi[e] = j
+                Od[e] = v
+                e += 1

@@ -50,32 +50,26 @@ def workers_for(s):
     return max(1, min(w, s["groups"]))
 
 
-def _sweep_cg(rundir, s, A, b, Y, perm, bounds, ck_path):
+def _sweep_cg(rundir, s, W, cvec, b, Y, perm, bounds, ck_path):
     n, c = b.shape
     d = rundir.stage_dir("solve")
-    Ap = A[perm][:, perm].tocsr()
-    del A
-    system = sweepcg.prepare(Ap, bounds)
-    del Ap
     processes = s["backend"] == "processes"
     if processes:
-        # workers map the split matrix and the vectors from the run directory
+        # workers map the split system and the vectors from the run directory
         sysdir = os.path.join(d, "system")
-        os.makedirs(sysdir, exist_ok=True)
-        parts = {}
-        for part in ("L", "U", "O"):
-            arrs = []
-            for name, arr in zip(("indptr", "indices", "data"), getattr(system, part)):
-                path = os.path.join(sysdir, f"{part}-{name}.npy")
-                atomic.save_npy(path, arr)
-                arrs.append(np.load(path, mmap_mode="r"))
-            parts[part] = tuple(arrs)
-        system = sweepcg.Grouped(system.s, system.bounds, parts["L"], parts["U"], parts["O"])
         workdir = os.path.join(d, "work")
+        os.makedirs(sysdir, exist_ok=True)
         os.makedirs(workdir, exist_ok=True)
+
+        def alloc(name, size, dtype):
+            return np.lib.format.open_memmap(os.path.join(sysdir, f"{name}.npy"), mode="w+", dtype=dtype,
+                                             shape=(size,))
+
+        system = sweepcg.prepare_from_graph(W, s["lam"], cvec, perm, bounds, alloc=alloc)
         work = sweepcg.Work.allocate(n, c, lambda name, shape: np.lib.format.open_memmap(
             os.path.join(workdir, f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
     else:
+        system = sweepcg.prepare_from_graph(W, s["lam"], cvec, perm, bounds)
         work = sweepcg.Work.allocate(n, c)
     ck = load_checkpoint(ck_path)
     state = None
@@ -98,15 +92,13 @@ def _sweep_cg(rundir, s, A, b, Y, perm, bounds, ck_path):
             log.info("sweep %d: preconditioned residual %.3e", st["sweep"], st["residuals"][-1])
 
     nw = workers_for(s)
-    if nw > 1:
-        from joblib import Parallel
-
-        with Parallel(n_jobs=nw, backend="loky" if processes else "threading") as par:
-            res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
-                                   parallel=par, work=work, state=state, on_sweep=on_sweep)
-    else:
+    executor = sweepcg.make_executor(nw, s["backend"])
+    try:
         res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
-                               work=work, state=state, on_sweep=on_sweep)
+                               executor=executor, work=work, state=state, on_sweep=on_sweep)
+    finally:
+        if executor is not None and s["backend"] == "threads":
+            executor.shutdown()
     return res.x, {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
                    "true_residual_checks": [list(ch) for ch in res.checks], "final_residual": res.final_residual,
                    "groups": len(bounds) - 1, "workers": nw, "backend": s["backend"]}
@@ -144,7 +136,7 @@ def run(rundir, cfg):
     W = load_graph(rundir, mmap=False)
     Y = np.load(rundir.file("embed", "scores.npy"))
     n, c = Y.shape
-    A, cvec = laplacian.system(W, s["lam"], s["laplacian"])
+    cvec = laplacian.row_weights(W, s["laplacian"])
     b = cvec[:, None] * Y
     info = {"method": s["method"], "laplacian": s["laplacian"], "lam": s["lam"], "rows": n, "columns": c}
     ck_path = os.path.join(rundir.stage_dir("checkpoint"), "solver.npz")
@@ -153,6 +145,7 @@ def run(rundir, cfg):
         info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[0.0], final_residual=0.0,
                     note="nothing to smooth")
     elif s["method"] == "direct":
+        A, _ = laplacian.system(W, s["lam"], s["laplacian"])
         F = solver.direct_solve(A, b)
         res = solver.relative_residual(A, b, F)
         info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[res], final_residual=res)
@@ -160,8 +153,9 @@ def run(rundir, cfg):
         perm = np.load(rundir.file("order", "order.npy"))
         if s["method"] == "sweep-cg":
             bounds = np.load(rundir.file("order", "groups.npy"))
-            Xp, more = _sweep_cg(rundir, s, A, b, Y, perm, bounds, ck_path)
+            Xp, more = _sweep_cg(rundir, s, W, cvec, b, Y, perm, bounds, ck_path)
         else:
+            A, _ = laplacian.system(W, s["lam"], s["laplacian"])
             Xp, more = _blocks(rundir, s, A, b, Y, perm, ck_path)
         info.update(more)
         F = np.empty_like(Xp)
