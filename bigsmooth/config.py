@@ -48,7 +48,7 @@ RULES = {
         "feature_weights": Rule("table[float]", default={}, lo=0.0, hi=1e6, doc="per-feature multipliers applied after standardising (missing = 1)"),
         "leakage_warn_auc": Rule("float", default=0.65, lo=0.5, hi=1.0, doc="warn when a linear probe on the fair space predicts a protected attribute with AUC above this", affects_result=False),
         "probe_rows": Rule("int", default=50000, lo=100, hi=10_000_000, doc="rows sampled for the leakage probe"),
-        "batch_rows": Rule("int", default=65536, lo=1, hi=10_000_000, doc="rows per streamed record batch", affects_result=False),
+        "batch_rows": Rule("int", default=0, lo=0, hi=10_000_000, doc="rows per streamed chunk, a multiple of 8192 (0 = derived from run.memory_mb)", affects_result=False),
     },
     "graph": {
         "neighbours": Rule("int", default=10, lo=1, hi=200, doc="nearest neighbours per row before symmetrising"),
@@ -86,6 +86,7 @@ RULES = {
     "run": {
         "dir": Rule("str", default="runs", doc="folder holding one run directory per (config, input) pair", affects_result=False),
         "seed": Rule("int", default=0, lo=0, hi=2**32 - 1, doc="seed of every random choice (neighbour index, probe sample)"),
+        "memory_mb": Rule("int", default=4096, lo=256, hi=100_000_000, doc="memory budget in MiB for streaming: sets rows per chunk and DuckDB's memory_limit (a quarter each)", affects_result=False),
     },
 }
 
@@ -200,6 +201,8 @@ def _cross_checks(cfg):
                 raise ConfigError(f"column {c!r} is given as both input.{seen[c]} and input.{role}; "
                                   "each column has one role (protected attributes must not be features)")
             seen[c] = role
+    if cfg["embed"]["batch_rows"] % 8192:
+        raise ConfigError(f"embed.batch_rows must be 0 or a multiple of 8192; got {cfg['embed']['batch_rows']}")
     for f in cfg["embed"]["feature_weights"]:
         if f not in feats:
             raise ConfigError(f"embed.feature_weights names {f!r}, which is not a feature{_suggest(f, feats)}")

@@ -252,3 +252,21 @@ def test_output_is_bit_identical_on_the_approximate_path_across_workers_and_repe
                      exact_below=0)
     for o in outs[1:]:
         assert np.array_equal(o, outs[0])
+
+
+def test_chunk_size_does_not_change_the_result(tmp_path):
+    # the statistics are summed in fixed pieces of rows, so two chunk sizes give the same bits
+    # (30,000 rows in one file: several chunks of 8,192 rows, two chunks of 24,576)
+    cfg0 = _write_case(tmp_path, _small_table(30000, seed=4))
+    emb = []
+    for i, rows in enumerate((8192, 24576)):
+        cfg = tmp_path / f"job{i}.toml"
+        cfg.write_text(cfg0.read_text().replace('path = "out"', f'path = "out{i}"').replace('dir = "runs"', f'dir = "runs{i}"')
+                       .replace("components = 0", f"components = 0\nbatch_rows = {rows}")
+                       .replace('kernel_scale = "global"', 'kernel_scale = "global"\nexact_below = 40000'))
+        res = cli("run", str(cfg))
+        assert res.returncode == 0, res.stderr
+        assert f"chunks of {rows} rows" in res.stderr
+        (rd,) = list((tmp_path / f"runs{i}").iterdir())
+        emb.append(np.load(rd / "embed" / "embedding.npy"))
+    assert np.array_equal(emb[0], emb[1])

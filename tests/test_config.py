@@ -56,6 +56,13 @@ def test_demo_config_is_valid_and_the_lambda_is_checked():
         config.validate(raw)
 
 
+def test_batch_rows_must_be_a_multiple_of_the_unit():
+    raw = base_raw()
+    raw["embed"]["batch_rows"] = 10000
+    with pytest.raises(ConfigError, match="embed.batch_rows must be 0 or a multiple of 8192; got 10000"):
+        config.validate(raw)
+
+
 def test_protected_attribute_cannot_be_a_feature():
     raw = base_raw()
     raw["input"]["numeric_features"].append("origin_group")
@@ -89,7 +96,8 @@ def test_bundled_demo_config_matches_the_demo_command():
 def test_identity_hash_ignores_operational_settings():
     a = config.validate(base_raw())
     raw = base_raw()
-    raw["embed"]["batch_rows"] = 1000
+    raw["embed"]["batch_rows"] = 16384
+    raw["run"]["memory_mb"] = 1024
     raw["embed"]["leakage_warn_auc"] = 0.9
     assert config.config_hash(config.validate(raw)) == config.config_hash(a)
     for section, key, value in [("solve", "lam", 2.0), ("audit", "select_rate", 0.5)]:

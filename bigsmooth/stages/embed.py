@@ -18,7 +18,7 @@ from .. import atomic
 from ..kernels import fairspace
 from ..kernels.metrics import roc_auc
 from ..progress import Progress
-from ..table import Source, connect, quote
+from ..table import Source, batch_rows_for, connect_budget, quote, units
 from .scan import MISSING_LEVEL
 
 log = logging.getLogger("bigsmooth.embed")
@@ -100,10 +100,12 @@ def run(rundir, cfg, fp):
     label = out.open(os.path.join(d, "label.npy"), (n,), np.float64, fill=np.nan) if inp["label"] else None
     codes = out.open(os.path.join(d, "protected.npy"), (n, len(inp["protected"])), np.int32)
 
-    con = connect()
+    con = connect_budget(cfg["run"]["memory_mb"])
     src = Source(con, fp)
     sql = _select_sql(inp)
-    batch_rows = ecfg["batch_rows"]
+    width = p + len(inp["scores"]) + len(inp["protected"]) + 2
+    batch_rows = ecfg["batch_rows"] or batch_rows_for(cfg["run"]["memory_mb"], width)
+    log.info("streaming in chunks of %d rows (memory budget %d MiB)", batch_rows, cfg["run"]["memory_mb"])
     mom = None
     seen = 0
     prog = Progress(log, "embed pass 1 (statistics)", n)
@@ -118,8 +120,9 @@ def run(rundir, cfg, fp):
             off += len(prot_levels[c])
         S = sum(S_parts[1:], S_parts[0]) if S_parts else sp.csr_matrix((len(rows), 0))
         if mom is None:
-            mom = fairspace.Moments.empty(X.mean(axis=0), m)
-        mom.update(X, S)
+            mom = fairspace.Moments.empty(X[units(len(X))[0]].mean(axis=0), m)
+        for u in units(len(X)):
+            mom.update(X[u], S[u])
         for j, c in enumerate(inp["scores"]):
             Y[rows, j] = batch.column(c).to_numpy(zero_copy_only=False).astype(np.float64)
         if label is not None:
@@ -152,7 +155,8 @@ def run(rundir, cfg, fp):
     prog = Progress(log, "embed pass 2 (embedding)", n)
     for rows, batch in src.chunks(con, sql, batch_rows):
         X = _features(batch, inp, levels)
-        E[rows] = fs.apply(X).astype(np.float32)
+        for u in units(len(X)):
+            E[rows[u]] = fs.apply(X[u]).astype(np.float32)
         pos = np.searchsorted(sample, rows)
         hit = (pos < len(sample)) & (sample[np.minimum(pos, len(sample) - 1)] == rows)
         raw_sample[pos[hit]] = (X[hit] - fs.mean) * fs.scale   # standardised, before the projection

@@ -21,6 +21,7 @@ import pyarrow.parquet as pq
 
 from .. import atomic
 from ..errors import OutputError
+from ..table import batch_rows_for
 
 log = logging.getLogger("bigsmooth.publish")
 
@@ -67,6 +68,7 @@ def run(rundir, cfg, fp, run_id):
     F = np.load(rundir.file("solve", "adjusted.npy"), mmap_mode="r")
     lo, hi = inp["score_range"]
     cols = output_columns(inp, out)
+    batch_rows = cfg["embed"]["batch_rows"] or batch_rows_for(cfg["run"]["memory_mb"], len(cols) + 2 * len(inp["scores"]))
     try:
         os.makedirs(staging, exist_ok=False)
     except OSError as exc:
@@ -77,7 +79,7 @@ def run(rundir, cfg, fp, run_id):
             rel = os.path.relpath(e["path"], fp["root"])
             dst = os.path.join(staging, rel)
             os.makedirs(os.path.dirname(dst), exist_ok=True)
-            got = _write_file(e["path"], dst, cols, inp, out, Y, F, lo, hi, e["offset"], cfg["embed"]["batch_rows"])
+            got = _write_file(e["path"], dst, cols, inp, out, Y, F, lo, hi, e["offset"], batch_rows)
             if got != e["rows"]:
                 raise RuntimeError(f"{e['path']}: wrote {got} rows, the footer says {e['rows']}")
             written += got

@@ -10,7 +10,7 @@ import logging
 
 from .. import atomic
 from ..errors import ConfigError, DataError, examples
-from ..table import Source, connect, quote
+from ..table import Source, connect_budget, quote
 
 log = logging.getLogger("bigsmooth.scan")
 
@@ -57,7 +57,7 @@ def check_schema(columns, inp):
 
 def run(rundir, cfg, fp):
     inp = cfg["input"]
-    con = connect()
+    con = connect_budget(cfg["run"]["memory_mb"])
     src = Source(con, fp)
     cols = dict((r[0], r[1]) for r in src.fetch(con, "DESCRIBE SELECT * FROM {src}"))
     cols.pop("__bigsmooth_row", None)
