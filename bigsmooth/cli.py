@@ -141,9 +141,12 @@ def cmd_status(args):
         print(f"solver: {s['method']} ({s['laplacian']}, lam={s['lam']:g}) {s['status']} after {s['sweeps']} "
               f"sweeps; final relative residual {s['final_residual']:.3e}")
         res = s["residuals"]
+        what = "preconditioned residual" if s["method"] == "sweep-cg" else "relative residual"
         step = max(1, len(res) // 20)
         for i in list(range(0, len(res), step)) + ([len(res) - 1] if (len(res) - 1) % step else []):
-            print(f"  sweep {i:>5}  residual {res[i]:.3e}")
+            print(f"  sweep {i:>5}  {what} {res[i]:.3e}")
+        for sweep, true in s.get("true_residual_checks", []):
+            print(f"  sweep {int(sweep):>5}  true relative residual ||Cy - Af|| / ||Cy|| {true:.3e}")
     elif os.path.exists(ck):
         from .stages.solve import load_checkpoint
         c = load_checkpoint(ck)
