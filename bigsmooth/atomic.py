@@ -65,6 +65,19 @@ def save_npy(target, array):
             np.save(fh, np.asarray(array), allow_pickle=False)
 
 
+@contextlib.contextmanager
+def open_memmap(target, dtype, shape):
+    """Yield a writable .npy memmap on a temporary sibling of ``target``; on success flush it and
+    rename it into place (complete or absent, like every other write here)."""
+    with atomic_path(target) as tmp:
+        arr = np.lib.format.open_memmap(tmp, mode="w+", dtype=dtype, shape=shape)
+        try:
+            yield arr
+            arr.flush()
+        finally:
+            del arr
+
+
 def _json_default(obj):
     if isinstance(obj, np.integer):
         return int(obj)

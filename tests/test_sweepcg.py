@@ -162,3 +162,30 @@ def test_direct_split_from_graph_equals_assembled_split(rng, kind):
     np.testing.assert_allclose(got.s, ref.s, rtol=1e-15)
     for a, b in zip(got.matrices(), ref.matrices()):
         np.testing.assert_allclose(a.toarray(), b.toarray(), rtol=1e-14, atol=1e-16)
+
+
+def test_split_graph_degrees_and_thread_count(rng):
+    # reference: degrees = row sums of W (numpy), permuted; the split must not depend on numba's threads
+    import numba
+
+    W = laplacian.as_weight_matrix(random_graph(300, 0.03, rng))
+    perm = rng.permutation(300)
+    bounds = [0, 70, 300]
+    got = []
+    for threads in (1, min(2, numba.config.NUMBA_NUM_THREADS)):
+        numba.set_num_threads(threads)
+        got.append(sweepcg.split_graph(W, perm, bounds))
+    numba.set_num_threads(numba.config.NUMBA_NUM_THREADS)
+    np.testing.assert_allclose(got[0].degree, np.asarray(W.sum(axis=1)).ravel()[perm], rtol=1e-14)
+    for a, b in zip((*got[0].L, *got[0].U, *got[0].O), (*got[1].L, *got[1].U, *got[1].O)):
+        assert np.array_equal(a, b)
+
+
+def test_fast_matvec_matches_scipy(rng):
+    # reference: scipy sparse products of the split triplets
+    _, _, A, _ = _system(rng)
+    system = sweepcg.prepare(A, [0, 100, 420, 500])
+    x = rng.random((500, 3))
+    ref = system.matvec(x, fast=False)
+    np.testing.assert_allclose(system.matvec(x, fast=True), ref, rtol=1e-13, atol=1e-13 * np.abs(ref).max())
+    np.testing.assert_allclose(system.matvec(x), A @ x, atol=1e-12)

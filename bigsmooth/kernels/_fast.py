@@ -79,65 +79,106 @@ def update_sweep(x, r, t, ap, alpha, start, stop, rr):
         rr[k] = acc
 
 
-@numba.njit(cache=True)
-def split_system(indptr, indices, data, lam, c, perm, pos, group, counts_only, Lp, Up, Op, Li, Ld, Ui, Ud, Oi, Od, s):
-    """Build the Jacobi-scaled, permuted and group-split system of A = C + lam (D - W) straight from
-    the graph W (CSR), in the new row order perm (pos = inverse of perm). Twin of
-    :func:`bigsmooth.kernels.sweepcg.prepare` applied to the assembled, permuted A.
+# ---- the group split of the graph (order stage) and its scaling for one lam (solve stage) ----
+# Rows are processed in parallel (numba prange); every row writes only its own slots, so the
+# result does not depend on the number of threads.
 
-    Called twice: with counts_only=True it fills the row counts into Lp/Up/Op[1:]; the caller turns
-    them into offsets (cumsum) and allocates; the second call fills indices and values.
-    Index arrays are unsigned (uint32 / uint64).
-    """
+@numba.njit(cache=True, parallel=True)
+def split_counts(indptr, indices, perm, pos, group, Lc, Uc, Oc):
+    """Row counts of the strictly lower / strictly upper couplings inside a row's group and of the
+    couplings to other groups, for the graph W permuted by perm (pos = inverse), into X[r + 1]."""
     n = len(perm)
-    if counts_only:
-        for r in range(n):
-            ru = np.uint32(r)
-            i = perm[r]
-            gr = group[ru]
-            nl = 0
-            nu = 0
-            no = 0
-            for q in range(indptr[i], indptr[i + np.uint32(1)]):
-                j = pos[indices[q]]
-                if group[j] == gr:
-                    if j < ru:
-                        nl += 1
-                    elif j > ru:
-                        nu += 1
-                else:
-                    no += 1
-            Lp[r + 1] = nl
-            Up[r + 1] = nu
-            Op[r + 1] = no
-        return
-    for r in range(n):
+    for r in numba.prange(n):
         i = perm[r]
-        d = 0.0
-        for q in range(indptr[i], indptr[i + np.uint32(1)]):
-            d += data[q]
-        s[r] = 1.0 / np.sqrt(c[i] + lam * d)
-    for r in range(n):
-        ru = np.uint32(r)
+        gr = group[r]
+        nl = 0
+        nu = 0
+        no = 0
+        for q in range(indptr[i], indptr[i + 1]):
+            j = pos[indices[q]]
+            if group[j] == gr:
+                if j < r:
+                    nl += 1
+                elif j > r:
+                    nu += 1
+            else:
+                no += 1
+        Lc[r + 1] = nl
+        Uc[r + 1] = nu
+        Oc[r + 1] = no
+
+
+@numba.njit(cache=True, parallel=True)
+def split_fill(indptr, indices, data, perm, pos, group, Lp, Li, Lw, Up, Ui, Uw, Op, Oi, Ow, degree):
+    """Fill the three triplets (offsets from :func:`split_counts`) with positions and raw weights in
+    the graph's column order, and the permuted degrees."""
+    n = len(perm)
+    for r in numba.prange(n):
         i = perm[r]
-        gr = group[ru]
+        gr = group[r]
         a = np.int64(Lp[r])
         b = np.int64(Up[r])
         e = np.int64(Op[r])
-        sr = s[r]
-        for q in range(indptr[i], indptr[i + np.uint32(1)]):
+        d = 0.0
+        for q in range(indptr[i], indptr[i + 1]):
             j = pos[indices[q]]
-            v = -lam * data[q] * sr * s[j]
+            v = data[q]
+            d += v
             if group[j] == gr:
-                if j < ru:
+                if j < r:
                     Li[a] = j
-                    Ld[a] = v
+                    Lw[a] = v
                     a += 1
-                elif j > ru:
+                elif j > r:
                     Ui[b] = j
-                    Ud[b] = v
+                    Uw[b] = v
                     b += 1
             else:
                 Oi[e] = j
-                Od[e] = v
+                Ow[e] = v
                 e += 1
+        degree[r] = d
+
+
+@numba.njit(cache=True, parallel=True)
+def scale_triplet(ptr, ind, w, s, lam, out):
+    """out[q] = -lam w[q] s[r] s[ind[q]] for the entries q of row r: a coupling of S (C + lam L) S."""
+    n = len(ptr) - 1
+    for r in numba.prange(n):
+        sr = -lam * s[r]
+        for q in range(ptr[r], ptr[r + 1]):
+            out[q] = sr * w[q] * s[ind[q]]
+
+
+@numba.njit(cache=True, parallel=True)
+def split_matvec(Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, y, out):
+    """out = (I + L + U + O) y for the scaled, split system; y and out of shape (n, c)."""
+    n, c = y.shape
+    for i in numba.prange(n):
+        for k in range(c):
+            acc = y[i, k]
+            for q in range(Lp[i], Lp[i + 1]):
+                acc += Ld[q] * y[Li[q], k]
+            for q in range(Up[i], Up[i + 1]):
+                acc += Ud[q] * y[Ui[q], k]
+            for q in range(Op[i], Op[i + 1]):
+                acc += Od[q] * y[Oi[q], k]
+            out[i, k] = acc
+
+
+@numba.njit(cache=True)
+def inside_edges(indptr, indices, label, counts_only, ptr, out):
+    """The structure of W restricted to edges whose two ends carry the same label (CSR, two calls:
+    counts into ptr[1:], then indices into out)."""
+    n = len(indptr) - 1
+    for i in range(n):
+        a = ptr[i]
+        m = 0
+        for q in range(indptr[i], indptr[i + 1]):
+            j = indices[q]
+            if label[j] == label[i]:
+                if not counts_only:
+                    out[a + m] = j
+                m += 1
+        if counts_only:
+            ptr[i + 1] = m

@@ -42,10 +42,15 @@ def laplacian(W):
 
 def row_weights(W, kind):
     """The diagonal of C: ones (unnormalised) or degrees (random walk; isolated rows get 1)."""
+    return row_weights_from_degrees(degrees(W) if kind == "random_walk" else np.zeros(W.shape[0]), kind)
+
+
+def row_weights_from_degrees(d, kind):
+    """:func:`row_weights` given the degrees d = W 1."""
+    d = np.asarray(d, dtype=np.float64)
     if kind == "unnormalised":
-        return np.ones(W.shape[0])
+        return np.ones(len(d))
     if kind == "random_walk":
-        d = degrees(W)
         return np.where(d > 0, d, 1.0)
     raise ValueError(f"laplacian kind must be 'unnormalised' or 'random_walk'; got {kind!r}")
 

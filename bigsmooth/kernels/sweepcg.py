@@ -95,12 +95,20 @@ class Grouped:
         n = self.n
         return [sp.csr_matrix((t[2], t[1], t[0]), shape=(n, n)) for t in (self.L, self.U, self.O)]
 
-    def matvec(self, x):
-        """A x for the unscaled A = S^-1 (I + L + U + O) S^-1, x of shape (n, c)."""
-        y = x / self.s[:, None]
-        out = y.copy()
-        for M in self.matrices():
-            out += M @ y
+    def matvec(self, x, fast=True):
+        """A x for the unscaled A = S^-1 (I + L + U + O) S^-1, x of shape (n, c).
+
+        ``fast``: one compiled parallel pass over the triplets; otherwise the scipy reference."""
+        y = np.ascontiguousarray(x / self.s[:, None])
+        if fast:
+            from . import _fast
+
+            out = np.empty_like(y)
+            _fast.split_matvec(*self.L, *self.U, *self.O, y, out)
+        else:
+            out = y.copy()
+            for M in self.matrices():
+                out += M @ y
         return out / self.s[:, None]
 
 
@@ -129,47 +137,89 @@ def prepare(A, bounds):
     return Grouped(s, bounds, *parts)
 
 
-def prepare_from_graph(W, lam, c, perm, bounds, alloc=None):
-    """The same system as ``prepare(C + lam L permuted by perm, bounds)``, built in two O(nnz) passes
-    over the graph W (CSR, symmetric, empty diagonal) without assembling or permuting A.
+@dataclass
+class SplitGraph:
+    """The graph W permuted into the group order and split like :class:`Grouped`, with raw weights.
 
-    ``c`` is diag(C) (see :func:`bigsmooth.kernels.laplacian.row_weights`); ``perm[r]`` is the input
-    row at position r; ``alloc(name, n, dtype)`` may supply the arrays (e.g. memmaps). Entries
-    within a row keep the graph's column order, so the result is deterministic.
+    It does not depend on lam, so the order stage builds it once and every solve scales it.
     """
-    from . import _fast
 
-    alloc = alloc or (lambda name, size, dtype: np.empty(size, dtype=dtype))
-    n = W.shape[0]
-    perm = np.asarray(perm, dtype=np.int64)
+    degree: np.ndarray   # (n,) row sums of W in the new order
+    bounds: np.ndarray
+    L: tuple             # (indptr uint64, indices uint32, weights float64)
+    U: tuple
+    O: tuple
+
+    @property
+    def n(self):
+        return len(self.degree)
+
+
+def _check_bounds(bounds, n):
     bounds = np.asarray(bounds, dtype=np.int64)
     if bounds[0] != 0 or bounds[-1] != n or np.any(np.diff(bounds) <= 0):
         raise ValueError(f"group bounds must rise strictly from 0 to n = {n}; got {bounds.tolist()}")
-    # unsigned indices: numba skips its negative-index wraparound check on every gather (measured
-    # here at about 2x on a CSR product), and the graph's indices are never negative
+    return bounds
+
+
+def _default_alloc(name, size, dtype):
+    return np.empty(size, dtype=dtype)
+
+
+def split_graph(W, perm, bounds, alloc=None):
+    """Permute W (CSR, symmetric, empty diagonal) by ``perm`` (``perm[r]`` = input row at position r)
+    and split it by the group ``bounds``, in two parallel O(nnz) passes without assembling anything.
+
+    ``alloc(name, size, dtype)`` may supply the arrays (e.g. memmaps). Entries within a row keep the
+    graph's column order, so the result is deterministic. Reference: :func:`prepare` on the
+    assembled, permuted matrix.
+    """
+    from . import _fast
+
+    alloc = alloc or _default_alloc
+    n = W.shape[0]
+    perm = np.asarray(perm, dtype=np.int64)
+    bounds = _check_bounds(bounds, n)
+    # unsigned indices in the solver's arrays: numba skips its negative-index wraparound check on
+    # every gather (measured here at about 2x on a CSR product); positions are never negative
     pos = np.empty(n, dtype=np.uint32)
     pos[perm] = np.arange(n, dtype=np.uint32)
-    group = (np.searchsorted(bounds, np.arange(n), side="right") - 1).astype(np.uint32)
+    group = np.repeat(np.arange(len(bounds) - 1, dtype=np.uint32), np.diff(bounds))
+    ptrs = [alloc(f"{name}-indptr", n + 1, np.uint64) for name in "LUO"]
+    for p in ptrs:
+        p[0] = 0
+    _fast.split_counts(W.indptr, W.indices, perm, pos, group, *ptrs)
+    for p in ptrs:
+        np.cumsum(p, out=p)
+    parts = [(p, alloc(f"{name}-indices", int(p[-1]), np.uint32), alloc(f"{name}-weight", int(p[-1]), np.float64))
+             for name, p in zip("LUO", ptrs)]
+    degree = alloc("degree", n, np.float64)
+    _fast.split_fill(W.indptr, W.indices, W.data, perm, pos, group, *parts[0], *parts[1], *parts[2], degree)
+    return SplitGraph(degree, bounds, *parts)
+
+
+def scale_split(split, lam, c, alloc=None):
+    """The Jacobi-scaled system of A = C + lam L from a :class:`SplitGraph`; ``c`` is diag(C) in the
+    split's row order. One parallel pass over the entries."""
+    from . import _fast
+
+    alloc = alloc or _default_alloc
     c = np.asarray(c, dtype=np.float64)
-    ptrs = [np.zeros(n + 1, dtype=np.uint64) for _ in range(3)]
-    e32, ef = np.empty(0, np.uint32), np.empty(0)
-    w_indptr = W.indptr.astype(np.uint64)
-    w_indices = W.indices.astype(np.uint32)
-    _fast.split_system(w_indptr, w_indices, W.data, float(lam), c, perm, pos, group, True, *ptrs,
-                       e32, ef, e32, ef, e32, ef, ef)
-    out_ptrs = []
-    for name, p in zip("LUO", ptrs):
-        q = alloc(f"{name}-indptr", n + 1, np.uint64)
-        np.cumsum(p, out=q)
-        out_ptrs.append(q)
+    s = alloc("s", split.n, np.float64)
+    s[:] = 1.0 / np.sqrt(c + lam * np.asarray(split.degree))
     parts = []
-    for name, q in zip("LUO", out_ptrs):
-        parts.append((q, alloc(f"{name}-indices", int(q[-1]), np.uint32), alloc(f"{name}-data", int(q[-1]), np.float64)))
-    s = alloc("s", n, np.float64)
-    _fast.split_system(w_indptr, w_indices, W.data, float(lam), c, perm, pos, group, False,
-                       out_ptrs[0], out_ptrs[1], out_ptrs[2], parts[0][1], parts[0][2], parts[1][1], parts[1][2],
-                       parts[2][1], parts[2][2], s)
-    return Grouped(s, bounds, parts[0], parts[1], parts[2])
+    for name, (ptr, ind, w) in zip("LUO", (split.L, split.U, split.O)):
+        out = alloc(f"{name}-data", len(w), np.float64)
+        _fast.scale_triplet(ptr, ind, w, s, float(lam), out)
+        parts.append((ptr, ind, out))
+    return Grouped(s, split.bounds, *parts)
+
+
+def prepare_from_graph(W, lam, c, perm, bounds, alloc=None):
+    """``prepare(C + lam L permuted by perm, bounds)`` straight from the graph: :func:`split_graph`
+    then :func:`scale_split`. ``c`` is diag(C) in input row order."""
+    split = split_graph(W, perm, bounds, alloc)
+    return scale_split(split, lam, np.asarray(c, dtype=np.float64)[np.asarray(perm)], alloc)
 
 
 # ---- group tasks (module level so that process workers can import them) ----

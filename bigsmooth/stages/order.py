@@ -1,17 +1,30 @@
-"""order: cluster the rows into block groups so that most edge weight falls inside groups.
+"""order: cluster the rows into block groups so that most edge weight falls inside groups, order
+the rows inside each group for locality, and split the graph for the solver.
 
-k-means (scipy.cluster.vq.kmeans2, k-means++ start, seeded) on a sample of the fair-space
-embedding gives ``solve.groups`` centres; every row joins its nearest centre (streamed in chunks).
-Rows are ordered by group (input order inside a group). The groups are the units the solver's
-workers sweep; the 'blocks' solver cuts the same ordering into blocks of ``solve.block_rows``.
+1. k-means (scipy.cluster.vq.kmeans2, k-means++ start, seeded) on a sample of the fair-space
+   embedding gives ``solve.groups`` centres; every row joins its nearest centre (streamed in chunks).
+2. Inside each group, rows follow the reverse Cuthill-McKee order of the group's own edges
+   (scipy.sparse.csgraph.reverse_cuthill_mckee), so that a row's neighbours sit close to it in
+   memory and the solver's sweeps read nearby entries (measured at 1M rows: sweeps about 1.5x
+   faster than with input order inside groups).
+3. The graph is permuted into that order and split into couplings inside groups (lower, upper) and
+   between groups, with raw weights (:func:`bigsmooth.kernels.sweepcg.split_graph`); it does not
+   depend on lam, so the solve stage only scales it. Written as memory-mapped .npy files in
+   ``order/split/``.
+
+The groups are the units the solver's workers sweep; the 'blocks' solver cuts the same ordering
+into blocks of ``solve.block_rows``.
 """
+import contextlib
 import logging
 import os
 
 import numpy as np
 from scipy.cluster.vq import kmeans2
+from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from .. import atomic
+from ..kernels import sweepcg
 from .graph import load_graph
 
 log = logging.getLogger("bigsmooth.order")
@@ -55,18 +68,60 @@ def cluster_labels(E, groups, seed, chunk=262_144):
     return rank[labels], len(used)
 
 
+def local_order(W, labels):
+    """Rows sorted by label; inside a label, the reverse Cuthill-McKee order of the edges whose two
+    ends carry that label. Returns perm (int64) with perm[r] = the row at position r."""
+    import scipy.sparse as sp
+    from ..kernels import _fast
+
+    n = W.shape[0]
+    ptr = np.zeros(n + 1, dtype=np.int64)
+    none = np.empty(0, dtype=np.int32)
+    _fast.inside_edges(W.indptr, W.indices, labels, True, ptr, none)
+    np.cumsum(ptr, out=ptr)
+    ind = np.empty(int(ptr[-1]), dtype=np.int32)
+    _fast.inside_edges(W.indptr, W.indices, labels, False, ptr, ind)
+    inner = sp.csr_matrix((np.ones(len(ind), dtype=np.int8), ind, ptr), shape=(n, n))
+    rcm = reverse_cuthill_mckee(inner, symmetric_mode=True).astype(np.int64)
+    del inner, ind
+    return rcm[np.argsort(labels[rcm], kind="stable")]
+
+
+def load_split(rundir):
+    """The order stage's :class:`~bigsmooth.kernels.sweepcg.SplitGraph` (arrays memory-mapped)."""
+    d = rundir.file("order", "split")
+
+    def arr(name):
+        return np.load(os.path.join(d, f"{name}.npy"), mmap_mode="r")
+
+    bounds = np.load(rundir.file("order", "groups.npy"))
+    parts = [tuple(arr(f"{x}-{k}") for k in ("indptr", "indices", "weight")) for x in "LUO"]
+    return sweepcg.SplitGraph(arr("degree"), bounds, *parts)
+
+
 def run(rundir, cfg):
     E = np.load(rundir.file("embed", "embedding.npy"), mmap_mode="r")
     labels, groups = cluster_labels(E, cfg["solve"]["groups"], cfg["run"]["seed"] + 2)
-    perm = np.argsort(labels, kind="stable").astype(np.int64)
     bounds = np.concatenate([[0], np.cumsum(np.bincount(labels, minlength=groups))]).astype(np.int64)
-    d = rundir.stage_dir("order")
-    atomic.save_npy(os.path.join(d, "order.npy"), perm)
-    atomic.save_npy(os.path.join(d, "groups.npy"), bounds)
     W = load_graph(rundir)
     share = inside_share(W, labels)
     sizes = np.diff(bounds)
     log.info("block groups: %d (rows per group %d-%d); %.1f%% of edge weight inside groups",
              groups, sizes.min(), sizes.max(), 100 * share)
-    return {"method": "kmeans", "groups": int(groups), "largest_group": int(sizes.max()),
-            "smallest_group": int(sizes.min()), "weight_inside_groups": share}
+    perm = local_order(W, labels)
+    d = rundir.stage_dir("order")
+    split_dir = os.path.join(d, "split")
+    os.makedirs(split_dir, exist_ok=True)
+    with contextlib.ExitStack() as files:
+        def alloc(name, size, dtype):
+            return files.enter_context(atomic.open_memmap(os.path.join(split_dir, f"{name}.npy"), dtype, (size,)))
+
+        split = sweepcg.split_graph(W, perm, bounds, alloc)
+        between = int(split.O[0][-1])
+    atomic.save_npy(os.path.join(d, "order.npy"), perm)
+    atomic.save_npy(os.path.join(d, "groups.npy"), bounds)
+    log.info("graph split for the solver: %d couplings inside groups, %d between groups",
+             W.nnz - between, between)
+    return {"method": "kmeans+rcm", "groups": int(groups), "largest_group": int(sizes.max()),
+            "smallest_group": int(sizes.min()), "weight_inside_groups": share,
+            "couplings_between_groups": between}

@@ -50,26 +50,30 @@ def workers_for(s):
     return max(1, min(w, s["groups"]))
 
 
-def _sweep_cg(rundir, s, W, cvec, b, Y, perm, bounds, ck_path):
+def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path):
+    """The default solver on the order stage's split graph. The scaled system is written to
+    memory-mapped files in solve/system (its pages are the kernel's to evict), so the process holds
+    only O(n) vectors plus the pages the sweeps are reading."""
+    from .order import load_split
+
     n, c = b.shape
     d = rundir.stage_dir("solve")
-    processes = s["backend"] == "processes"
-    if processes:
-        # workers map the split system and the vectors from the run directory
-        sysdir = os.path.join(d, "system")
+    split = load_split(rundir)
+    sysdir = os.path.join(d, "system")
+    os.makedirs(sysdir, exist_ok=True)
+
+    def alloc(name, size, dtype):
+        return np.lib.format.open_memmap(os.path.join(sysdir, f"{name}.npy"), mode="w+", dtype=dtype, shape=(size,))
+
+    system = sweepcg.scale_split(split, s["lam"], cvec[perm], alloc=alloc)
+    bounds = split.bounds
+    if s["backend"] == "processes":
+        # process workers map the vectors from the run directory as well
         workdir = os.path.join(d, "work")
-        os.makedirs(sysdir, exist_ok=True)
         os.makedirs(workdir, exist_ok=True)
-
-        def alloc(name, size, dtype):
-            return np.lib.format.open_memmap(os.path.join(sysdir, f"{name}.npy"), mode="w+", dtype=dtype,
-                                             shape=(size,))
-
-        system = sweepcg.prepare_from_graph(W, s["lam"], cvec, perm, bounds, alloc=alloc)
         work = sweepcg.Work.allocate(n, c, lambda name, shape: np.lib.format.open_memmap(
             os.path.join(workdir, f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
     else:
-        system = sweepcg.prepare_from_graph(W, s["lam"], cvec, perm, bounds)
         work = sweepcg.Work.allocate(n, c)
     ck = load_checkpoint(ck_path)
     state = None
@@ -133,14 +137,26 @@ def _blocks(rundir, s, A, b, Y, perm, ck_path):
 
 def run(rundir, cfg):
     s = cfg["solve"]
-    W = load_graph(rundir, mmap=False)
     Y = np.load(rundir.file("embed", "scores.npy"))
     n, c = Y.shape
-    cvec = laplacian.row_weights(W, s["laplacian"])
+    if s["method"] == "sweep-cg":
+        # degrees from the split graph (permuted) so that W itself is never loaded
+        from .order import load_split
+
+        perm = np.load(rundir.file("order", "order.npy"))
+        deg = np.empty(n)
+        deg[perm] = load_split(rundir).degree
+        W = None
+        edges = int(np.count_nonzero(deg))
+    else:
+        W = load_graph(rundir, mmap=False)
+        deg = laplacian.degrees(W)
+        edges = W.nnz
+    cvec = laplacian.row_weights_from_degrees(deg, s["laplacian"])
     b = cvec[:, None] * Y
     info = {"method": s["method"], "laplacian": s["laplacian"], "lam": s["lam"], "rows": n, "columns": c}
     ck_path = os.path.join(rundir.stage_dir("checkpoint"), "solver.npz")
-    if s["lam"] == 0 or W.nnz == 0:
+    if s["lam"] == 0 or edges == 0:
         F = Y.copy()
         info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[0.0], final_residual=0.0,
                     note="nothing to smooth")
@@ -152,8 +168,7 @@ def run(rundir, cfg):
     else:
         perm = np.load(rundir.file("order", "order.npy"))
         if s["method"] == "sweep-cg":
-            bounds = np.load(rundir.file("order", "groups.npy"))
-            Xp, more = _sweep_cg(rundir, s, W, cvec, b, Y, perm, bounds, ck_path)
+            Xp, more = _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path)
         else:
             A, _ = laplacian.system(W, s["lam"], s["laplacian"])
             Xp, more = _blocks(rundir, s, A, b, Y, perm, ck_path)
