@@ -52,8 +52,11 @@ def exact_sample_recall(E, ind, sample_rows, rng, chunk=200_000):
     return float(np.sum(hits) / (len(s) * k))
 
 
-def solver_race(rundir, cfg, lam_degrees, workers):
-    """Our solver vs scipy CG (Jacobi) on the job's graph; returns a list of result dicts."""
+def solver_race(rundir, cfg, lam_degrees, workers, repeat=1):
+    """Our solver vs scipy CG (Jacobi) on the job's graph; returns a list of result dicts.
+
+    Each contender runs ``repeat`` times in turn and keeps its best time (the usual way to time on
+    a noisy machine, as ``timeit`` does)."""
     import scipy.sparse as sp
     import scipy.sparse.linalg as spla
     from .kernels import laplacian, sweepcg
@@ -76,33 +79,39 @@ def solver_race(rundir, cfg, lam_degrees, workers):
     out = []
     for target in lam_degrees:
         lam = target / mean_deg
-        row = {"lam_times_mean_degree": target, "lam": lam}
-        # scipy: assemble A = C + lam L from the graph, Jacobi preconditioner, CG
-        t0 = time.perf_counter()
-        A, c = laplacian.system(W, lam, cfg["solve"]["laplacian"])
-        b = c[:, None] * Y
-        M = sp.diags(1.0 / A.diagonal())
-        row["cg_setup_seconds"] = time.perf_counter() - t0
-        count = [0]
-        x, info = spla.cg(A, b[:, 0], rtol=tol, M=M, maxiter=100000,
-                          callback=lambda xk: count.__setitem__(0, count[0] + 1))
-        row["cg_seconds"] = time.perf_counter() - t0
-        row["cg_iterations"] = count[0]
-        row["cg_residual"] = float(np.linalg.norm(b[:, 0] - A @ x) / np.linalg.norm(b))
-        for w in sorted({1, workers}):
-            # ours: scale the split graph for this lam, then sweep
+        row = {"lam_times_mean_degree": target, "lam": lam, "repeat": repeat}
+        for _ in range(repeat):
+            # scipy: assemble A = C + lam L from the graph, Jacobi preconditioner, CG
             t0 = time.perf_counter()
-            system = sweepcg.scale_split(split, lam, c[perm])
+            A, c = laplacian.system(W, lam, cfg["solve"]["laplacian"])
+            b = c[:, None] * Y
+            M = sp.diags(1.0 / A.diagonal())
             t_setup = time.perf_counter() - t0
-            executor = sweepcg.make_executor(w, "threads")
-            t1 = time.perf_counter()
-            res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, executor=executor)
-            t_iter = time.perf_counter() - t1
-            row[f"ours_w{w}_seconds"] = t_setup + t_iter
-            row[f"ours_w{w}_setup_seconds"] = t_setup
-            row[f"ours_w{w}_sweeps"] = res.sweeps
-            row[f"ours_w{w}_residual"] = res.final_residual
-            row[f"ratio_w{w}"] = (t_setup + t_iter) / row["cg_seconds"]
+            count = [0]
+            x, info = spla.cg(A, b[:, 0], rtol=tol, M=M, maxiter=100000,
+                              callback=lambda xk: count.__setitem__(0, count[0] + 1))
+            t_all = time.perf_counter() - t0
+            if t_all < row.get("cg_seconds", np.inf):
+                row.update(cg_seconds=t_all, cg_setup_seconds=t_setup, cg_iterations=count[0],
+                           cg_residual=float(np.linalg.norm(b[:, 0] - A @ x) / np.linalg.norm(b)))
+            del A, M, x
+            for w in sorted({1, workers}):
+                # ours: scale the split graph for this lam, then sweep
+                t0 = time.perf_counter()
+                system = sweepcg.scale_split(split, lam, c[perm])
+                t_setup = time.perf_counter() - t0
+                executor = sweepcg.make_executor(w, "threads")
+                t1 = time.perf_counter()
+                res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, executor=executor)
+                t_all = t_setup + time.perf_counter() - t1
+                if executor is not None:
+                    executor.shutdown()
+                if t_all < row.get(f"ours_w{w}_seconds", np.inf):
+                    row.update({f"ours_w{w}_seconds": t_all, f"ours_w{w}_setup_seconds": t_setup,
+                                f"ours_w{w}_sweeps": res.sweeps, f"ours_w{w}_residual": res.final_residual})
+                del system, res
+        for w in sorted({1, workers}):
+            row[f"ratio_w{w}"] = row[f"ours_w{w}_seconds"] / row["cg_seconds"]
         out.append(row)
     return out
 
@@ -117,6 +126,8 @@ def main(argv=None):
     p.add_argument("--sample", type=int, default=2000, help="rows in the recall sample (default 2000)")
     p.add_argument("--seed", type=int, default=7)
     p.add_argument("--no-race", action="store_true", help="skip the solver comparison")
+    p.add_argument("--repeat", type=int, default=3,
+                   help="runs of each solver in the comparison; the best time counts (default 3)")
     args = p.parse_args(argv)
 
     from . import demo
@@ -166,7 +177,7 @@ def main(argv=None):
         "workers": args.workers,
     }
     if not args.no_race:
-        table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers)
+        table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers, args.repeat)
     out = args.json or os.path.join(args.dir, f"bench-{args.rows}.json")
     os.makedirs(os.path.dirname(os.path.abspath(out)), exist_ok=True)
     with open(out, "w") as fh:
@@ -182,7 +193,7 @@ def main(argv=None):
           f"{js['workers']} workers, {js['groups']} groups")
     print(f"neighbour recall@k vs exact on {args.sample} rows: {recall:.4f}")
     for r in table.get("solver_race", []):
-        cells = [f"lam*deg {r['lam_times_mean_degree']:>4}: CG-Jacobi {r['cg_seconds']:.2f} s ({r['cg_iterations']} it, "
+        cells = [f"best of {r['repeat']}, lam*deg {r['lam_times_mean_degree']:>4}: CG-Jacobi {r['cg_seconds']:.2f} s ({r['cg_iterations']} it, "
                  f"setup {r['cg_setup_seconds']:.2f} s)"]
         for w in sorted({1, args.workers}):
             cells.append(f"ours w={w} {r[f'ours_w{w}_seconds']:.2f} s ({r[f'ours_w{w}_sweeps']} sweeps, "
