@@ -70,6 +70,7 @@ RULES = {
         "block_rows": Rule("int", default=4096, lo=1, hi=10_000_000, doc="rows per block of the 'blocks' solver"),
         "block_solve": Rule("str", default="exact", choices=("exact", "sweeps"), doc="'blocks' solver: solve each block exactly (sparse LU) or by inner Gauss-Seidel sweeps"),
         "inner_sweeps": Rule("int", default=2, lo=1, hi=1000, doc="'blocks' solver: inner Gauss-Seidel sweeps per block when block_solve = 'sweeps'"),
+        "warm_start": Rule("bool", default=False, doc="start the solver from the adjusted scores currently published in output.path, for ids present in both (new ids start from their raw score); converges to the same answer within tol, in fewer sweeps"),
         "tol": Rule("float", default=1e-6, lo=1e-15, hi=1.0, doc="stop when ||C y - A f|| / ||C y|| falls below this"),
         "max_sweeps": Rule("int", default=500, lo=1, hi=1_000_000, doc="cap on outer sweeps; hitting it warns and is recorded"),
     },
@@ -87,6 +88,7 @@ RULES = {
         "dir": Rule("str", default="runs", doc="folder holding one run directory per (config, input) pair", affects_result=False),
         "seed": Rule("int", default=0, lo=0, hi=2**32 - 1, doc="seed of every random choice (neighbour index, probe sample)"),
         "memory_mb": Rule("int", default=4096, lo=256, hi=100_000_000, doc="memory budget in MiB for streaming: sets rows per chunk and DuckDB's memory_limit (a quarter each)", affects_result=False),
+        "on_input_change": Rule("str", default="fresh", choices=("fresh", "refuse"), doc="when an unfinished run with the same settings exists but the input files changed: 'fresh' starts a new run (and says which files changed), 'refuse' stops with exit code 65", affects_result=False),
     },
 }
 

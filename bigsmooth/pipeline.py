@@ -4,10 +4,11 @@ import os
 import shutil
 
 from . import config as config_mod
-from .errors import OutputError
-from .rundir import STAGES, RunDir, run_id
+from .atomic import read_json
+from .errors import DataError, OutputError
+from .rundir import STAGES, RunDir, hold_lock, run_id
 from .stages import audit, embed, graph, order, publish, scan, solve
-from .table import fingerprint
+from .table import changed_files, fingerprint
 
 log = logging.getLogger("bigsmooth.run")
 
@@ -38,6 +39,43 @@ def _allow_numba_threads(threads):
         os.environ["NUMBA_NUM_THREADS"] = str(max(current, threads))
 
 
+def _unfinished_with_other_input(run_root, chash, input_hash):
+    """Unfinished runs under ``run_root`` with the same settings but another input: [(dir, manifest)]."""
+    out = []
+    if not os.path.isdir(run_root):
+        return out
+    for name in sorted(os.listdir(run_root)):
+        path = os.path.join(run_root, name, "manifest.json")
+        try:
+            m = read_json(path)
+        except (OSError, ValueError):
+            continue
+        if m.get("config_hash") != chash or m["input"]["hash"] == input_hash or m.get("superseded_by"):
+            continue
+        if not all(v["state"] == "done" for v in m["stages"].values()):
+            out.append((os.path.join(run_root, name), m))
+    return out
+
+
+def _handle_input_change(cfg, chash, fp, rid):
+    """Never mix inputs: an unfinished run on other input files is left alone (and marked superseded)
+    or, with run.on_input_change = "refuse", stops the job; either way the changed files are named."""
+    for path, m in _unfinished_with_other_input(cfg["run"]["dir"], chash, fp["hash"]):
+        lines = changed_files(m["input"], fp)
+        listing = "\n  ".join(lines[:10]) + (f"\n  ... and {len(lines) - 10} more" if len(lines) > 10 else "")
+        if cfg["run"]["on_input_change"] == "refuse":
+            raise DataError(f"the unfinished run {path} was started on other input files; {len(lines)} "
+                            f"files differ:\n  {listing}\nrun.on_input_change = \"refuse\": nothing was "
+                            "done. Restore the input to resume that run, or set run.on_input_change = "
+                            "\"fresh\" to start a new run on the current files.")
+        log.warning("the unfinished run %s was started on other input files; not resuming it, starting a "
+                    "fresh run. %d files differ:\n  %s", path, len(lines), listing)
+        with hold_lock(path, f"run {path}"):
+            m = read_json(os.path.join(path, "manifest.json"))
+            m["superseded_by"] = rid
+            RunDir(path).save(m)
+
+
 def _stage_calls(rd, cfg, fp, rid):
     return {
         "scan": lambda: scan.run(rd, cfg, fp),
@@ -64,6 +102,8 @@ def run_job(config_path, fresh=False):
     rid = run_id(chash, fp["hash"])
     rd = RunDir(os.path.join(cfg["run"]["dir"], rid))
     with rd.lock():
+        if not rd.exists():
+            _handle_input_change(cfg, chash, fp, rid)
         if fresh and rd.exists():
             log.info("--fresh: discarding the earlier state of run %s", rid)
             for name in os.listdir(rd.path):
@@ -83,12 +123,20 @@ def run_job(config_path, fresh=False):
             log.info("new run %s: %d rows in %d files", rid, fp["rows"], len(fp["files"]))
         _check_writable(cfg["output"]["path"])
         calls = _stage_calls(rd, cfg, fp, rid)
-        for name in STAGES:
-            if rd.is_done(name):
-                log.info("stage %s already done; skipping", name)
-                continue
-            log.info("stage %s", name)
-            with rd.stage(name) as record:
-                record.update(calls[name]() or {})
+        # a second job publishing to the same output waits for this one (exit 75 at once)
+        with hold_lock(cfg["output"]["path"], f"output {cfg['output']['path']}"):
+            for name in STAGES:
+                if rd.is_done(name):
+                    log.info("stage %s already done; skipping", name)
+                    continue
+                log.info("stage %s", name)
+                with rd.stage(name) as record:
+                    try:
+                        record.update(calls[name]() or {})
+                    except OSError as exc:
+                        # a failed write (disk full, permissions): earlier outputs and checkpoints stay
+                        raise OutputError(f"stage {name} could not write in {rd.path}: {exc}. Earlier "
+                                          "stages and the last solver checkpoint are kept; free space or "
+                                          "fix permissions and run again to resume.") from None
         out = rd.summary("publish")["path"]
         return {"run_dir": rd.path, "run_id": rid, "already_complete": False, "output": out}

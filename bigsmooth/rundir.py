@@ -17,7 +17,7 @@ import os
 import socket
 import time
 
-from . import atomic
+from . import atomic, faults
 from .errors import LockHeldError, OutputError
 
 log = logging.getLogger("bigsmooth.run")
@@ -83,7 +83,9 @@ class RunDir:
         t0 = time.monotonic()
         record = {}
         try:
+            faults.point(f"stage:{name}:start")
             yield record
+            faults.point(f"stage:{name}:done")
         except BaseException as exc:
             m = self.load()
             m["stages"][name].update(state="failed", seconds=round(time.monotonic() - t0, 3),
@@ -97,25 +99,35 @@ class RunDir:
         self.save(m)
         log.info("stage %s done in %.1f s", name, time.monotonic() - t0)
 
-    @contextlib.contextmanager
     def lock(self):
         """Hold an exclusive fcntl lock on the run for the whole block; fail at once if held."""
-        os.makedirs(self.path, exist_ok=True)
-        fd = os.open(os.path.join(self.path, ".lock"), os.O_RDWR | os.O_CREAT, 0o644)
+        return hold_lock(self.path, f"run {self.path}")
+
+
+@contextlib.contextmanager
+def hold_lock(folder, what):
+    """An exclusive fcntl lock on ``folder``/.lock for the whole block (released by the kernel if the
+    process dies, so a killed run never leaves a stale lock); LockHeldError naming the holder if
+    another process has it."""
+    try:
+        os.makedirs(folder, exist_ok=True)
+        fd = os.open(os.path.join(folder, ".lock"), os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError as exc:
+        raise OutputError(f"cannot create the lock file in {folder}: {exc.strerror}") from None
+    try:
         try:
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except OSError as exc:
-                if exc.errno not in (errno.EAGAIN, errno.EACCES):
-                    raise
-                holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
-                raise LockHeldError(f"run {self.path} is in use by another bigsmooth process ({holder}); "
-                                    "retry later") from None
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {_now()}\n".encode(), 0)
-            yield
-        finally:
-            os.close(fd)
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError as exc:
+            if exc.errno not in (errno.EAGAIN, errno.EACCES):
+                raise
+            holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
+            raise LockHeldError(f"{what} is in use by another bigsmooth process ({holder}); "
+                                "retry later") from None
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {_now()}\n".encode(), 0)
+        yield
+    finally:
+        os.close(fd)
 
 
 def _now():

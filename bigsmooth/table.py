@@ -61,6 +61,30 @@ def input_root(path, files):
         [os.path.dirname(f) for f in files])
 
 
+def footer_hash(path):
+    """sha256 of a Parquet file's footer (schema, row groups, column statistics): changes with the
+    content of almost any rewrite, read in one small seek."""
+    with open(path, "rb") as fh:
+        fh.seek(-8, os.SEEK_END)
+        tail = fh.read(8)
+        size = int.from_bytes(tail[:4], "little")
+        fh.seek(-(8 + size), os.SEEK_END)
+        return hashlib.sha256(fh.read(size)).hexdigest()[:32]
+
+
+def changed_files(old, new):
+    """Lines saying which input files differ between two fingerprints (added, removed, changed)."""
+    a = {e["path"]: e for e in old["files"]}
+    b = {e["path"]: e for e in new["files"]}
+    lines = [f"added:   {p}" for p in sorted(set(b) - set(a))]
+    lines += [f"removed: {p}" for p in sorted(set(a) - set(b))]
+    for p in sorted(set(a) & set(b)):
+        what = [k for k in ("size", "rows", "mtime_ns", "footer") if a[p].get(k) != b[p].get(k)]
+        if what:
+            lines.append(f"changed: {p} ({', '.join(what)})")
+    return lines
+
+
 def fingerprint(path):
     """Paths, sizes and footer row counts of the input; a hash of them identifies the input."""
     files = resolve_files(path)
@@ -73,13 +97,16 @@ def fingerprint(path):
         except (OSError, pa.ArrowException) as exc:
             bad.append((f, str(exc).splitlines()[0] if str(exc) else type(exc).__name__))
             continue
-        entries.append({"path": f, "size": os.path.getsize(f), "rows": rows, "offset": offset})
+        st = os.stat(f)
+        entries.append({"path": f, "size": st.st_size, "mtime_ns": st.st_mtime_ns, "footer": footer_hash(f),
+                        "rows": rows, "offset": offset})
         offset += rows
     if bad:
         lines = "\n".join(f"  {f}: {why}" for f, why in bad[:5])
-        raise DataError(f"{len(bad)} of {len(files)} input files are not readable Parquet "
+        raise InputMissingError(f"{len(bad)} of {len(files)} input files are not readable Parquet "
                         f"(truncated or corrupt?):\n{lines}\nReplace or remove them and run again.")
-    digest = hashlib.sha256(json.dumps([(e["path"], e["size"], e["rows"]) for e in entries]).encode()).hexdigest()
+    digest = hashlib.sha256(json.dumps([(e["path"], e["size"], e["mtime_ns"], e["footer"], e["rows"])
+                                        for e in entries]).encode()).hexdigest()
     return {"root": input_root(path, files), "files": entries, "rows": offset, "hash": digest}
 
 
@@ -144,6 +171,10 @@ class Source:
     def fetch(self, con, sql, **params):
         """Run a query whose FROM names ``{src}``; return all result rows as tuples."""
         return con.execute(sql.replace("{src}", self.sql), {**self.params, **params}).fetchall()
+
+    def fetch_arrow(self, con, sql, **params):
+        """As :meth:`fetch`, returning a pyarrow Table (for results with many rows)."""
+        return con.execute(sql.replace("{src}", self.sql), {**self.params, **params}).to_arrow_table()
 
     def chunks(self, con, select, batch_rows):
         """Stream the table file by file in fixed chunks: yields (rows, pyarrow.Table).

@@ -13,19 +13,7 @@ from sklearn.neighbors import NearestNeighbors
 
 from bigsmooth import demo
 from bigsmooth.errors import EXIT_CONFIG, EXIT_DATA, EXIT_NOINPUT, EXIT_USAGE
-
-ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-
-
-def cli(*args, cwd=None):
-    env = {**os.environ, "PYTHONPATH": ROOT}
-    return subprocess.run([sys.executable, "-m", "bigsmooth", *args], capture_output=True, text=True,
-                          cwd=cwd, env=env, timeout=600)
-
-
-def read_output(out_dir):
-    return ds.dataset(os.path.join(out_dir, "current"), format="parquet", partitioning="hive").to_table()
-
+from helpers import ROOT, _assert_nothing_published, _small_table, _write_case, cli, read_output
 
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory):
@@ -114,30 +102,6 @@ def test_help_lists_every_option():
 def test_bad_usage_exit_code():
     assert cli("run").returncode == EXIT_USAGE
     assert cli("frobnicate").returncode == EXIT_USAGE
-
-
-# ---- bad input: clear message, documented exit code, nothing published ----
-
-def _small_table(n=200, seed=1):
-    cols = demo.generate(n, seed)
-    cols.pop("district")
-    return {k: (v if isinstance(v, pa.Array) else pa.array(v)) for k, v in cols.items()}
-
-
-def _write_case(tmp_path, table_cols, extra_cfg=""):
-    data = tmp_path / "in"
-    data.mkdir()
-    pq.write_table(pa.table(table_cols), data / "part-0.parquet")
-    cfg = tmp_path / "job.toml"
-    text = demo.CONFIG_TEMPLATE.format(data="in", output="out", runs="runs") + extra_cfg
-    cfg.write_text(text)
-    return cfg
-
-
-def _assert_nothing_published(tmp_path):
-    out = tmp_path / "out"
-    assert not (out / "current").exists()
-    assert not out.exists() or not [p for p in out.iterdir() if not p.name.startswith(".")]
 
 
 def test_missing_column_suggests_the_close_name(tmp_path):

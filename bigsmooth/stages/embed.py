@@ -14,7 +14,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import scipy.sparse as sp
 
-from .. import atomic
+from .. import atomic, faults
+from ..errors import DataError
 from ..kernels import fairspace
 from ..kernels.metrics import roc_auc
 from ..progress import Progress
@@ -108,6 +109,7 @@ def run(rundir, cfg, fp):
     log.info("streaming in chunks of %d rows (memory budget %d MiB)", batch_rows, cfg["run"]["memory_mb"])
     mom = None
     seen = 0
+    chunk_no = 0
     prog = Progress(log, "embed pass 1 (statistics)", n)
     for rows, batch in src.chunks(con, sql, batch_rows):
         X = _features(batch, inp, levels)
@@ -129,6 +131,8 @@ def run(rundir, cfg, fp):
             label[rows] = batch.column(inp["label"]).to_numpy(zero_copy_only=False)
         seen += len(rows)
         prog.update(len(rows))
+        chunk_no += 1
+        faults.point(f"embed:chunk:{chunk_no}")
     if seen != n:
         raise RuntimeError(f"embed pass 1 streamed {seen} rows; the footers say {n}")
 
@@ -144,8 +148,11 @@ def run(rundir, cfg, fp):
                     ", ".join(np.array(names)[fs.constant][:10]))
     dim = fs.transform.shape[1]
     if dim == 0:
-        raise RuntimeError("the fair space has no dimensions left (all features constant or explained "
-                           "by the protected attributes)")
+        raise DataError(f"the fair space has no dimensions left: of {p} encoded features, "
+                        f"{int(fs.constant.sum())} are constant over all {n} rows and the rest are explained by "
+                        "the protected attributes, so every row would look the same. Check that the feature "
+                        "columns carry values (all rows identical?) and that input.numeric_features / "
+                        "categorical_features name the right columns.")
     E = out.open(os.path.join(d, "embedding.npy"), (n, dim), np.float32)
 
     rng = np.random.default_rng(cfg["run"]["seed"])
@@ -162,6 +169,8 @@ def run(rundir, cfg, fp):
         raw_sample[pos[hit]] = (X[hit] - fs.mean) * fs.scale   # standardised, before the projection
         seen += len(rows)
         prog.update(len(rows))
+        chunk_no += 1
+        faults.point(f"embed:chunk:{chunk_no}")
     if seen != n:
         raise RuntimeError(f"embed pass 2 streamed {seen} rows; the footers say {n}")
 

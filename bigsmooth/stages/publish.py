@@ -7,8 +7,13 @@
     <output.path>/current                symlink to the current version folder (replaced atomically)
 
 The version folder is built under a hidden staging name and renamed when complete, so readers of
-``current`` see last night's output until the new one is whole.
+``current`` see last night's output until the new one is whole. The version's name is recorded in
+the run directory (publish/pending.json) before anything is written: a run killed after the rename
+reuses its complete version folder and only moves the pointers; one killed before it rebuilds the
+folder. Leftover staging folders (the job holds the output lock, so they belong to dead runs) are
+removed first.
 """
+import contextlib
 import json
 import logging
 import os
@@ -19,7 +24,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .. import atomic
+from .. import atomic, faults
 from ..errors import OutputError
 from ..table import batch_rows_for
 
@@ -58,12 +63,51 @@ def _write_file(src_path, dst_path, cols, inp, out, Y, F, lo, hi, offset, batch_
     return pos - offset
 
 
+def _clear_leftovers(root):
+    for name in os.listdir(root):
+        p = os.path.join(root, name)
+        if name.startswith(".staging-"):
+            log.info("removing %s left by an interrupted run", p)
+            shutil.rmtree(p, ignore_errors=True)
+        elif name.startswith(".current-"):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(p)
+
+
+def _move_pointers(root, version, run_id, rows):
+    faults.point("publish:before-pointer")
+    pointer = {"version": version, "run_id": run_id, "rows": rows, "published": version[:16]}
+    atomic.write_bytes(os.path.join(root, "CURRENT"), (json.dumps(pointer, indent=2) + "\n").encode())
+    faults.point("publish:before-link")
+    link_tmp = os.path.join(root, f".current-{version}")
+    with contextlib.suppress(FileNotFoundError):
+        os.unlink(link_tmp)
+    os.symlink(version, link_tmp)
+    os.replace(link_tmp, os.path.join(root, "current"))
+    atomic.fsync_dir(root)
+
+
 def run(rundir, cfg, fp, run_id):
     inp, out = cfg["input"], cfg["output"]
     root = out["path"]
-    version = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime()) + "-" + run_id[:8]
+    pending = rundir.file("publish", "pending.json")
+    if os.path.exists(pending):
+        version = atomic.read_json(pending)["version"]
+    else:
+        version = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime()) + "-" + run_id[:8]
+        rundir.stage_dir("publish")
+        atomic.write_json(pending, {"version": version})
     staging = os.path.join(root, f".staging-{version}")
     final = os.path.join(root, version)
+    try:
+        os.makedirs(root, exist_ok=True)
+        _clear_leftovers(root)
+        if os.path.isdir(final):
+            log.info("the version folder %s was completed before an interruption; moving the pointers", final)
+            _move_pointers(root, version, run_id, fp["rows"])
+            return {"version": version, "path": final, "rows": fp["rows"], "files": len(fp["files"])}
+    except OSError as exc:
+        raise OutputError(f"cannot write the output under {root}: {exc}") from None
     Y = np.load(rundir.file("embed", "scores.npy"), mmap_mode="r")
     F = np.load(rundir.file("solve", "adjusted.npy"), mmap_mode="r")
     lo, hi = inp["score_range"]
@@ -75,7 +119,7 @@ def run(rundir, cfg, fp, run_id):
         raise OutputError(f"cannot create the output folder {staging}: {exc.strerror}") from None
     try:
         written = 0
-        for e in fp["files"]:
+        for i, e in enumerate(fp["files"], 1):
             rel = os.path.relpath(e["path"], fp["root"])
             dst = os.path.join(staging, rel)
             os.makedirs(os.path.dirname(dst), exist_ok=True)
@@ -83,6 +127,7 @@ def run(rundir, cfg, fp, run_id):
             if got != e["rows"]:
                 raise RuntimeError(f"{e['path']}: wrote {got} rows, the footer says {e['rows']}")
             written += got
+            faults.point(f"publish:file:{i}")
         if written != fp["rows"]:
             raise RuntimeError(f"wrote {written} rows; the input has {fp['rows']}")
         shutil.copyfile(rundir.file("audit", "audit.json"), os.path.join(staging, "_audit.json"))
@@ -91,13 +136,8 @@ def run(rundir, cfg, fp, run_id):
                 with open(os.path.join(dirpath, f), "rb") as fh:
                     os.fsync(fh.fileno())
             atomic.fsync_dir(dirpath)
+        faults.point("publish:before-rename")
         os.rename(staging, final)
-        atomic.fsync_dir(root)
-        pointer = {"version": version, "run_id": run_id, "rows": written, "published": version[:16]}
-        atomic.write_bytes(os.path.join(root, "CURRENT"), (json.dumps(pointer, indent=2) + "\n").encode())
-        link_tmp = os.path.join(root, f".current-{version}")
-        os.symlink(version, link_tmp)
-        os.replace(link_tmp, os.path.join(root, "current"))
         atomic.fsync_dir(root)
     except OSError as exc:
         shutil.rmtree(staging, ignore_errors=True)
@@ -105,5 +145,9 @@ def run(rundir, cfg, fp, run_id):
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
         raise
+    try:
+        _move_pointers(root, version, run_id, written)
+    except OSError as exc:
+        raise OutputError(f"cannot move the output pointers under {root} to {version}: {exc}") from None
     log.info("published %d rows to %s", written, final)
     return {"version": version, "path": final, "rows": written, "files": len(fp["files"])}

@@ -17,7 +17,7 @@ import os
 
 import numpy as np
 
-from .. import atomic
+from .. import atomic, faults
 from ..kernels import laplacian, solver, sweepcg
 from .graph import load_graph
 
@@ -43,6 +43,57 @@ def save_checkpoint(path, **arrays):
     with atomic.atomic_path(path) as tmp:
         with open(tmp, "wb") as fh:
             np.savez(fh, **arrays)
+        faults.point("checkpoint:write")
+
+
+def previous_scores(rundir, cfg, Y):
+    """The warm-start iterate: the adjusted scores currently published in output.path for ids in
+    both tables, the raw score for the others. Returns (X0, record)."""
+    import glob
+
+    import duckdb
+
+    from ..atomic import read_json
+    from ..table import ROW, Source, connect_budget, quote
+
+    inp, out = cfg["input"], cfg["output"]
+    pointer = os.path.join(out["path"], "CURRENT")
+    if not os.path.exists(pointer):
+        log.info("warm start: nothing published in %s yet; starting from the raw scores", out["path"])
+        return Y, {"used": False, "reason": "nothing published yet"}
+    version = read_json(pointer)["version"]
+    files = sorted(glob.glob(os.path.join(out["path"], version, "**", "*.parquet"), recursive=True))
+    con = connect_budget(cfg["run"]["memory_mb"])
+    src = Source(con, rundir.load()["input"])
+    idq = quote(inp["id"])
+    adj = [quote(c + out["suffix"]) for c in inp["scores"]]
+    try:
+        t = src.fetch_arrow(con, f"SELECT src.{ROW}, {', '.join('p.' + a for a in adj)} FROM {{src}} "
+                                 f"JOIN read_parquet($prev, union_by_name = true) p ON src.{idq} = p.{idq}",
+                            prev=files)
+    except duckdb.Error as exc:
+        log.warning("warm start: cannot read the published version %s (%s); starting from the raw scores",
+                    version, str(exc).splitlines()[0])
+        return Y, {"used": False, "reason": f"cannot read version {version}"}
+    rows = t.column(0).to_numpy()
+    X0 = np.array(Y, dtype=np.float64)
+    for j in range(len(adj)):
+        X0[rows, j] = t.column(j + 1).to_numpy(zero_copy_only=False)
+    log.info("warm start from version %s: %d of %d rows start from last night's adjusted score, %d new",
+             version, len(rows), len(Y), len(Y) - len(rows))
+    return X0, {"used": True, "version": version, "rows_matched": int(len(rows)), "rows_new": int(len(Y) - len(rows))}
+
+
+def _sweeps_saved(system, b, Yp, X0p, residuals, sweeps):
+    """Estimated sweeps a cold start (x0 = raw scores) would have needed beyond this warm start:
+    log(cold start residual / warm start residual) over the mean log reduction per sweep."""
+    nb = np.linalg.norm(b)
+    cold = np.linalg.norm(b - system.matvec(Yp)) / nb
+    warm = np.linalg.norm(b - system.matvec(X0p)) / nb
+    rate = np.log(residuals[-1] / residuals[0]) / max(sweeps, 1) if sweeps and residuals[0] > 0 else 0.0
+    est = float(np.log(cold / warm) / -rate) if rate < 0 and warm > 0 else 0.0
+    return {"start_residual_cold": float(cold), "start_residual_warm": float(warm),
+            "estimated_sweeps_saved": round(est, 1)}
 
 
 def workers_for(s):
@@ -50,7 +101,7 @@ def workers_for(s):
     return max(1, min(w, s["groups"]))
 
 
-def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path):
+def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0):
     """The default solver on the order stage's split graph. The scaled system is written to
     memory-mapped files in solve/system (its pages are the kernel's to evict), so the process holds
     only O(n) vectors plus the pages the sweeps are reading."""
@@ -86,6 +137,7 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path):
     every = s["checkpoint_every"]
 
     def on_sweep(st, wk):
+        faults.point(f"solve:sweep:{st['sweep']}")
         if st["sweep"] % every == 0:
             save_checkpoint(ck_path, method=np.array("sweep-cg"), x=wk.x, r=wk.r, p=wk.p, rho=st["rho"],
                             beta=st["beta"], sweep=np.int64(st["sweep"]), target=np.float64(st["target"]),
@@ -98,17 +150,20 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path):
     nw = workers_for(s)
     executor = sweepcg.make_executor(nw, s["backend"])
     try:
-        res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
+        res = sweepcg.sweep_cg(system, b[perm], x0=X0[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
                                executor=executor, work=work, state=state, on_sweep=on_sweep)
     finally:
         if executor is not None and s["backend"] == "threads":
             executor.shutdown()
-    return res.x, {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
-                   "true_residual_checks": [list(ch) for ch in res.checks], "final_residual": res.final_residual,
-                   "groups": len(bounds) - 1, "workers": nw, "backend": s["backend"]}
+    info = {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
+            "true_residual_checks": [list(ch) for ch in res.checks], "final_residual": res.final_residual,
+            "groups": len(bounds) - 1, "workers": nw, "backend": s["backend"]}
+    if s["warm_start"]:
+        info["warm_start_effect"] = _sweeps_saved(system, b[perm], Y[perm], X0[perm], res.residuals, res.sweeps)
+    return res.x, info
 
 
-def _blocks(rundir, s, A, b, Y, perm, ck_path):
+def _blocks(rundir, s, A, b, Y, perm, ck_path, X0):
     Ap = A[perm][:, perm].tocsr()
     Ap.sort_indices()
     ck = load_checkpoint(ck_path)
@@ -116,10 +171,11 @@ def _blocks(rundir, s, A, b, Y, perm, ck_path):
         x0, start, record = ck["x"], int(ck["sweep"]), ck["residuals"].tolist()
         log.info("resuming the solver from the checkpoint after sweep %d (residual %.3g)", start, record[-1])
     else:
-        x0, start, record = Y[perm], 0, None
+        x0, start, record = X0[perm], 0, None
     every = s["checkpoint_every"]
 
     def on_sweep(sweep, x, residuals):
+        faults.point(f"solve:sweep:{sweep}")
         if sweep % every == 0:
             save_checkpoint(ck_path, method=np.array("blocks"), x=x, sweep=np.int64(sweep),
                             residuals=np.asarray(residuals))
@@ -167,11 +223,23 @@ def run(rundir, cfg):
         info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[res], final_residual=res)
     else:
         perm = np.load(rundir.file("order", "order.npy"))
+        X0 = Y
+        if s["warm_start"]:
+            # kept in the run directory so that a resumed run starts from the same iterate even if
+            # another job has published since
+            x0_path = rundir.file("solve", "x0.npy")
+            if os.path.exists(x0_path):
+                X0, info["warm_start"] = np.load(x0_path), atomic.read_json(x0_path + ".json")
+            else:
+                X0, info["warm_start"] = previous_scores(rundir, cfg, Y)
+                rundir.stage_dir("solve")
+                atomic.save_npy(x0_path, X0)
+                atomic.write_json(x0_path + ".json", info["warm_start"])
         if s["method"] == "sweep-cg":
-            Xp, more = _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path)
+            Xp, more = _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0)
         else:
             A, _ = laplacian.system(W, s["lam"], s["laplacian"])
-            Xp, more = _blocks(rundir, s, A, b, Y, perm, ck_path)
+            Xp, more = _blocks(rundir, s, A, b, Y, perm, ck_path, X0)
         info.update(more)
         F = np.empty_like(Xp)
         F[perm] = Xp

@@ -1,0 +1,48 @@
+"""Fault injection for tests: make the process die (or a write fail) at a named point.
+
+    BIGSMOOTH_FAULT=solve:sweep:3                 SIGKILL this process right after solver sweep 3
+    BIGSMOOTH_FAULT=publish:before-rename         SIGKILL before the version folder is renamed
+    BIGSMOOTH_FAULT=checkpoint:write=oserror      raise OSError(ENOSPC) there instead
+    BIGSMOOTH_FAULT=embed:chunk:2,stage:audit:start   several points (the first one reached fires)
+
+Points (see :data:`POINTS`): ``stage:<name>:start`` (the stage marked running, nothing written)
+and ``stage:<name>:done`` (its outputs written, not yet marked done) for every stage;
+``embed:chunk:<i>`` after the i-th chunk (counted from 1 over both passes); ``solve:sweep:<i>``
+after sweep i, before its checkpoint; ``checkpoint:write`` inside the checkpoint write, after the
+temporary file is complete and before it replaces the old one; ``publish:file:<i>`` after the i-th
+output file (from 1); ``publish:before-rename``; ``publish:before-pointer`` (version folder in
+place, CURRENT not yet replaced); ``publish:before-link`` (CURRENT replaced, the ``current``
+symlink not yet).
+
+SIGKILL is what the OOM killer and a hard reboot do: no handler, no cleanup, no flush. Unset (the
+normal case), every point costs one dictionary lookup.
+"""
+import errno
+import os
+import signal
+
+ENV = "BIGSMOOTH_FAULT"
+
+POINTS = ("stage:<name>:start", "stage:<name>:done", "embed:chunk:<i>", "solve:sweep:<i>", "checkpoint:write",
+          "publish:file:<i>", "publish:before-rename", "publish:before-pointer", "publish:before-link")
+
+
+def _armed():
+    spec = os.environ.get(ENV, "")
+    out = {}
+    for item in filter(None, (s.strip() for s in spec.split(","))):
+        name, _, action = item.partition("=")
+        out[name] = action or "kill"
+    return out
+
+
+def point(name):
+    """Fire the fault armed at ``name``, if any: SIGKILL (default) or ``oserror``."""
+    if ENV not in os.environ:
+        return
+    action = _armed().get(name)
+    if action is None:
+        return
+    if action == "oserror":
+        raise OSError(errno.ENOSPC, f"No space left on device (injected by {ENV} at {name})")
+    os.kill(os.getpid(), signal.SIGKILL)

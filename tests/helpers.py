@@ -1,0 +1,47 @@
+"""Helpers shared by the command-line tests (imported by tests/test_*.py)."""
+import os
+import subprocess
+import sys
+
+import pyarrow as pa
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
+
+from bigsmooth import demo
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+
+
+def cli(*args, cwd=None, env=None):
+    """Run ``python -m bigsmooth ARGS`` in a subprocess (extra environment variables in ``env``)."""
+    full = {**os.environ, "PYTHONPATH": ROOT, **(env or {})}
+    return subprocess.run([sys.executable, "-m", "bigsmooth", *args], capture_output=True, text=True,
+                          cwd=cwd, env=full, timeout=600)
+
+
+def read_output(out_dir):
+    return ds.dataset(os.path.join(out_dir, "current"), format="parquet", partitioning="hive").to_table()
+
+
+def _small_table(n=200, seed=1):
+    cols = demo.generate(n, seed)
+    cols.pop("district")
+    return {k: (v if isinstance(v, pa.Array) else pa.array(v)) for k, v in cols.items()}
+
+
+def _write_case(tmp_path, table_cols, extra_cfg=""):
+    data = tmp_path / "in"
+    data.mkdir()
+    pq.write_table(pa.table(table_cols), data / "part-0.parquet")
+    cfg = tmp_path / "job.toml"
+    text = demo.CONFIG_TEMPLATE.format(data="in", output="out", runs="runs") + extra_cfg
+    cfg.write_text(text)
+    return cfg
+
+
+def _assert_nothing_published(tmp_path):
+    out = tmp_path / "out"
+    assert not (out / "current").exists()
+    assert not out.exists() or not [p for p in out.iterdir() if not p.name.startswith(".")]
+
+

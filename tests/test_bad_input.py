@@ -1,0 +1,237 @@
+"""Bad input through the command line: one case per row of the table below.
+
+Every case runs ``python -m bigsmooth run CONFIG`` in a subprocess on a small table derived from
+the demo generator and checks: the documented exit code (sysexits conventions, BSD sysexits.h:
+64 usage, 65 data, 66 no input, 73 cannot create, 75 temporary failure, 78 config), the message
+names what is wrong (and, for row problems, how many and example ids), nothing is published, and
+the input files are byte-for-byte untouched. Cases marked "works" must run and publish every row.
+The same table, in words, is in the README ("Reliability").
+"""
+import fcntl
+import hashlib
+import os
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from bigsmooth import demo
+from bigsmooth.errors import EXIT_CANTCREAT, EXIT_CONFIG, EXIT_DATA, EXIT_NOINPUT, EXIT_TEMPFAIL
+from helpers import _assert_nothing_published, _small_table, cli, read_output
+
+ID = "applicant_id"
+
+
+def _with(cols, **changes):
+    out = dict(cols)
+    for k, v in changes.items():
+        out[k] = v if isinstance(v, pa.Array) else pa.array(v)
+    return out
+
+
+def _set(cols, name, idx, value):
+    a = cols[name].to_pylist()
+    for i in idx:
+        a[i] = value
+    return _with(cols, **{name: pa.array(a, type=cols[name].type if value is not None else None)})
+
+
+def _cfg_text(edit=None):
+    text = demo.CONFIG_TEMPLATE.format(data="in", output="out", runs="runs")
+    return edit(text) if edit else text
+
+
+class Case:
+    def __init__(self, name, files=None, cfg=None, code=EXIT_DATA, says=(), setup=None, works=False):
+        self.name, self.files, self.cfg, self.code, self.says = name, files, cfg, code, says
+        self.setup, self.works = setup, works
+
+    def __repr__(self):
+        return self.name
+
+
+def _base():
+    return _small_table(200, seed=3)
+
+
+def _ids(cols, idx):
+    return [str(cols[ID].to_pylist()[i]) for i in idx]
+
+
+def _rename(cols, old, new):
+    out = {}
+    for k, v in cols.items():
+        out[new if k == old else k] = v
+    return out
+
+
+def _base_other():
+    cols = _small_table(200, seed=4)
+    ids = np.asarray(cols[ID].to_pylist()) + 10_000_000     # ids distinct from the first file's
+    return _with(cols, applicant_id=ids)
+
+
+B = _base()
+CASES = [
+    Case("misspelled column", [_rename(B, "monthly_income", "monthly_incme")],
+         says=["'monthly_income' is not in the table", "did you mean 'monthly_incme'"]),
+    Case("missing score column", [{k: v for k, v in B.items() if k != "sustain_score"}],
+         says=["input.scores: column 'sustain_score' is not in the table"]),
+    Case("score column of strings", [_with(B, sustain_score=[f"{v:.3f}" for v in B["sustain_score"].to_pylist()])],
+         says=["'sustain_score' has type VARCHAR; a numeric type is needed"]),
+    Case("numeric feature of strings", [_with(B, arrears_months=["none"] * 200)],
+         says=["'arrears_months' has type VARCHAR"]),
+    Case("id column of floats (NaN/inf ids)", [_with(B, applicant_id=[float("nan")] + [float(i) for i in range(199)])],
+         says=["input.id: column 'applicant_id' has type DOUBLE; an integer or string type is needed"]),
+    Case("null ids", [_set(B, ID, [4, 7], None)], says=["2 rows with null id"]),
+    Case("null scores", [_set(B, "sustain_score", [3], None)], says=["1 rows with null score", *_ids(B, [3])]),
+    Case("NaN scores", [_set(B, "sustain_score", [5, 9], float("nan"))],
+         says=["2 rows with NaN or infinite score", *_ids(B, [5, 9])]),
+    Case("infinite score", [_set(B, "sustain_score", [11], float("inf"))],
+         says=["1 rows with NaN or infinite score", *_ids(B, [11])]),
+    Case("null feature values", [_set(B, "monthly_income", [1, 2, 3], None)],
+         says=["3 rows with null value in numeric feature 'monthly_income'", *_ids(B, [1, 2, 3])]),
+    Case("NaN feature values", [_set(B, "debt_to_income", [8], float("nan"))],
+         says=["1 rows with NaN or infinite value in numeric feature 'debt_to_income'", *_ids(B, [8])]),
+    Case("infinite feature values", [_set(B, "savings_months", [0, 150], float("-inf"))],
+         says=["2 rows with NaN or infinite value in numeric feature 'savings_months'", *_ids(B, [0, 150])]),
+    Case("duplicate ids", [_set(B, ID, [10, 11, 12], B[ID].to_pylist()[0])],
+         says=["3 duplicate rows of id column 'applicant_id'", f"{B[ID].to_pylist()[0]} x4"]),
+    Case("duplicate ids across two files", [B, _with(B, sustain_score=B["sustain_score"])],
+         says=["200 duplicate rows"]),
+    Case("scores outside the declared range", [_set(B, "sustain_score", [20, 21], 1.5)],
+         says=["2 rows with score in 'sustain_score' outside the declared score_range [0, 1]", *_ids(B, [20, 21])]),
+    Case("label that is not binary", [_with(B, sustained_12m=pa.array([2] * 5 + [1] * 195, pa.int8()))],
+         says=["5 rows with label 'sustained_12m' value other than 0, 1 or null"]),
+    Case("empty input", [pa.table(B).slice(0, 0)], says=["the input has 0 rows"]),
+    Case("one row", [pa.table(B).slice(0, 1)], code=EXIT_CONFIG,
+         says=["graph.neighbours = 10 needs more rows than neighbours; the input has 1 rows"]),
+    Case("k >= rows", [pa.table(B).slice(0, 10)], code=EXIT_CONFIG,
+         says=["Set graph.neighbours to at most 9"]),
+    Case("all rows identical (but the id)",
+         [{k: (v if k == ID else pa.array([v[0].as_py()] * 200, v.type)) for k, v in B.items()}],
+         says=["the fair space has no dimensions left", "constant over all 200 rows"]),
+    Case("partitions with different schemas (a column missing in one)",
+         [B, {k: v for k, v in _base_other().items() if k != "references"}],
+         says=["200 rows with null value in numeric feature 'references'"]),
+    Case("partitions with different types for one column",
+         [B, _with(_base_other(), household_size=[str(v) for v in _base_other()["household_size"].to_pylist()])],
+         says=["'household_size' has type VARCHAR"]),
+    Case("truncated Parquet file", [B, "truncated"], code=EXIT_NOINPUT,
+         says=["1 of 2 input files are not readable Parquet", "part-1.parquet"]),
+    Case("file that is not Parquet", [B, "csv"], code=EXIT_NOINPUT,
+         says=["1 of 2 input files are not readable Parquet"]),
+    Case("input path missing", [], cfg=lambda t: t.replace('path = "in"', 'path = "nowhere"'), code=EXIT_NOINPUT,
+         says=["input.path", "nowhere does not exist"]),
+    Case("input folder without Parquet files", ["only-readme"], code=EXIT_NOINPUT, says=["holds no .parquet files"]),
+    Case("dangling symlink as input", [], cfg=lambda t: t.replace('path = "in"', 'path = "link.parquet"'),
+         setup=lambda tmp: os.symlink(tmp / "gone.parquet", tmp / "link.parquet"), code=EXIT_NOINPUT,
+         says=["does not exist"]),
+    Case("negative lam", [B], cfg=lambda t: t.replace("lam = 1.0", "lam = -2.0"), code=EXIT_CONFIG,
+         says=["solve.lam", "-2"]),
+    Case("non-numeric lam", [B], cfg=lambda t: t.replace("lam = 1.0", 'lam = "strong"'), code=EXIT_CONFIG,
+         says=["solve.lam"]),
+    Case("unknown config key", [B], cfg=lambda t: t.replace("neighbours = 10", "neighbors = 10"), code=EXIT_CONFIG,
+         says=["graph.neighbors", "neighbours"]),
+    Case("unknown section", [B], cfg=lambda t: t + "\n[solver]\nlam = 2\n", code=EXIT_CONFIG, says=["solver", "solve"]),
+    Case("config that is not TOML", [B], cfg=lambda t: t + "\nthis is = = not toml\n", code=EXIT_CONFIG,
+         says=["job.toml"]),
+    Case("protected attribute also a feature", [B],
+         cfg=lambda t: t.replace('"postcode_sector"]', '"postcode_sector", "origin_group"]'), code=EXIT_CONFIG,
+         says=["origin_group"]),
+    Case("score range upside down", [B], cfg=lambda t: t.replace("score_range = [0.0, 1.0]", "score_range = [1.0, 0.0]"),
+         code=EXIT_CONFIG, says=["input.score_range"]),
+    Case("output location not writable", [B], cfg=lambda t: t.replace('path = "out"', 'path = "blocker/out"'),
+         setup=lambda tmp: (tmp / "blocker").write_text("a file, not a folder"), code=EXIT_CANTCREAT,
+         says=["not writable"]),
+    Case("run directory locked by another run", [B], setup=lambda tmp: _hold_run_lock(tmp), code=EXIT_TEMPFAIL,
+         says=["in use by another bigsmooth process", "retry later"]),
+    Case("too many levels in a categorical column",
+         [_with(_small_table(1100, seed=5), employment=[f"e{i}" for i in range(1100)])],
+         says=["column 'employment' has 1100 distinct values (more than 1000)"]),
+    # ---- these must work ----
+    Case("an empty partition among full ones", [B, pa.table(_base_other()).slice(0, 0), _base_other()],
+         works=True),
+    Case("a constant feature", [_with(B, references=[1.0] * 200)], works=True),
+    Case("a protected attribute with one level", [_with(B, age_band=["30-49"] * 200)], works=True),
+    Case("column names with quotes, spaces and SQL keywords",
+         [_rename(_rename(_rename(B, "applicant_id", 'select'), "monthly_income", 'monthly "income"; DROP TABLE x'),
+                  "sustain_score", "score FROM src")],
+         cfg=lambda t: t.replace('id = "applicant_id"', 'id = "select"')
+         .replace('"monthly_income"', "'monthly \"income\"; DROP TABLE x'")
+         .replace('scores = ["sustain_score"]', 'scores = ["score FROM src"]'), works=True),
+]
+
+
+def _hold_run_lock(tmp):
+    """Create the run directory of this case (by a first run that stops at once) and hold its lock."""
+    from bigsmooth import config as config_mod
+    from bigsmooth.rundir import run_id
+    from bigsmooth.table import fingerprint
+
+    cfg = config_mod.load_config(str(tmp / "job.toml"))
+    rid = run_id(config_mod.config_hash(cfg), fingerprint(cfg["input"]["path"])["hash"])
+    d = tmp / "runs" / rid
+    d.mkdir(parents=True)
+    fd = os.open(d / ".lock", os.O_RDWR | os.O_CREAT)
+    fcntl.flock(fd, fcntl.LOCK_EX)
+    os.pwrite(fd, b"pid 4242 on testhost since earlier\n", 0)
+    return ("lock", fd)     # kept open (and locked) until the test ends
+
+
+def _write_files(tmp, files):
+    d = tmp / "in"
+    d.mkdir()
+    for i, f in enumerate(files):
+        path = d / f"part-{i}.parquet"
+        if f == "truncated":
+            pq.write_table(pa.table(_base_other()), path)
+            data = path.read_bytes()
+            path.write_bytes(data[: len(data) // 2])
+        elif f == "csv":
+            path.write_text("applicant_id,sustain_score\n1,0.5\n")
+        elif f == "only-readme":
+            (d / "README.txt").write_text("no data tonight\n")
+        else:
+            pq.write_table(f if isinstance(f, pa.Table) else pa.table(f), path)
+
+
+def _digest(folder):
+    h = hashlib.sha256()
+    for root, _, files in sorted(os.walk(folder)):
+        for f in sorted(files):
+            p = os.path.join(root, f)
+            h.update(p.encode())
+            if not os.path.islink(p):
+                h.update(open(p, "rb").read())
+    return h.hexdigest()
+
+
+@pytest.mark.parametrize("case", CASES, ids=repr)
+def test_bad_input_case(tmp_path, case):
+    _write_files(tmp_path, case.files)
+    (tmp_path / "job.toml").write_text(_cfg_text(case.cfg))
+    keep = case.setup(tmp_path) if case.setup else None
+    before = _digest(tmp_path / "in")
+    res = cli("run", str(tmp_path / "job.toml"))
+    if isinstance(keep, tuple) and keep[0] == "lock":
+        os.close(keep[1])
+    assert _digest(tmp_path / "in") == before, "the input was modified"
+    if case.works:
+        assert res.returncode == 0, res.stderr
+        rows = sum(pq.ParquetFile(tmp_path / "in" / f).metadata.num_rows for f in os.listdir(tmp_path / "in"))
+        out = read_output(tmp_path / "out")
+        assert out.num_rows == rows
+        idcol = "select" if "select" in out.column_names else ID
+        assert len(set(out.column(idcol).to_pylist())) == rows
+        return
+    assert res.returncode == case.code, (res.returncode, res.stderr[-3000:])
+    for phrase in case.says:
+        assert phrase in res.stderr, (phrase, res.stderr[-3000:])
+    assert "Traceback" not in res.stderr
+    _assert_nothing_published(tmp_path)
+
+
+def test_the_table_has_at_least_thirty_cases():
+    assert len(CASES) >= 30
