@@ -52,6 +52,22 @@ def build_parser():
                                                           "(default ./bigsmooth-demo)")
     d.add_argument("--seed", type=int, default=7, help="seed of the generated data (default 7)")
 
+    t = sub.add_parser("tune", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+                       help="solve a path of lam values and recommend one (accuracy vs consistency)",
+                       description="Run the stages of CONFIG up to the graph ordering (shared with `bigsmooth "
+                                   "run`), solve for each lam on the same graph (warm-starting each from the "
+                                   "last) and print AUC, its drop and the consistency of decisions on the "
+                                   "labelled rows; recommends the lam with the best consistency whose AUC drop "
+                                   "is within the budget. Saves tune/tune.json and tune/tradeoff.png in the run "
+                                   "directory; the run's audit report then shows the trade-off. To keep some "
+                                   "labelled rows out of the choice, use --holdout.")
+    t.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
+    t.add_argument("--lams", default=None, help="comma-separated lam values (default 0.1,0.3,1,3,10,30)")
+    t.add_argument("--max-auc-drop", type=float, default=None,
+                   help="AUC drop budget, relative (default gates.max_auc_drop, 0.01 = 1%%)")
+    t.add_argument("--holdout", type=float, default=0.0,
+                   help="share of labelled rows kept out of the choice and reported separately (default 0)")
+
     s = sub.add_parser("status", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                        help="show the stages, timings and solver record of a run directory",
                        description="Print each stage's state and timing and the solver's convergence "
@@ -114,6 +130,25 @@ def cmd_demo(args):
     return EXIT_OK
 
 
+def cmd_tune(args):
+    from .config import load_config
+    from .pipeline import run_job
+    from .tune import DEFAULT_LAMS, table_lines
+
+    try:
+        lams = [float(v) for v in args.lams.split(",")] if args.lams else list(DEFAULT_LAMS)
+    except ValueError:
+        raise BigsmoothError(f"--lams must be comma-separated numbers; got {args.lams!r}") from None
+    if not lams or any(v <= 0 for v in lams) or not 0 <= args.holdout < 1:
+        raise BigsmoothError("--lams must be positive numbers and --holdout in [0, 1)")
+    budget = args.max_auc_drop if args.max_auc_drop is not None else load_config(args.config)["gates"]["max_auc_drop"]
+    res = run_job(args.config, tune={"lams": lams, "budget": budget, "holdout": args.holdout})
+    for line in table_lines(res["tune"]):
+        print(line)
+    print(f"saved: {os.path.join(res['run_dir'], 'tune', 'tune.json')} and tradeoff.png")
+    return EXIT_OK
+
+
 def cmd_status(args):
     from .atomic import read_json
 
@@ -163,7 +198,7 @@ def main(argv=None):
         return EXIT_USAGE
     _setup_logging(args.quiet)
     try:
-        return {"run": cmd_run, "demo": cmd_demo, "status": cmd_status}[args.command](args)
+        return {"run": cmd_run, "demo": cmd_demo, "tune": cmd_tune, "status": cmd_status}[args.command](args)
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)
         return exc.exit_code if exc.exit_code != EXIT_SOFTWARE else EXIT_USAGE

@@ -83,6 +83,15 @@ RULES = {
         "select_rate": Rule("float", default=0.3, lo=1e-6, hi=1.0, doc="share of rows selected (highest scores) at the quantile cutoff used for decisions"),
         "min_group_rows": Rule("int", default=10, lo=1, hi=1_000_000, doc="groups smaller than this are suppressed in the audit"),
         "top_changes": Rule("int", default=10, lo=0, hi=10000, doc="list this many largest changes (ids) in the audit"),
+        "lipschitz": Rule("float", default=0.0, lo=0.0, hi=1e9, doc="Lipschitz constant L for the violation rates |f_i - f_j| > L d_ij (0 = the 90th percentile of |y_i - y_j| / d_ij over the raw scores' neighbour pairs)"),
+        "pair_sample": Rule("int", default=200000, lo=100, hi=100_000_000, doc="random pairs of rows sampled for the global Lipschitz rate"),
+        "controls": Rule("bool", default=True, doc="compute the two controls: shrinkage toward the mean with the same spread reduction, and smoothing on a random graph of the same degree"),
+    },
+    "gates": {
+        "max_auc_drop": Rule("float", default=0.01, lo=0.0, hi=1.0, doc="fail when the AUC on labelled rows drops by more than this share of its value (0.01 = 1% relative; common practice)"),
+        "min_consistency": Rule("float", default=0.0, lo=0.0, hi=1.0, doc="fail when the neighbour consistency of decisions after smoothing is below this (0 = no gate)"),
+        "max_decision_change_rate": Rule("float", default=1.0, lo=0.0, hi=1.0, doc="fail when more than this share of decisions changes (1 = no gate)"),
+        "on_fail": Rule("str", default="hold", choices=("hold", "publish"), doc="'hold': a failed gate publishes nothing and last night's output stays current; 'publish': publish anyway (the exit code still says the gate failed)", affects_result=False),
     },
     "run": {
         "dir": Rule("str", default="runs", doc="folder holding one run directory per (config, input) pair", affects_result=False),

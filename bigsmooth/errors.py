@@ -5,6 +5,7 @@ The codes follow the BSD ``sysexits.h`` conventions so that a scheduler can tell
 """
 
 EXIT_OK = 0
+EXIT_GATE = 3        # a quality gate of the audit failed (ours; outside the sysexits range)
 EXIT_USAGE = 64      # EX_USAGE: bad command line
 EXIT_DATA = 65       # EX_DATAERR: the input table is unusable
 EXIT_NOINPUT = 66    # EX_NOINPUT: input path missing or unreadable
@@ -15,6 +16,7 @@ EXIT_CONFIG = 78     # EX_CONFIG: the config file is wrong
 
 EXIT_CODES = {
     EXIT_OK: "success (or nothing to do: the run was already complete)",
+    EXIT_GATE: "an audit gate failed (output held back unless gates.on_fail = \"publish\")",
     EXIT_USAGE: "bad command line",
     EXIT_DATA: "bad input data (columns, types, nulls, duplicates, ranges)",
     EXIT_NOINPUT: "input path missing, unreadable or not Parquet",
@@ -50,6 +52,11 @@ class InputMissingError(BigsmoothError):
 class OutputError(BigsmoothError):
     exit_code = EXIT_CANTCREAT
     kind = "output error"
+
+
+class GateError(BigsmoothError):
+    exit_code = EXIT_GATE
+    kind = "gate failed"
 
 
 class LockHeldError(BigsmoothError):

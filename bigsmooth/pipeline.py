@@ -5,7 +5,7 @@ import shutil
 
 from . import config as config_mod
 from .atomic import read_json
-from .errors import DataError, OutputError
+from .errors import DataError, GateError, OutputError
 from .rundir import STAGES, RunDir, hold_lock, run_id
 from .stages import audit, embed, graph, order, publish, scan, solve
 from .table import changed_files, fingerprint
@@ -76,6 +76,20 @@ def _handle_input_change(cfg, chash, fp, rid):
             RunDir(path).save(m)
 
 
+def _check_gates(rd, cfg, before_publish):
+    """Raise GateError if an audit gate failed: before publishing when gates.on_fail = "hold" (nothing
+    is published; last night's output stays current), after it when "publish"."""
+    failed = [g for g in read_json(rd.file("audit", "audit.json")).get("gates", []) if not g["passed"]]
+    if not failed or (before_publish and cfg["gates"]["on_fail"] == "publish"):
+        return
+    lines = "\n  ".join(g["line"] for g in failed)
+    what = ("nothing was published; the output's current version is unchanged" if before_publish
+            else "the output was published anyway (gates.on_fail = \"publish\")")
+    raise GateError(f"{len(failed)} audit gate(s) failed:\n  {lines}\n{what}. The audit is in "
+                    f"{rd.file('audit', 'audit.json')} and {rd.file('audit', 'report.html')}; lower solve.lam "
+                    "(see `bigsmooth tune`) or change the [gates] thresholds.")
+
+
 def _stage_calls(rd, cfg, fp, rid):
     return {
         "scan": lambda: scan.run(rd, cfg, fp),
@@ -88,8 +102,11 @@ def _stage_calls(rd, cfg, fp, rid):
     }
 
 
-def run_job(config_path, fresh=False):
+def run_job(config_path, fresh=False, tune=None):
     """Run (or resume) the job described by a config file.
+
+    With ``tune`` (a dict of :func:`bigsmooth.tune.tune_run`'s lams, budget and holdout) the stages
+    run up to ``order`` and then the lam path is solved; the result has a ``tune`` entry.
 
     Returns
     -------
@@ -112,7 +129,7 @@ def run_job(config_path, fresh=False):
                     shutil.rmtree(p) if os.path.isdir(p) else os.unlink(p)
         if rd.exists():
             m = rd.load()
-            if rd.all_done():
+            if rd.all_done() and tune is None:
                 out = m["stages"]["publish"]["summary"]["path"]
                 log.info("run %s is already complete (same config and input); nothing to do. Output: %s", rid, out)
                 return {"run_dir": rd.path, "run_id": rid, "already_complete": True, "output": out}
@@ -126,6 +143,12 @@ def run_job(config_path, fresh=False):
         # a second job publishing to the same output waits for this one (exit 75 at once)
         with hold_lock(cfg["output"]["path"], f"output {cfg['output']['path']}"):
             for name in STAGES:
+                if tune is not None and name == "solve":
+                    from .tune import tune_run
+
+                    return {"run_dir": rd.path, "run_id": rid, "tune": tune_run(rd, cfg, **tune)}
+                if name == "publish":
+                    _check_gates(rd, cfg, before_publish=True)
                 if rd.is_done(name):
                     log.info("stage %s already done; skipping", name)
                     continue
@@ -139,4 +162,5 @@ def run_job(config_path, fresh=False):
                                           "stages and the last solver checkpoint are kept; free space or "
                                           "fix permissions and run again to resume.") from None
         out = rd.summary("publish")["path"]
+        _check_gates(rd, cfg, before_publish=False)
         return {"run_dir": rd.path, "run_id": rid, "already_complete": False, "output": out}

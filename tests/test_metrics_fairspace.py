@@ -107,3 +107,37 @@ def test_linear_probe_auc_detects_leak(rng):
     E = np.column_stack([t + rng.normal(scale=0.5, size=2000), rng.normal(size=2000)])
     assert fairspace.linear_probe_auc(E, t, np.random.default_rng(0), metrics.roc_auc) > 0.9
     assert abs(fairspace.linear_probe_auc(E[:, 1:], t, np.random.default_rng(0), metrics.roc_auc) - 0.5) < 0.06
+
+
+def test_balanced_accuracy_brier_log_loss_match_sklearn(rng):
+    # sklearn.metrics.balanced_accuracy_score, brier_score_loss, log_loss
+    from sklearn.metrics import balanced_accuracy_score, brier_score_loss, log_loss
+
+    y = rng.integers(0, 2, 400)
+    p = np.clip(rng.random(400) * 0.8 + 0.2 * y, 0, 1)
+    d = p > 0.5
+    assert np.isclose(metrics.balanced_accuracy(y, d), balanced_accuracy_score(y, d))
+    assert np.isclose(metrics.brier(y, p), brier_score_loss(y, p))
+    assert np.isclose(metrics.log_loss(y, p), log_loss(y, p))
+
+
+def test_consistency_matches_the_textbook_loop(rng):
+    # consistency = 1 - (1/n) sum_i |d_i - (1/k) sum_{j in kNN(i)} d_j|, written as a plain loop
+    # over sklearn's exact neighbours
+    from sklearn.neighbors import NearestNeighbors
+
+    X = rng.normal(size=(300, 3))
+    d = (X[:, 0] + 0.3 * rng.normal(size=300) > 0).astype(float)
+    nb = NearestNeighbors(n_neighbors=6).fit(X).kneighbors(X, return_distance=False)[:, 1:]
+    expect = 1 - sum(abs(d[i] - sum(d[j] for j in nb[i]) / 5) for i in range(300)) / 300
+    assert np.isclose(metrics.consistency(d, nb), expect)
+
+
+def test_lipschitz_and_same_group_share():
+    f = np.array([0.0, 0.5, 0.6, 1.0])
+    a, b = np.array([0, 1, 2]), np.array([1, 2, 3])
+    # |diffs| = 0.5, 0.1, 0.4 against 1.0 * [0.4, 0.2, 0.5]: only the first exceeds
+    assert metrics.lipschitz_violations(f, a, b, np.array([0.4, 0.2, 0.5]), 1.0) == 1 / 3
+    codes = np.array([0, 0, 1, 1])
+    same, mix = metrics.same_group_share(codes, np.array([[1], [0], [0], [2]]))
+    assert same == 0.75 and mix == 0.5

@@ -76,3 +76,48 @@ def gap_over_sd(codes, n_levels, scores, min_rows):
     if len(means) < 2 or sd == 0:
         return 0.0
     return float((max(means) - min(means)) / sd)
+
+
+def balanced_accuracy(labels, decisions):
+    """Mean of the true positive rate and the true negative rate."""
+    labels = np.asarray(labels).astype(bool)
+    d = np.asarray(decisions).astype(bool)
+    if labels.all() or not labels.any():
+        return float("nan")
+    return float((d[labels].mean() + (~d[~labels]).mean()) / 2.0)
+
+
+def brier(labels, scores):
+    """Mean squared difference between the score (as a probability) and the 0/1 outcome."""
+    return float(np.mean((np.asarray(scores, dtype=np.float64) - np.asarray(labels, dtype=np.float64)) ** 2))
+
+
+def log_loss(labels, scores, eps=1e-15):
+    """Mean negative log-likelihood of the 0/1 outcomes, scores clipped to [eps, 1 - eps]."""
+    p = np.clip(np.asarray(scores, dtype=np.float64), eps, 1 - eps)
+    y = np.asarray(labels, dtype=np.float64)
+    return float(-np.mean(y * np.log(p) + (1 - y) * np.log(1 - p)))
+
+
+def consistency(decisions, neighbours):
+    """1 - mean_i |d_i - mean of d over row i's k nearest neighbours| (the usual individual-fairness
+    consistency score); ``neighbours`` is (n, k) of row indices."""
+    d = np.asarray(decisions, dtype=np.float64)
+    return float(1.0 - np.mean(np.abs(d - d[neighbours].mean(axis=1))))
+
+
+def lipschitz_violations(f, a, b, dist, constant):
+    """Share of pairs (a[q], b[q]) with |f_a - f_b| > constant * dist[q]."""
+    f = np.asarray(f, dtype=np.float64)
+    return float(np.mean(np.abs(f[a] - f[b]) > constant * np.asarray(dist, dtype=np.float64))) if len(a) else 0.0
+
+
+def same_group_share(codes, neighbours, rows=None):
+    """Share of neighbour pairs whose two rows are in the same group, and the share expected under
+    random mixing (sum of squared group shares). ``neighbours[i]`` belongs to row ``rows[i]``
+    (default: row i)."""
+    codes = np.asarray(codes)
+    own = codes if rows is None else codes[rows]
+    same = float(np.mean(codes[neighbours] == own[:, None]))
+    share = np.bincount(codes[codes >= 0]) / max(1, int((codes >= 0).sum()))
+    return same, float(np.sum(share ** 2))

@@ -131,6 +131,7 @@ def run(rundir, cfg, fp, run_id):
         if written != fp["rows"]:
             raise RuntimeError(f"wrote {written} rows; the input has {fp['rows']}")
         shutil.copyfile(rundir.file("audit", "audit.json"), os.path.join(staging, "_audit.json"))
+        shutil.copyfile(rundir.file("audit", "report.html"), os.path.join(staging, "_report.html"))
         for dirpath, _, files in os.walk(staging):
             for f in files:
                 with open(os.path.join(dirpath, f), "rb") as fh:

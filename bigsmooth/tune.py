@@ -1,0 +1,130 @@
+"""Choosing the smoothing strength: solve a path of lam values on the run's graph and weigh accuracy
+against consistency on the labelled rows.
+
+``bigsmooth tune CONFIG`` runs the job's stages up to ``order`` (the same run directory as
+``bigsmooth run``, so nothing is computed twice), then for each lam (ascending) scales the split
+graph and solves, warm-starting from the previous lam's solution. For each it computes, on the
+labelled rows used for tuning: AUC, its relative drop against the raw scores, and the consistency of
+the decisions at the quantile cutoff among fair-space neighbours. It recommends the lam with the
+best consistency whose AUC drop is within the budget (default gates.max_auc_drop, 1% relative:
+common practice). With ``--holdout F`` a share F of the labelled rows (chosen by a seeded draw) is
+kept out of the choice and the recommended lam is reported on them as well.
+
+Writes ``<run dir>/tune/tune.json`` and ``tune/tradeoff.png``; a later audit of the run shows the
+trade-off in its report.
+"""
+import logging
+import os
+
+import numpy as np
+
+from . import atomic
+from .errors import ConfigError
+from .kernels import laplacian, metrics, sweepcg
+
+log = logging.getLogger("bigsmooth.tune")
+
+DEFAULT_LAMS = (0.1, 0.3, 1.0, 3.0, 10.0, 30.0)
+
+
+def recommend(path, budget):
+    """The lam with the highest consistency among those whose AUC drop is within ``budget``."""
+    ok = [r for r in path if r["auc_drop"] <= budget]
+    return max(ok, key=lambda r: (r["consistency"], -r["lam"]))["lam"] if ok else None
+
+
+def tune_run(rd, cfg, lams, budget, holdout):
+    from .stages.order import load_split
+
+    inp, s = cfg["input"], cfg["solve"]
+    if not inp["label"]:
+        raise ConfigError("tuning needs labelled rows: set input.label to a 0/1 outcome column (null where unknown)")
+    Y = np.load(rd.file("embed", "scores.npy"))
+    labels = np.load(rd.file("embed", "label.npy"))
+    nb = np.load(rd.file("graph", "neighbours.npy"), mmap_mode="r")
+    perm = np.load(rd.file("order", "order.npy"))
+    split = load_split(rd)
+    n = len(Y)
+    deg = np.empty(n)
+    deg[perm] = split.degree
+    c = laplacian.row_weights_from_degrees(deg, s["laplacian"])
+    b = (c[:, None] * Y)[perm]
+    known = np.flatnonzero(np.isfinite(labels))
+    if len(known) < 20:
+        raise ConfigError(f"tuning needs labelled rows; only {len(known)} rows have a label")
+    rng = np.random.default_rng(cfg["run"]["seed"] + 5)
+    held = np.zeros(n, dtype=bool)
+    if holdout > 0:
+        held[rng.choice(known, size=int(round(holdout * len(known))), replace=False)] = True
+    use = known[~held[known]]
+    rate = cfg["audit"]["select_rate"]
+    nb_use = np.asarray(nb[use])
+
+    def figures(F, rows, nbr):
+        f = F[:, 0]
+        sel = (f >= metrics.quantile_cutoff(f, rate)).astype(np.float64)
+        return (metrics.roc_auc(labels[rows], f[rows]),
+                float(1.0 - np.mean(np.abs(sel[rows] - sel[nbr].mean(axis=1)))))
+
+    auc0, cons0 = figures(Y, use, nb_use)
+    path = []
+    x0 = Y[perm]
+    for lam in sorted(lams):
+        system = sweepcg.scale_split(split, lam, c[perm])
+        res = sweepcg.sweep_cg(system, b, x0=x0, tol=s["tol"], max_sweeps=s["max_sweeps"])
+        x0 = res.x
+        F = np.empty_like(res.x)
+        F[perm] = res.x
+        auc, cons = figures(F, use, nb_use)
+        row = {"lam": lam, "sweeps": res.sweeps, "status": res.status, "auc": auc,
+               "auc_drop": (auc0 - auc) / auc0 if auc0 > 0 else 0.0, "consistency": cons}
+        if holdout > 0:
+            hrows = np.flatnonzero(held)
+            row["holdout_auc"], row["holdout_consistency"] = figures(F, hrows, np.asarray(nb[hrows]))
+        path.append(row)
+        log.info("lam %g: %d sweeps, AUC %.4f (drop %.2f%%), consistency %.4f", lam, res.sweeps, auc,
+                 100 * row["auc_drop"], cons)
+    rec = recommend(path, budget)
+    out = {"raw": {"auc": auc0, "consistency": cons0}, "path": path, "recommended": rec, "auc_drop_budget": budget,
+           "tuning_rows": int(len(use)), "holdout_rows": int(held.sum()), "select_rate": rate}
+    d = rd.stage_dir("tune")
+    atomic.write_json(os.path.join(d, "tune.json"), out)
+    _plot(out, os.path.join(d, "tradeoff.png"))
+    return out
+
+
+def _plot(out, path):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(6, 3.4))
+    xs = [100 * r["auc_drop"] for r in out["path"]]
+    ys = [r["consistency"] for r in out["path"]]
+    ax.plot(xs, ys, "o-")
+    for r, x, y in zip(out["path"], xs, ys):
+        ax.annotate(f"{r['lam']:g}", (x, y), fontsize=7, xytext=(3, 3), textcoords="offset points")
+    ax.axvline(100 * out["auc_drop_budget"], color="grey", ls="--", lw=1)
+    ax.set_xlabel("AUC drop on labelled rows (% of raw)")
+    ax.set_ylabel("consistency at the cutoff")
+    with atomic.atomic_path(path) as tmp:
+        fig.savefig(tmp, format="png", dpi=90, bbox_inches="tight")
+    plt.close(fig)
+
+
+def table_lines(out):
+    lines = [f"tuning on {out['tuning_rows']} labelled rows (held out: {out['holdout_rows']}); raw AUC "
+             f"{out['raw']['auc']:.4f}, consistency {out['raw']['consistency']:.4f}",
+             f"{'lam':>8} {'sweeps':>6} {'AUC':>7} {'drop':>7} {'consistency':>11}"
+             + (f" {'holdout AUC':>11} {'holdout cons.':>13}" if out["holdout_rows"] else "")]
+    for r in out["path"]:
+        line = f"{r['lam']:>8g} {r['sweeps']:>6} {r['auc']:>7.4f} {100 * r['auc_drop']:>6.2f}% {r['consistency']:>11.4f}"
+        if out["holdout_rows"]:
+            line += f" {r['holdout_auc']:>11.4f} {r['holdout_consistency']:>13.4f}"
+        lines.append(line)
+    rec = out["recommended"]
+    lines.append(f"recommended lam: {rec:g} (best consistency with AUC drop <= {100 * out['auc_drop_budget']:.1f}%)"
+                 if rec is not None else
+                 f"no lam keeps the AUC drop within {100 * out['auc_drop_budget']:.1f}%; smoothing is not advised")
+    return lines
