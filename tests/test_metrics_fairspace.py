@@ -141,3 +141,23 @@ def test_lipschitz_and_same_group_share():
     codes = np.array([0, 0, 1, 1])
     same, mix = metrics.same_group_share(codes, np.array([[1], [0], [0], [2]]))
     assert same == 0.75 and mix == 0.5
+
+
+def test_random_graph_control_matches_an_explicit_solve(rng):
+    # the matrix-free random graph against its own scipy CSR: symmetric, regular, and the control's
+    # CG solution equals scipy.sparse.linalg.spsolve on (I + lam L) f = y, L from csgraph.laplacian
+    from scipy.sparse.csgraph import laplacian as cs_laplacian
+    from scipy.sparse.linalg import spsolve
+
+    from bigsmooth.stages.audit import RandomRegularGraph, random_graph_control
+
+    R = RandomRegularGraph(300, 3, 0.5, np.random.default_rng(1))
+    M = R.matrix()
+    x = rng.random(300)
+    assert np.allclose(R.adjacency_times(x), M @ x) and abs(M - M.T).max() == 0
+    assert np.allclose(np.asarray(M.sum(axis=1)).ravel(), R.degree)
+    W = sp.csr_matrix(M)       # a "real" graph with the same shape: 6 entries of 0.5 per row
+    y = rng.random(300)
+    got = random_graph_control(W, y, 2.0, "unnormalised", 1e-12, np.random.default_rng(1))
+    expect = spsolve((sp.identity(300) + 2.0 * cs_laplacian(M)).tocsc(), y)
+    assert np.allclose(got, expect, atol=1e-9)
