@@ -41,6 +41,7 @@ RULES = {
         "categorical_features": Rule("list[str]", default=[], doc="categorical feature columns (one-hot encoded)"),
         "protected": Rule("list[str]", doc="protected-attribute columns; used only to define what the fair space ignores"),
         "label": Rule("str", default="", doc="optional column of known outcomes (0/1, null where unknown); used by the audit only"),
+        "compare_scores": Rule("list[str]", default=[], doc="other score columns (e.g. a retrained model's) audited side by side with the raw and adjusted first score; not smoothed, not published"),
     },
     "embed": {
         "remove_sensitive": Rule("bool", default=True, doc="project out the feature directions that predict each protected attribute"),
@@ -204,7 +205,7 @@ def _cross_checks(cfg):
                           "at least one feature column is needed to decide who is similar")
     roles = [("id", [inp["id"]]), ("scores", inp["scores"]), ("numeric_features", inp["numeric_features"]),
              ("categorical_features", inp["categorical_features"]), ("protected", inp["protected"]),
-             ("label", [inp["label"]] if inp["label"] else [])]
+             ("label", [inp["label"]] if inp["label"] else []), ("compare_scores", inp["compare_scores"])]
     seen = {}
     for role, cols in roles:
         for c in cols:

@@ -119,3 +119,19 @@ def test_report_renders_in_headless_chromium(tmp_path):
                     f"--user-data-dir={tmp_path / 'chromium'}", "--window-size=1200,3000",
                     f"--screenshot={shot}", page.as_uri()], capture_output=True, timeout=120)
     assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and shot.stat().st_size > 50_000
+
+
+def test_a_second_score_column_is_audited_side_by_side(tmp_path):
+    cols = _small_table(700, seed=9)
+    rng = np.random.default_rng(1)
+    cols["retrained_score"] = pa.array(np.clip(cols["sustain_score"].to_numpy() + rng.normal(0, 0.05, 700), 0, 1))
+    cfg = _write_case(tmp_path, cols, "\n[gates]\nmax_auc_drop = 1.0\n")
+    cfg.write_text(cfg.read_text().replace('label = "sustained_12m"',
+                                           'label = "sustained_12m"\ncompare_scores = ["retrained_score"]'))
+    res = cli("run", str(cfg))
+    assert res.returncode == 0, res.stderr[-2000:]
+    a = json.loads((tmp_path / "out" / "current" / "_audit.json").read_text())
+    c = a["compare"]["retrained_score"]
+    assert {"consistency", "auc", "gap_over_sd", "decisions_differing_from_adjusted"} <= set(c)
+    assert "compared: retrained_score" in (tmp_path / "out" / "current" / "_report.html").read_text()
+    assert "retrained_score_adjusted" not in read_output(tmp_path / "out").column_names

@@ -60,7 +60,11 @@ def source(tmp_path_factory):
     assert res.returncode == 0, res.stderr
     solve = json.loads(next((base / "runs").iterdir()).joinpath("solve", "solve.json").read_text())
     assert solve["sweeps"] >= 7          # enough sweeps for the mid-solve kill points below
-    return base, _published(base)
+    ref = _published(base)
+    ids = np.concatenate([pq.read_table(base / "in" / f"part-{i}.parquet").column("applicant_id").to_numpy()
+                          for i in range(FILES)])
+    assert np.array_equal(np.sort(ids), ref["applicant_id"])     # every input row once, no other
+    return base, ref
 
 
 def _copy_input(source, tmp_path):

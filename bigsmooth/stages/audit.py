@@ -197,6 +197,15 @@ def run(rundir, cfg, fp):
     # decisions use the first score column
     sel_before = y >= metrics.quantile_cutoff(y, rate)
     sel_after = f >= metrics.quantile_cutoff(f, rate)
+    compare = {}
+    if inp["compare_scores"]:
+        other = np.load(rundir.file("embed", "compare.npy"))
+        for j, c in enumerate(inp["compare_scores"]):
+            fig, sel = figures(other[:, j], W, nb, dist, pairs, labels, rate, constant, lo, hi)
+            fig["gap_over_sd"] = {col: metrics.gap_over_sd(codes[:, k], len(scan["levels"][col]), other[:, j], min_rows)
+                                  for k, col in enumerate(inp["protected"])}
+            fig["decisions_differing_from_adjusted"] = float(np.mean(sel != sel_after))
+            compare[c] = fig
     controls = {}
     if a["controls"]:
         sd_y = float(y.std())
@@ -251,6 +260,7 @@ def run(rundir, cfg, fp):
         "lipschitz_constant_source": "audit.lipschitz" if a["lipschitz"] else "90th percentile of raw |y_i - y_j| / d_ij",
         "scores": per_score,
         "controls": controls,
+        "compare": compare,
         "groups": groups,
         "decisions": {"changed": int(changed.sum()), "changed_rate": float(changed.mean()),
                       "newly_selected": int((sel_after & ~sel_before).sum()),

@@ -92,9 +92,10 @@ def render(report, plots, tune=None):
     parts += [f"<li class='warn'>Warning: {e(w)}</li>" for w in report.get("warnings", [])]
     parts.append("</ul></section>")
     ctrl = report.get("controls", {})
-    header = ["figure", "before", "after"] + [f"control: {k}" for k in ctrl]
+    other = report.get("compare", {})
+    header = ["figure", "before", "after"] + [f"control: {k}" for k in ctrl] + [f"compared: {k}" for k in other]
     rows = [[k, b.get(k, float("nan")), a.get(k, float("nan"))] + [c.get(k, float("nan")) for c in ctrl.values()]
-            for k in FIGURE_ROWS if k in b]
+            + [c.get(k, float("nan")) for c in other.values()] for k in FIGURE_ROWS if k in b]
     parts += ["<section id='figures'><h2>Before, after and the controls</h2>",
               "<p>The controls show what the figures would say without the neighbour graph: shrinking every score "
               "toward the mean by the same spread reduction (decisions at a quantile cutoff do not move), and "

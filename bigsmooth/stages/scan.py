@@ -33,6 +33,7 @@ def check_schema(columns, inp):
     """Compare configured columns with the table's {name: duckdb type}; raise on any mismatch."""
     problems = []
     wanted = [("id", inp["id"])] + [("scores", c) for c in inp["scores"]] + \
+        [("compare_scores", c) for c in inp["compare_scores"]] + \
         [("numeric_features", c) for c in inp["numeric_features"]] + \
         [("categorical_features", c) for c in inp["categorical_features"]] + \
         [("protected", c) for c in inp["protected"]] + ([("label", inp["label"])] if inp["label"] else [])
@@ -43,7 +44,7 @@ def check_schema(columns, inp):
             problems.append(f"input.{role}: column {col!r} is not in the table{hint}")
             continue
         t = columns[col]
-        if role in ("scores", "numeric_features", "label") and not _is_numeric(t):
+        if role in ("scores", "compare_scores", "numeric_features", "label") and not _is_numeric(t):
             problems.append(f"input.{role}: column {col!r} has type {t}; a numeric type is needed")
         if role == "id" and not (t in NUMERIC_TYPES[:9] or t == "VARCHAR"):
             problems.append(f"input.id: column {col!r} has type {t}; an integer or string type is needed")
@@ -73,7 +74,7 @@ def run(rundir, cfg, fp):
     idq = quote(inp["id"])
     lo, hi = inp["score_range"]
     checks = [(f"{idq} IS NULL", "null id", False)]
-    for c in inp["scores"]:
+    for c in inp["scores"] + inp["compare_scores"]:
         q = quote(c)
         checks.append((f"{q} IS NULL", f"null score in {c!r}", True))
         if _is_float(cols[c]):
