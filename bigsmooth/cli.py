@@ -101,6 +101,7 @@ def _print_result(res):
             print(line)
     print(f"output:    {out}")
     print(f"audit:     {os.path.join(out, '_audit.json')}")
+    print(f"report:    {os.path.join(out, '_report.html')}")
     print(f"run dir:   {res['run_dir']}")
 
 

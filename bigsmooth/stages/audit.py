@@ -160,8 +160,8 @@ def check_gates(report, gates):
     if "auc" in b and np.isfinite(b["auc"]):
         drop = (b["auc"] - a["auc"]) / b["auc"] if b["auc"] > 0 else 0.0
         out.append(("max_auc_drop", drop <= gates["max_auc_drop"],
-                    f"AUC {b['auc']:.4f} -> {a['auc']:.4f}: relative drop {drop:.2%} "
-                    f"(limit {gates['max_auc_drop']:.2%})"))
+                    f"AUC {b['auc']:.4f} -> {a['auc']:.4f}: relative change {-drop:+.2%} "
+                    f"(largest drop allowed {gates['max_auc_drop']:.2%})"))
     out.append(("min_consistency", a["consistency"] >= gates["min_consistency"],
                 f"consistency after {a['consistency']:.4f} (minimum {gates['min_consistency']:.4f})"))
     rate = report["decisions"]["changed_rate"]
