@@ -41,6 +41,7 @@ RULES = {
         "categorical_features": Rule("list[str]", default=[], doc="categorical feature columns (one-hot encoded)"),
         "protected": Rule("list[str]", doc="protected-attribute columns; used only to define what the fair space ignores"),
         "label": Rule("str", default="", doc="optional column of known outcomes (0/1, null where unknown); used by the audit only"),
+        "counterfactual_score": Rule("str", default="", doc="optional column: the model's first score for the same row with its protected attributes changed; the audit reports how often both give the same decision"),
         "compare_scores": Rule("list[str]", default=[], doc="other score columns (e.g. a retrained model's) audited side by side with the raw and adjusted first score; not smoothed, not published"),
     },
     "embed": {
@@ -205,7 +206,8 @@ def _cross_checks(cfg):
                           "at least one feature column is needed to decide who is similar")
     roles = [("id", [inp["id"]]), ("scores", inp["scores"]), ("numeric_features", inp["numeric_features"]),
              ("categorical_features", inp["categorical_features"]), ("protected", inp["protected"]),
-             ("label", [inp["label"]] if inp["label"] else []), ("compare_scores", inp["compare_scores"])]
+             ("label", [inp["label"]] if inp["label"] else []), ("compare_scores", inp["compare_scores"]),
+             ("counterfactual_score", [inp["counterfactual_score"]] if inp["counterfactual_score"] else [])]
     seen = {}
     for role, cols in roles:
         for c in cols:

@@ -161,3 +161,20 @@ def test_random_graph_control_matches_an_explicit_solve(rng):
     got = random_graph_control(W, y, 2.0, "unnormalised", 1e-12, np.random.default_rng(1))
     expect = spsolve((sp.identity(300) + 2.0 * cs_laplacian(M)).tocsc(), y)
     assert np.allclose(got, expect, atol=1e-9)
+
+
+def test_counterfactual_update_reproduces_the_solution(rng):
+    # with y_cf = y the counterfactual update must give back the exact solution f = spsolve(A, C y)
+    # (scipy.sparse.linalg.spsolve), for both Laplacians: it is the solved system's own row equation
+    from scipy.sparse.linalg import spsolve
+
+    from bigsmooth.kernels import laplacian
+    from bigsmooth.stages.audit import counterfactual_figures
+
+    W = laplacian.as_weight_matrix(random_graph(200, 0.05, rng))
+    y = rng.random(200)
+    for kind in ("unnormalised", "random_walk"):
+        A, c = laplacian.system(W, 3.0, kind)
+        f = spsolve(A.tocsc(), c * y)
+        got = counterfactual_figures(W, y, f, y.copy(), {"laplacian": kind, "lam": 3.0}, 0.3)
+        assert got["same_decision_after"] == 1.0 and got["mean_abs_gap_after"] < 1e-12

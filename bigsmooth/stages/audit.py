@@ -152,6 +152,25 @@ def random_graph_control(W, y, lam, kind, tol, rng):
     return x
 
 
+def counterfactual_figures(W, y, f, ycf, s, rate):
+    """Share of rows whose decision at the quantile cutoff is the same for the score and its
+    counterfactual. After smoothing, the counterfactual row is placed at the row's own point of the
+    fair space (the fair space ignores the protected attributes), so its adjusted score is one exact
+    coordinate update against the solved neighbours: f_cf = (c y_cf + lam (W f)) / (c + lam d), the
+    same update that reproduces f from y at convergence."""
+    from ..kernels import laplacian
+
+    d = laplacian.degrees(W)
+    c = laplacian.row_weights_from_degrees(d, s["laplacian"])
+    wf = W @ f
+    f_cf = (c * ycf + s["lam"] * wf) / (c + s["lam"] * d)
+    cut_b, cut_a = metrics.quantile_cutoff(y, rate), metrics.quantile_cutoff(f, rate)
+    return {"same_decision_before": float(np.mean((y >= cut_b) == (ycf >= cut_b))),
+            "same_decision_after": float(np.mean((f >= cut_a) == (f_cf >= cut_a))),
+            "mean_abs_gap_before": float(np.mean(np.abs(y - ycf))),
+            "mean_abs_gap_after": float(np.mean(np.abs(f - f_cf)))}
+
+
 def check_gates(report, gates):
     """[(gate, passed, line)] for the decision score."""
     s = report["scores"][report["decision_score"]]
@@ -198,8 +217,11 @@ def run(rundir, cfg, fp):
     sel_before = y >= metrics.quantile_cutoff(y, rate)
     sel_after = f >= metrics.quantile_cutoff(f, rate)
     compare = {}
+    other = np.load(rundir.file("embed", "compare.npy"))
+    counterfactual = None
+    if inp["counterfactual_score"]:
+        counterfactual = counterfactual_figures(W, y, f, other[:, -1], cfg["solve"], rate)
     if inp["compare_scores"]:
-        other = np.load(rundir.file("embed", "compare.npy"))
         for j, c in enumerate(inp["compare_scores"]):
             fig, sel = figures(other[:, j], W, nb, dist, pairs, labels, rate, constant, lo, hi)
             fig["gap_over_sd"] = {col: metrics.gap_over_sd(codes[:, k], len(scan["levels"][col]), other[:, j], min_rows)
@@ -261,6 +283,7 @@ def run(rundir, cfg, fp):
         "scores": per_score,
         "controls": controls,
         "compare": compare,
+        "counterfactual": counterfactual,
         "groups": groups,
         "decisions": {"changed": int(changed.sum()), "changed_rate": float(changed.mean()),
                       "newly_selected": int((sel_after & ~sel_before).sum()),

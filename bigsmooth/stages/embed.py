@@ -52,8 +52,13 @@ def _features(batch, inp, levels):
     return np.hstack(parts)
 
 
+def other_columns(inp):
+    """Score columns read for the audit only: compare_scores, then the counterfactual score (last)."""
+    return inp["compare_scores"] + ([inp["counterfactual_score"]] if inp["counterfactual_score"] else [])
+
+
 def _select_sql(inp):
-    cols = [quote(c) for c in inp["scores"] + inp["compare_scores"] + inp["numeric_features"]]
+    cols = [quote(c) for c in inp["scores"] + other_columns(inp) + inp["numeric_features"]]
     cols += [f"CAST({quote(c)} AS VARCHAR) AS {quote(c)}" for c in inp["categorical_features"] + inp["protected"]]
     if inp["label"]:
         cols.append(f"CAST({quote(inp['label'])} AS DOUBLE) AS {quote(inp['label'])}")
@@ -100,7 +105,7 @@ def run(rundir, cfg, fp):
     Y = out.open(os.path.join(d, "scores.npy"), (n, len(inp["scores"])), np.float64)
     label = out.open(os.path.join(d, "label.npy"), (n,), np.float64, fill=np.nan) if inp["label"] else None
     codes = out.open(os.path.join(d, "protected.npy"), (n, len(inp["protected"])), np.int32)
-    other = out.open(os.path.join(d, "compare.npy"), (n, len(inp["compare_scores"])), np.float64)
+    other = out.open(os.path.join(d, "compare.npy"), (n, len(other_columns(inp))), np.float64)
 
     con = connect_budget(cfg["run"]["memory_mb"])
     src = Source(con, fp)
@@ -128,7 +133,7 @@ def run(rundir, cfg, fp):
             mom.update(X[u], S[u])
         for j, c in enumerate(inp["scores"]):
             Y[rows, j] = batch.column(c).to_numpy(zero_copy_only=False).astype(np.float64)
-        for j, c in enumerate(inp["compare_scores"]):
+        for j, c in enumerate(other_columns(inp)):
             other[rows, j] = batch.column(c).to_numpy(zero_copy_only=False).astype(np.float64)
         if label is not None:
             label[rows] = batch.column(inp["label"]).to_numpy(zero_copy_only=False)

@@ -87,6 +87,10 @@ def render(report, plots, tune=None):
              f"<li>Consistency of decisions among neighbours {b['consistency']:.4f} &rarr; {a['consistency']:.4f}.</li>"]
     if "auc" in b:
         parts.append(f"<li>AUC on {b['labelled_rows']:,} labelled rows {b['auc']:.4f} &rarr; {a['auc']:.4f}.</li>")
+    cf = report.get("counterfactual")
+    if cf:
+        parts.append(f"<li>Counterfactual consistency (same decision for the row and its counterfactual score) "
+                     f"{cf['same_decision_before']:.4f} &rarr; {cf['same_decision_after']:.4f}.</li>")
     parts.append(f"<li>Gates: {'all passed' if not failed else 'FAILED: ' + ', '.join(g['gate'] for g in failed)}.</li>")
     parts += [f"<li>{e(g['line'])}: {'passed' if g['passed'] else '<b>failed</b>'}</li>" for g in gates]
     parts += [f"<li class='warn'>Warning: {e(w)}</li>" for w in report.get("warnings", [])]

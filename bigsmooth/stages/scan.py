@@ -33,7 +33,7 @@ def check_schema(columns, inp):
     """Compare configured columns with the table's {name: duckdb type}; raise on any mismatch."""
     problems = []
     wanted = [("id", inp["id"])] + [("scores", c) for c in inp["scores"]] + \
-        [("compare_scores", c) for c in inp["compare_scores"]] + \
+        [("compare_scores", c) for c in inp["compare_scores"] + ([inp["counterfactual_score"]] if inp["counterfactual_score"] else [])] + \
         [("numeric_features", c) for c in inp["numeric_features"]] + \
         [("categorical_features", c) for c in inp["categorical_features"]] + \
         [("protected", c) for c in inp["protected"]] + ([("label", inp["label"])] if inp["label"] else [])
@@ -74,7 +74,7 @@ def run(rundir, cfg, fp):
     idq = quote(inp["id"])
     lo, hi = inp["score_range"]
     checks = [(f"{idq} IS NULL", "null id", False)]
-    for c in inp["scores"] + inp["compare_scores"]:
+    for c in inp["scores"] + inp["compare_scores"] + ([inp["counterfactual_score"]] if inp["counterfactual_score"] else []):
         q = quote(c)
         checks.append((f"{q} IS NULL", f"null score in {c!r}", True))
         if _is_float(cols[c]):
