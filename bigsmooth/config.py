@@ -42,6 +42,7 @@ RULES = {
         "protected": Rule("list[str]", doc="protected-attribute columns; used only to define what the fair space ignores"),
         "label": Rule("str", default="", doc="optional column of known outcomes (0/1, null where unknown); used by the audit only"),
         "counterfactual_score": Rule("str", default="", doc="optional column: the model's first score for the same row with its protected attributes changed; the audit reports how often both give the same decision"),
+        "pairs": Rule("str", default="", doc="optional Parquet file of comparable pairs, columns id_a and id_b (ids of this table): the audit reports how often both rows of a pair get the same decision"),
         "compare_scores": Rule("list[str]", default=[], doc="other score columns (e.g. a retrained model's) audited side by side with the raw and adjusted first score; not smoothed, not published"),
     },
     "embed": {
@@ -103,7 +104,7 @@ RULES = {
     },
 }
 
-PATH_KEYS = {("input", "path"), ("output", "path"), ("run", "dir")}
+PATH_KEYS = {("input", "path"), ("output", "path"), ("run", "dir"), ("input", "pairs")}
 
 
 def _suggest(word, candidates):
@@ -188,7 +189,9 @@ def validate(raw, base_dir="."):
                 raise ConfigError(f"{section}.{key} is required ({rule.doc})")
             else:
                 value = json.loads(json.dumps(rule.default))
-            if (section, key) in PATH_KEYS and not any(c in value for c in "*?[") and not os.path.isabs(value):
+            if (section, key) in PATH_KEYS and not value:
+                pass                    # an optional path left empty
+            elif (section, key) in PATH_KEYS and not any(c in value for c in "*?[") and not os.path.isabs(value):
                 value = os.path.normpath(os.path.join(base_dir, value))
             elif (section, key) in PATH_KEYS and not os.path.isabs(value):
                 value = os.path.join(os.path.abspath(base_dir), value)

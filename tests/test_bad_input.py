@@ -150,6 +150,10 @@ CASES = [
     Case("too many levels in a categorical column",
          [_with(_small_table(1100, seed=5), employment=[f"e{i}" for i in range(1100)])],
          says=["column 'employment' has 1100 distinct values (more than 1000)"]),
+    Case("pairs file without its id_b column", [B], cfg=lambda t: t.replace('label = "sustained_12m"',
+         'label = "sustained_12m"\npairs = "pairs.parquet"'),
+         setup=lambda tmp: pq.write_table(pa.table({"id_a": [1], "other": [2]}), tmp / "pairs.parquet"),
+         says=["lacks column(s) id_b"]),
     # ---- these must work ----
     Case("an empty partition among full ones", [B, pa.table(_base_other()).slice(0, 0), _base_other()],
          works=True),

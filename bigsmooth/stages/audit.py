@@ -171,6 +171,29 @@ def counterfactual_figures(W, y, f, ycf, s, rate):
             "mean_abs_gap_after": float(np.mean(np.abs(f - f_cf)))}
 
 
+def pair_figures(rundir, cfg, y, f, rate):
+    """Same decision at the quantile cutoff for both rows of each comparable pair (input.pairs)."""
+    from ..table import ROW, Source, connect_budget, quote
+
+    con = connect_budget(cfg["run"]["memory_mb"])
+    src = Source(con, rundir.load()["input"])
+    idq = quote(cfg["input"]["id"])
+    t = src.fetch_arrow(con, f"SELECT src.{ROW} AS ra, b.{ROW} AS rb FROM read_parquet($pairs) p "
+                             f"JOIN {{src}} ON p.id_a = src.{idq} JOIN (SELECT {ROW}, {idq} FROM {{src}}) b "
+                             f"ON p.id_b = b.{idq}", pairs=cfg["input"]["pairs"])
+    total = con.execute("SELECT count(*) FROM read_parquet($pairs)", {"pairs": cfg["input"]["pairs"]}).fetchall()[0][0]
+    ra, rb = t.column(0).to_numpy(), t.column(1).to_numpy()
+    if len(ra) < total:
+        log.warning("input.pairs: %d of %d pairs name ids that are not in tonight's table; skipped",
+                    total - len(ra), total)
+    sb, sa = y >= metrics.quantile_cutoff(y, rate), f >= metrics.quantile_cutoff(f, rate)
+    return {"pairs": int(total), "pairs_found": int(len(ra)),
+            "same_decision_before": float(np.mean(sb[ra] == sb[rb])) if len(ra) else float("nan"),
+            "same_decision_after": float(np.mean(sa[ra] == sa[rb])) if len(ra) else float("nan"),
+            "mean_abs_gap_before": float(np.mean(np.abs(y[ra] - y[rb]))) if len(ra) else float("nan"),
+            "mean_abs_gap_after": float(np.mean(np.abs(f[ra] - f[rb]))) if len(ra) else float("nan")}
+
+
 def check_gates(report, gates):
     """[(gate, passed, line)] for the decision score."""
     s = report["scores"][report["decision_score"]]
@@ -221,6 +244,7 @@ def run(rundir, cfg, fp):
     counterfactual = None
     if inp["counterfactual_score"]:
         counterfactual = counterfactual_figures(W, y, f, other[:, -1], cfg["solve"], rate)
+    pairs_fig = pair_figures(rundir, cfg, y, f, rate) if inp["pairs"] else None
     if inp["compare_scores"]:
         for j, c in enumerate(inp["compare_scores"]):
             fig, sel = figures(other[:, j], W, nb, dist, pairs, labels, rate, constant, lo, hi)
@@ -284,6 +308,7 @@ def run(rundir, cfg, fp):
         "controls": controls,
         "compare": compare,
         "counterfactual": counterfactual,
+        "pairs": pairs_fig,
         "groups": groups,
         "decisions": {"changed": int(changed.sum()), "changed_rate": float(changed.mean()),
                       "newly_selected": int((sel_after & ~sel_before).sum()),

@@ -91,6 +91,10 @@ def render(report, plots, tune=None):
     if cf:
         parts.append(f"<li>Counterfactual consistency (same decision for the row and its counterfactual score) "
                      f"{cf['same_decision_before']:.4f} &rarr; {cf['same_decision_after']:.4f}.</li>")
+    pr = report.get("pairs")
+    if pr:
+        parts.append(f"<li>Comparable pairs ({pr['pairs_found']:,} of {pr['pairs']:,} found): same decision "
+                     f"{pr['same_decision_before']:.4f} &rarr; {pr['same_decision_after']:.4f}.</li>")
     parts.append(f"<li>Gates: {'all passed' if not failed else 'FAILED: ' + ', '.join(g['gate'] for g in failed)}.</li>")
     parts += [f"<li>{e(g['line'])}: {'passed' if g['passed'] else '<b>failed</b>'}</li>" for g in gates]
     parts += [f"<li class='warn'>Warning: {e(w)}</li>" for w in report.get("warnings", [])]

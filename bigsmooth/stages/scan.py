@@ -7,9 +7,10 @@ Every problem is reported at once, each with its count and a few example ids.
 """
 import difflib
 import logging
+import os
 
 from .. import atomic
-from ..errors import ConfigError, DataError, examples
+from ..errors import ConfigError, DataError, InputMissingError, examples
 from ..table import Source, connect_budget, quote
 
 log = logging.getLogger("bigsmooth.scan")
@@ -54,6 +55,19 @@ def check_schema(columns, inp):
     if problems:
         raise DataError("the table does not match the config:\n  " + "\n  ".join(problems)
                         + f"\nThe table's columns are: {', '.join(columns)}")
+
+
+def _check_pairs(con, path):
+    import duckdb
+
+    if not os.path.isfile(path):
+        raise InputMissingError(f"input.pairs {path} does not exist")
+    try:
+        cols = [r[0] for r in con.execute("DESCRIBE SELECT * FROM read_parquet($p)", {"p": path}).fetchall()]
+    except duckdb.Error as exc:
+        raise InputMissingError(f"input.pairs {path} is not readable Parquet: {str(exc).splitlines()[0]}") from None
+    missing = [c for c in ("id_a", "id_b") if c not in cols]
+    return [f"input.pairs {path} lacks column(s) {', '.join(missing)} (it has {', '.join(cols)})"] if missing else []
 
 
 def run(rundir, cfg, fp):
@@ -110,6 +124,8 @@ def run(rundir, cfg, fp):
                              f"HAVING count(*) > 1 ORDER BY c DESC, {idq} LIMIT 5")
         problems.append(f"{non_null_ids - distinct} duplicate rows of id column {inp['id']!r}; e.g. "
                         + ", ".join(f"{v!r} x{c}" for v, c in dup))
+    if inp["pairs"]:
+        problems += _check_pairs(con, inp["pairs"])
     levels = {}
     for c in inp["categorical_features"] + inp["protected"]:
         q = quote(c)
