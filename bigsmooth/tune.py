@@ -63,8 +63,7 @@ def tune_run(rd, cfg, lams, budget, holdout):
     def figures(F, rows, nbr):
         f = F[:, 0]
         sel = (f >= metrics.quantile_cutoff(f, rate)).astype(np.float64)
-        return (metrics.roc_auc(labels[rows], f[rows]),
-                float(1.0 - np.mean(np.abs(sel[rows] - sel[nbr].mean(axis=1)))))
+        return metrics.roc_auc(labels[rows], f[rows]), metrics.consistency(sel, nbr, rows)
 
     auc0, cons0 = figures(Y, use, nb_use)
     path = []

@@ -99,11 +99,13 @@ def log_loss(labels, scores, eps=1e-15):
     return float(-np.mean(y * np.log(p) + (1 - y) * np.log(1 - p)))
 
 
-def consistency(decisions, neighbours):
+def consistency(decisions, neighbours, rows=None):
     """1 - mean_i |d_i - mean of d over row i's k nearest neighbours| (the usual individual-fairness
-    consistency score); ``neighbours`` is (n, k) of row indices."""
+    consistency score); ``neighbours`` is (m, k) of row indices, ``neighbours[i]`` belonging to row
+    ``rows[i]`` (default: row i)."""
     d = np.asarray(decisions, dtype=np.float64)
-    return float(1.0 - np.mean(np.abs(d - d[neighbours].mean(axis=1))))
+    own = d if rows is None else d[rows]
+    return float(1.0 - np.mean(np.abs(own - d[neighbours].mean(axis=1))))
 
 
 def lipschitz_violations(f, a, b, dist, constant):

@@ -31,11 +31,14 @@ def _knn(rundir):
 
 
 def chunked_consistency(decisions, nb):
-    total = 0.0
+    """:func:`bigsmooth.kernels.metrics.consistency` over the memory-mapped neighbour lists, a chunk
+    of rows at a time (weighted by chunk length)."""
+    inconsistency = 0.0
     for s in range(0, len(nb), CHUNK):
         part = np.asarray(nb[s:s + CHUNK])
-        total += np.sum(np.abs(decisions[s:s + CHUNK] - decisions[part].mean(axis=1)))
-    return float(1.0 - total / len(nb))
+        rows = np.arange(s, s + len(part))
+        inconsistency += (1.0 - metrics.consistency(decisions, part, rows)) * len(part)
+    return float(1.0 - inconsistency / len(nb))
 
 
 def argmax_consistency(classes, nb):
