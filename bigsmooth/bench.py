@@ -32,8 +32,11 @@ import time
 import numpy as np
 
 
-def exact_sample_recall(E, ind, sample_rows, rng, chunk=200_000):
-    """Recall@k of neighbour lists ``ind`` against exact neighbours for a random sample of rows."""
+def exact_sample_recall(E, ind, sample_rows, rng, chunk=50_000):
+    """Recall@k of neighbour lists ``ind`` against exact neighbours for a random sample of rows.
+
+    Brute force in chunks of rows: each chunk's k nearest per sample row are merged with the best
+    so far, so memory stays at (sample x chunk) whatever the table size."""
     n, k = ind.shape
     s = np.sort(rng.choice(n, size=min(sample_rows, n), replace=False))
     Q = np.asarray(E[s], dtype=np.float64)
@@ -43,13 +46,15 @@ def exact_sample_recall(E, ind, sample_rows, rng, chunk=200_000):
     for a in range(0, n, chunk):
         X = np.asarray(E[a:a + chunk], dtype=np.float64)
         d2 = qq[:, None] + np.einsum("ij,ij->i", X, X)[None, :] - 2.0 * Q @ X.T
-        idx = np.arange(a, a + len(X))
-        d2[s[:, None] == idx[None, :]] = np.inf
-        cand_d = np.hstack([best_d, d2])
-        cand_i = np.hstack([best_i, np.broadcast_to(idx, d2.shape)])
-        part = np.argpartition(cand_d, k - 1, axis=1)[:, :k]
-        best_d = np.take_along_axis(cand_d, part, axis=1)
-        best_i = np.take_along_axis(cand_i, part, axis=1)
+        inside = (s >= a) & (s < a + len(X))
+        d2[np.flatnonzero(inside), s[inside] - a] = np.inf      # a row is not its own neighbour
+        kk = min(k, len(X))
+        part = np.argpartition(d2, kk - 1, axis=1)[:, :kk]
+        cand_d = np.hstack([best_d, np.take_along_axis(d2, part, axis=1)])
+        cand_i = np.hstack([best_i, part + a])
+        keep = np.argpartition(cand_d, k - 1, axis=1)[:, :k]
+        best_d = np.take_along_axis(cand_d, keep, axis=1)
+        best_i = np.take_along_axis(cand_i, keep, axis=1)
     hits = [len(set(ind[r]) & set(best_i[j])) for j, r in enumerate(s)]
     return float(np.sum(hits) / (len(s) * k))
 
@@ -110,7 +115,8 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1):
                 t_setup = time.perf_counter() - t0
                 executor = sweepcg.make_executor(w, "threads")
                 t1 = time.perf_counter()
-                res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, executor=executor)
+                res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, executor=executor,
+                                        omega=cfg["solve"]["relaxation"])
                 t_all = t_setup + time.perf_counter() - t1
                 if executor is not None:
                     executor.shutdown()

@@ -70,7 +70,8 @@ def tune_run(rd, cfg, lams, budget, holdout):
     x0 = Y[perm]
     for lam in sorted(lams):
         system = sweepcg.scale_split(split, lam, c[perm])
-        res = sweepcg.sweep_cg(system, b, x0=x0, tol=s["tol"], max_sweeps=s["max_sweeps"])
+        res = sweepcg.sweep_cg(system, b, x0=x0, tol=s["tol"], max_sweeps=s["max_sweeps"],
+                               omega=s["relaxation"])
         x0 = res.x
         F = np.empty_like(res.x)
         F[perm] = res.x

@@ -189,3 +189,47 @@ def test_fast_matvec_matches_scipy(rng):
     ref = system.matvec(x, fast=False)
     np.testing.assert_allclose(system.matvec(x, fast=True), ref, rtol=1e-13, atol=1e-13 * np.abs(ref).max())
     np.testing.assert_allclose(system.matvec(x), A @ x, atol=1e-12)
+
+
+def test_residual_norm_matches_scipy_and_thread_count(rng, monkeypatch):
+    # reference: numpy's norm of b - A x with A assembled by scipy; the chunked sum must give the
+    # same bits for any number of numba threads (small chunks so that there are many)
+    import numba
+
+    monkeypatch.setattr(sweepcg, "RESIDUAL_CHUNK", 64)
+    _, _, A, b = _system(rng, n=1000, cols=2)
+    n = A.shape[0]
+    system = sweepcg.prepare(A, [0, 300, 700, n])
+    x = rng.random((n, 2))
+    ref = float(np.linalg.norm(b - A @ x))
+    xs = x / system.s[:, None]
+    got = []
+    for threads in (1, min(2, numba.config.NUMBA_NUM_THREADS)):
+        numba.set_num_threads(threads)
+        got.append(system.residual_norm(xs, b))
+    numba.set_num_threads(numba.config.NUMBA_NUM_THREADS)
+    assert got[0] == got[1]
+    assert abs(got[0] - ref) <= 1e-12 * ref
+    assert abs(system.residual_norm(xs, b, fast=False) - ref) <= 1e-12 * ref
+
+
+@pytest.mark.parametrize("omega", [0.7, 1.3, 1.8])
+def test_relaxed_sweeps_match_spsolve_and_reference_kernels(rng, omega):
+    # SSOR (omega != 1) in Eisenstat's form must still converge to spsolve's answer; the compiled
+    # kernels must follow the Python references
+    W, Y, A, b = _system(rng, cols=2)
+    system = sweepcg.prepare(A, [0, 123, 350, 500])
+    res = sweepcg.sweep_cg(system, b, x0=Y, tol=1e-12, max_sweeps=2000, omega=omega)
+    assert res.status == sweepcg.STATUS_CONVERGED
+    np.testing.assert_allclose(res.x, reference(W, Y, 4.0, "unnormalised"), atol=1e-8)
+    fast = sweepcg.sweep_cg(system, b, tol=1e-10, max_sweeps=12, omega=omega)
+    slow = sweepcg.sweep_cg(system, b, tol=1e-10, max_sweeps=12, omega=omega, kernels=sweepcg.PY_KERNELS)
+    np.testing.assert_allclose(fast.x, slow.x, rtol=1e-12, atol=1e-14)
+
+
+def test_omega_outside_the_open_interval_is_refused(rng):
+    _, _, A, b = _system(rng, cols=1)
+    system = sweepcg.prepare(A, [0, 500])
+    for bad in (0.0, 2.0, -1.0):
+        with pytest.raises(ValueError, match="omega"):
+            sweepcg.sweep_cg(system, b, omega=bad)

@@ -34,8 +34,8 @@ def gauss_seidel_rows(indptr, indices, data, b, x, start, stop, sweeps):
 # loop is outermost so that the inner loops are plain scalar loops.
 
 @numba.njit(cache=True, nogil=True)
-def backward_sweep(Up, Ui, Ud, r, p, t, beta, start, stop):
-    """p_g = r_g + beta p_g, then t_g = E_g^-T p_g = solve (I + U_g) t = p backwards."""
+def backward_sweep(Up, Ui, Ud, r, p, t, beta, omega, start, stop):
+    """p_g = r_g + beta p_g, then t_g = E_g^-T p_g = solve (I / omega + U_g) t = p backwards."""
     for k in range(p.shape[1]):
         bk = beta[k]
         for i in range(stop - 1, start - 1, -1):
@@ -44,20 +44,31 @@ def backward_sweep(Up, Ui, Ud, r, p, t, beta, start, stop):
             acc = pi
             for q in range(Up[i], Up[i + 1]):
                 acc -= Ud[q] * t[Ui[q], k]
-            t[i, k] = acc
+            t[i, k] = omega * acc
 
 
 @numba.njit(cache=True, nogil=True)
-def forward_sweep(Lp, Li, Ld, Op, Oi, Od, p, t, w, ap, start, stop, pap):
-    """w_g = E_g^-1 (p - t + O t)_g, ap_g = t_g + w_g; pap[k] = sum_g p[:, k] * ap[:, k]."""
+def forward_sweep(Lp, Li, Ld, Op, Oi, Od, p, t, w, ap, omega, start, stop, pap):
+    """w_g = E_g^-1 (p + (1 - 2 / omega) t + O t)_g, ap_g = t_g + w_g; pap[k] = sum_g p[:, k] * ap[:, k].
+
+    Two passes over the group's rows: first v = p + (1 - 2 / omega) t + O t into w (rows are
+    independent there, so the scattered reads of t in other groups overlap), then the Gauss-Seidel
+    recurrence over L in place. Fusing them into one loop was measured here at 1M rows to take
+    about 2.5x as long as the backward sweep over a similar number of entries: the gathers from
+    other groups then wait behind the recurrence."""
+    ct = 1.0 - 2.0 / omega
     for k in range(p.shape[1]):
-        acc_pap = 0.0
         for i in range(start, stop):
-            acc = p[i, k] - t[i, k]
+            acc = p[i, k] + ct * t[i, k]
             for q in range(Op[i], Op[i + 1]):
                 acc += Od[q] * t[Oi[q], k]
+            w[i, k] = acc
+        acc_pap = 0.0
+        for i in range(start, stop):
+            acc = w[i, k]
             for q in range(Lp[i], Lp[i + 1]):
                 acc -= Ld[q] * w[Li[q], k]
+            acc *= omega
             w[i, k] = acc
             api = t[i, k] + acc
             ap[i, k] = api
@@ -150,20 +161,40 @@ def scale_triplet(ptr, ind, w, s, lam, out):
             out[q] = sr * w[q] * s[ind[q]]
 
 
+@numba.njit(cache=True, inline="always")
+def _split_row(Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, y, i, k):
+    """((I + L + U + O) y)[i, k]."""
+    acc = y[i, k]
+    for q in range(Lp[i], Lp[i + 1]):
+        acc += Ld[q] * y[Li[q], k]
+    for q in range(Up[i], Up[i + 1]):
+        acc += Ud[q] * y[Ui[q], k]
+    for q in range(Op[i], Op[i + 1]):
+        acc += Od[q] * y[Oi[q], k]
+    return acc
+
+
 @numba.njit(cache=True, parallel=True)
 def split_matvec(Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, y, out):
     """out = (I + L + U + O) y for the scaled, split system; y and out of shape (n, c)."""
     n, c = y.shape
     for i in numba.prange(n):
         for k in range(c):
-            acc = y[i, k]
-            for q in range(Lp[i], Lp[i + 1]):
-                acc += Ld[q] * y[Li[q], k]
-            for q in range(Up[i], Up[i + 1]):
-                acc += Ud[q] * y[Ui[q], k]
-            for q in range(Op[i], Op[i + 1]):
-                acc += Od[q] * y[Oi[q], k]
-            out[i, k] = acc
+            out[i, k] = _split_row(Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, y, i, k)
+
+
+@numba.njit(cache=True, parallel=True)
+def split_residual_sq(Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, s, xs, b, chunk, parts):
+    """parts[j] = sum over rows i of chunk j of ||b_i - (A x)_i||^2 with A x = S^-1 (I + L + U + O) xs,
+    x = S xs. Chunks are fixed row ranges, so the sums do not depend on the number of threads."""
+    n, c = xs.shape
+    for j in numba.prange(len(parts)):
+        acc_sq = 0.0
+        for i in range(j * chunk, min(n, (j + 1) * chunk)):
+            for k in range(c):
+                r = b[i, k] - _split_row(Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, xs, i, k) / s[i]
+                acc_sq += r * r
+        parts[j] = acc_sq
 
 
 @numba.njit(cache=True)

@@ -5,16 +5,19 @@ b of shape (n, c) (each column is its own CG run, all sharing the sweeps).
 
 1. Jacobi scaling: s = diag(A)^-1/2, As = S A S has a unit diagonal, bs = S b, x = S xs.
 2. Block groups are consecutive row ranges (rows ordered for locality first). Within a group, E =
-   I + L_g where L_g is the strictly lower part of As restricted to couplings inside the group. The
-   preconditioner M = E E^T is one forward and one backward (symmetric) Gauss-Seidel sweep over each
-   group; groups do not see each other inside M (Jacobi between groups), so every group can be
-   swept by a different worker and the result does not depend on how many workers there are.
+   I / omega + L_g where L_g is the strictly lower part of As restricted to couplings inside the
+   group and 0 < omega < 2 the relaxation factor. The preconditioner M = E E^T (up to a constant
+   factor) is one forward and one backward symmetric sweep over each group: symmetric Gauss-Seidel
+   for omega = 1, SSOR otherwise. Groups do not see each other inside M (Jacobi between groups), so
+   every group can be swept by a different worker and the result does not depend on how many
+   workers there are.
 3. CG runs on the split-preconditioned matrix Ahat = E^-1 As E^-T with Eisenstat's trick (S. C.
    Eisenstat, "Efficient implementation of a class of preconditioned conjugate gradient methods",
-   SIAM J. Sci. Stat. Comput. 2(1), 1981): with As = E + E^T - I + O (O = couplings between
-   groups), Ahat p = t + E^-1 (p - t + O t) where t = E^-T p. One backward and one forward sweep
-   cost about one matrix-vector product, so an iteration costs what a Jacobi-preconditioned CG
-   iteration costs while needing fewer iterations. The iterate xs = E^-T yhat is updated with t.
+   SIAM J. Sci. Stat. Comput. 2(1), 1981): with As = E + E^T + (1 - 2 / omega) I + O (O =
+   couplings between groups), Ahat p = t + E^-1 (p + (1 - 2 / omega) t + O t) where t = E^-T p.
+   One backward and one forward sweep cost about one matrix-vector product, so an iteration costs
+   about what a Jacobi-preconditioned CG iteration costs while needing fewer iterations. The
+   iterate xs = E^-T yhat is updated with t.
 
 The scaled matrix is split once into L (strictly lower couplings inside a group), U (strictly
 upper inside a group) and O (couplings between groups), so the sweeps are plain loops over their
@@ -26,7 +29,8 @@ number of workers. Phase 1: p = r + beta p, t = E^-T p. Phase 2: ap = Ahat p and
 Phase 3: xs += alpha t, r -= alpha ap and r.r.
 
 The stopping rule uses the true relative residual ||b - A x|| / ||b||, checked when the
-preconditioned estimate ||r|| / ||E^-1 bs|| falls below the tolerance.
+estimate ||r_k|| / ||r_0|| * (||b - A x0|| / ||b||) falls below the tolerance (for x0 = 0 that is
+||r_k|| / ||E^-1 bs||); a failed check lowers the estimate's target.
 """
 from dataclasses import dataclass, field
 
@@ -40,25 +44,25 @@ STATUS_STOPPED = "stopped"
 
 # ---- Python references of the compiled kernels in bigsmooth.kernels._fast (same signatures) ----
 
-def backward_sweep(Up, Ui, Ud, r, p, t, beta, start, stop):
+def backward_sweep(Up, Ui, Ud, r, p, t, beta, omega, start, stop):
     for i in range(stop - 1, start - 1, -1):
         p[i] = r[i] + beta * p[i]
         acc = p[i].copy()
         for q in range(Up[i], Up[i + 1]):
             acc -= Ud[q] * t[Ui[q]]
-        t[i] = acc
+        t[i] = omega * acc
 
 
-def forward_sweep(Lp, Li, Ld, Op, Oi, Od, p, t, w, ap, start, stop, pap):
+def forward_sweep(Lp, Li, Ld, Op, Oi, Od, p, t, w, ap, omega, start, stop, pap):
     pap[:] = 0.0
     for i in range(start, stop):
-        acc = p[i] - t[i]
+        acc = p[i] + (1.0 - 2.0 / omega) * t[i]
         for q in range(Op[i], Op[i + 1]):
             acc += Od[q] * t[Oi[q]]
         for q in range(Lp[i], Lp[i + 1]):
             acc -= Ld[q] * w[Li[q]]
-        w[i] = acc
-        ap[i] = t[i] + acc
+        w[i] = omega * acc
+        ap[i] = t[i] + w[i]
         pap += p[i] * ap[i]
 
 
@@ -110,6 +114,24 @@ class Grouped:
             for M in self.matrices():
                 out += M @ y
         return out / self.s[:, None]
+
+    def residual_norm(self, xs, b, fast=True):
+        """||b - A x|| for x = S xs (xs: the scaled iterate), without forming A x.
+
+        ``fast``: one compiled parallel pass that sums squares in fixed chunks of rows, then adds the
+        chunks in order (the same bits for any number of threads); otherwise numpy on :meth:`matvec`."""
+        xs = np.asarray(xs, dtype=np.float64)
+        b = np.asarray(b, dtype=np.float64).reshape(xs.shape)
+        if not fast:
+            return float(np.linalg.norm(b - self.matvec(self.s[:, None] * xs, fast=False)))
+        from . import _fast
+
+        parts = np.zeros(-(-self.n // RESIDUAL_CHUNK))
+        _fast.split_residual_sq(*self.L, *self.U, *self.O, self.s, xs, b, RESIDUAL_CHUNK, parts)
+        return float(np.sqrt(np.sum(parts)))
+
+
+RESIDUAL_CHUNK = 16384
 
 
 def prepare(A, bounds):
@@ -224,13 +246,13 @@ def prepare_from_graph(W, lam, c, perm, bounds, alloc=None):
 
 # ---- group tasks (module level so that process workers can import them) ----
 
-def _phase1(kern, U, r, p, t, beta, start, stop):
-    kern["backward"](U[0], U[1], U[2], r, p, t, beta, start, stop)
+def _phase1(kern, U, r, p, t, beta, omega, start, stop):
+    kern["backward"](U[0], U[1], U[2], r, p, t, beta, omega, start, stop)
 
 
-def _phase2(kern, L, O, p, t, w, ap, start, stop):
+def _phase2(kern, L, O, p, t, w, ap, omega, start, stop):
     pap = np.zeros(p.shape[1])
-    kern["forward"](L[0], L[1], L[2], O[0], O[1], O[2], p, t, w, ap, start, stop, pap)
+    kern["forward"](L[0], L[1], L[2], O[0], O[1], O[2], p, t, w, ap, omega, start, stop, pap)
     return pap
 
 
@@ -240,11 +262,19 @@ def _phase3(kern, x, r, t, ap, alpha, start, stop):
     return rr
 
 
-def _map(executor, fn, calls):
-    """Run fn over the group calls: in order here, or on an Executor (results come back in order)."""
+def _map(executor, fn, calls, order=None):
+    """Run fn over the group calls: in order here, or on an Executor. Results come back in the
+    order of ``calls`` either way; ``order`` (a permutation of the calls) is the order in which
+    they are handed to the executor, largest groups first, so that workers finish together."""
     if executor is None:
         return [fn(*c) for c in calls]
-    return list(executor.map(fn, *zip(*calls)))
+    if order is None:
+        return list(executor.map(fn, *zip(*calls)))
+    done = list(executor.map(fn, *zip(*[calls[j] for j in order])))
+    out = [None] * len(calls)
+    for j, res in zip(order, done):
+        out[j] = res
+    return out
 
 
 def make_executor(workers, backend):
@@ -300,7 +330,7 @@ class SweepCGResult:
 
 
 def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernels=None, work=None,
-             state=None, on_sweep=None):
+             state=None, on_sweep=None, omega=1.0):
     """Solve A x = b (b of shape (n, c)) by sweep-preconditioned CG; see the module docstring.
 
     Parameters
@@ -314,11 +344,15 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
     state : dict, optional resume state from ``on_sweep`` (``sweep``, ``rho``, ``beta``, ``nbhat``,
         ``residuals``, ``checks``, ``target``) with ``work`` holding the matching x, r, p
     on_sweep : callable(state_dict, work) -> bool or None, called after each iteration; False stops
+    omega : relaxation factor of the symmetric sweeps (SSOR), 0 < omega < 2; 1 = Gauss-Seidel
 
     Returns
     -------
     SweepCGResult
     """
+    if not 0.0 < omega < 2.0:
+        raise ValueError(f"omega must lie strictly between 0 and 2; got {omega}")
+    omega = float(omega)
     kern = kernels or compiled_kernels()
     sysm = system
     n = sysm.n
@@ -335,25 +369,43 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
         return SweepCGResult(np.zeros((n, c)), STATUS_CONVERGED, 0, [0.0], [(0, 0.0)])
     bs = s[:, None] * b
 
+    # hand the largest groups to the workers first (longest-processing-time rule); the groups'
+    # results are still combined in group order
+    order = sorted(range(len(groups)), key=lambda j: (groups[j][0] - groups[j][1], j))
+
+    def sweep_map(fn, calls):
+        return _map(executor, fn, calls, order)
+
     def forward_solve(v):
         """w = E^-1 v (one forward sweep with t = 0; p is scratch, ap and pap are by-products)."""
         work.t[:] = 0.0
         work.p[:] = v
-        _map(executor, _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, g0, g1) for g0, g1 in groups])
+        sweep_map(_phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1) for g0, g1 in groups])
         return work.w
 
     def true_residual():
-        x = s[:, None] * work.x
-        return float(np.linalg.norm(b - sysm.matvec(x)) / nb)
+        return sysm.residual_norm(work.x, b) / nb
 
     if state is None:
-        nbhat = float(np.linalg.norm(forward_solve(bs)))
-        work.x[:] = 0.0 if x0 is None else np.asarray(x0, dtype=np.float64).reshape(n, c) / s[:, None]
-        # r = E^-1 (bs - As xs), with As xs = S A x
-        work.r[:] = forward_solve(bs - s[:, None] * sysm.matvec(s[:, None] * work.x))
+        if x0 is None or not np.any(x0):
+            work.x[:] = 0.0
+            res0 = 1.0
+            work.r[:] = forward_solve(bs)
+        else:
+            work.x[:] = np.asarray(x0, dtype=np.float64).reshape(n, c) / s[:, None]
+            # r = E^-1 (bs - As xs) = E^-1 S (b - A x0)
+            resid = b - sysm.matvec(np.asarray(x0, dtype=np.float64).reshape(n, c))
+            res0 = float(np.linalg.norm(resid)) / nb
+            work.r[:] = forward_solve(s[:, None] * resid)
+            del resid
+        rho = np.sum(work.r ** 2, axis=0)
+        # the preconditioned residual estimate is ||r_k|| / ||r_0|| times the true relative residual
+        # at the start, i.e. ||r_k|| / nbhat (with x0 = 0, nbhat = ||E^-1 S b||)
+        r0 = float(np.sqrt(rho.sum()))
+        nbhat = r0 / res0 if res0 > 0 else 1.0
         work.p[:] = 0.0
-        state = {"sweep": 0, "rho": np.sum(work.r ** 2, axis=0), "beta": np.zeros(c), "nbhat": nbhat,
-                 "residuals": [float(np.sqrt(np.sum(work.r ** 2)) / nbhat)], "checks": [], "target": tol}
+        state = {"sweep": 0, "rho": rho, "beta": np.zeros(c), "nbhat": nbhat,
+                 "residuals": [r0 / nbhat if res0 > 0 else 0.0], "checks": [], "target": tol}
     else:
         nbhat = float(state["nbhat"])
         state = {**state, "rho": np.asarray(state["rho"], dtype=np.float64),
@@ -368,13 +420,13 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
             status = STATUS_CONVERGED
     while status != STATUS_CONVERGED and state["sweep"] < max_sweeps:
         beta = state["beta"]
-        _map(executor, _phase1, [(kern, U, work.r, work.p, work.t, beta, g0, g1) for g0, g1 in groups])
-        pap = np.sum(_map(executor, _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, g0, g1)
-                                              for g0, g1 in groups]), axis=0)
+        sweep_map(_phase1, [(kern, U, work.r, work.p, work.t, beta, omega, g0, g1) for g0, g1 in groups])
+        pap = np.sum(sweep_map(_phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1)
+                                         for g0, g1 in groups]), axis=0)
         rho = state["rho"]
         alpha = np.divide(rho, pap, out=np.zeros(c), where=pap > 0)
-        rr = np.sum(_map(executor, _phase3, [(kern, work.x, work.r, work.t, work.ap, alpha, g0, g1)
-                                             for g0, g1 in groups]), axis=0)
+        rr = np.sum(sweep_map(_phase3, [(kern, work.x, work.r, work.t, work.ap, alpha, g0, g1)
+                                        for g0, g1 in groups]), axis=0)
         state["beta"] = np.divide(rr, rho, out=np.zeros(c), where=rho > 0)
         state["rho"] = rr
         state["sweep"] += 1

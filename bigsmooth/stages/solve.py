@@ -151,13 +151,14 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0):
     executor = sweepcg.make_executor(nw, s["backend"])
     try:
         res = sweepcg.sweep_cg(system, b[perm], x0=X0[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
-                               executor=executor, work=work, state=state, on_sweep=on_sweep)
+                               omega=s["relaxation"], executor=executor, work=work, state=state, on_sweep=on_sweep)
     finally:
         if executor is not None and s["backend"] == "threads":
             executor.shutdown()
     info = {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
             "true_residual_checks": [list(ch) for ch in res.checks], "final_residual": res.final_residual,
-            "groups": len(bounds) - 1, "workers": nw, "backend": s["backend"]}
+            "groups": len(bounds) - 1, "workers": nw, "backend": s["backend"],
+            "relaxation": s["relaxation"]}
     if s["warm_start"]:
         info["warm_start_effect"] = _sweeps_saved(system, b[perm], Y[perm], X0[perm], res.residuals, res.sweeps)
     return res.x, info
