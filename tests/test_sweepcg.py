@@ -233,3 +233,23 @@ def test_omega_outside_the_open_interval_is_refused(rng):
     for bad in (0.0, 2.0, -1.0):
         with pytest.raises(ValueError, match="omega"):
             sweepcg.sweep_cg(system, b, omega=bad)
+
+
+def test_scaled_start_is_no_farther_than_zero_and_converges(rng):
+    # reference: the A-norm error against spsolve's solution; a* = x0.b / x0.A x0 minimises
+    # ||x* - a x0||_A over a (a one-line derivation: d/da of (x* - a x0)' A (x* - a x0) = 0 with
+    # A x* = b), and a = 0 is one of the candidates
+    W, Y, A, b = _system(rng, cols=2, lam=40.0)
+    xstar = reference(W, Y, 40.0, "unnormalised")
+
+    def err(x):
+        e = xstar - x
+        return np.sum(e * (A @ e), axis=0)
+
+    x0, ax0 = sweepcg.scaled_start(Y, A @ Y, b)
+    np.testing.assert_allclose(ax0, A @ x0, rtol=1e-12)
+    assert np.all(err(x0) <= err(np.zeros_like(Y)) * (1 + 1e-12))
+    assert np.all(err(x0) <= err(Y) * (1 + 1e-12))
+    system = sweepcg.prepare(A, [0, 123, 350, 500])
+    res = sweepcg.sweep_cg(system, b, x0=Y, tol=1e-12, max_sweeps=2000, scale_start=True)
+    np.testing.assert_allclose(res.x, xstar, atol=1e-8)

@@ -329,8 +329,16 @@ class SweepCGResult:
         return self.checks[-1][1] if self.checks else float("nan")
 
 
+def scaled_start(x0, ax0, b):
+    """(a x0, a A x0) with a = x0.b / x0.A x0 per column (a = 1 where x0.A x0 = 0)."""
+    num = np.sum(x0 * b, axis=0)
+    den = np.sum(x0 * ax0, axis=0)
+    a = np.divide(num, den, out=np.ones_like(num), where=den > 0)
+    return x0 * a, ax0 * a
+
+
 def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernels=None, work=None,
-             state=None, on_sweep=None, omega=1.0):
+             state=None, on_sweep=None, omega=1.0, scale_start=False):
     """Solve A x = b (b of shape (n, c)) by sweep-preconditioned CG; see the module docstring.
 
     Parameters
@@ -345,6 +353,8 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
         ``residuals``, ``checks``, ``target``) with ``work`` holding the matching x, r, p
     on_sweep : callable(state_dict, work) -> bool or None, called after each iteration; False stops
     omega : relaxation factor of the symmetric sweeps (SSOR), 0 < omega < 2; 1 = Gauss-Seidel
+    scale_start : start from a_k x0_k per column with a_k = x0_k.b_k / x0_k.A x0_k, the multiple of
+        x0 closest to the solution in the A-norm (so never farther than x = 0 in that norm)
 
     Returns
     -------
@@ -392,9 +402,14 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
             res0 = 1.0
             work.r[:] = forward_solve(bs)
         else:
-            work.x[:] = np.asarray(x0, dtype=np.float64).reshape(n, c) / s[:, None]
+            x0 = np.asarray(x0, dtype=np.float64).reshape(n, c)
+            ax0 = sysm.matvec(x0)
+            if scale_start:
+                x0, ax0 = scaled_start(x0, ax0, b)
+            work.x[:] = x0 / s[:, None]
             # r = E^-1 (bs - As xs) = E^-1 S (b - A x0)
-            resid = b - sysm.matvec(np.asarray(x0, dtype=np.float64).reshape(n, c))
+            resid = b - ax0
+            del ax0
             res0 = float(np.linalg.norm(resid)) / nb
             work.r[:] = forward_solve(s[:, None] * resid)
             del resid

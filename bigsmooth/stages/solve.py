@@ -85,10 +85,12 @@ def previous_scores(rundir, cfg, Y):
 
 
 def _sweeps_saved(system, b, Yp, X0p, residuals, sweeps):
-    """Estimated sweeps a cold start (x0 = raw scores) would have needed beyond this warm start:
-    log(cold start residual / warm start residual) over the mean log reduction per sweep."""
+    """Estimated sweeps a cold start (the raw scores, scaled as the solver scales them) would have
+    needed beyond this warm start: log(cold start residual / warm start residual) over the mean log
+    reduction per sweep."""
     nb = np.linalg.norm(b)
-    cold = np.linalg.norm(b - system.matvec(Yp)) / nb
+    _, ay = sweepcg.scaled_start(Yp, system.matvec(Yp), b)
+    cold = np.linalg.norm(b - ay) / nb
     warm = np.linalg.norm(b - system.matvec(X0p)) / nb
     rate = np.log(residuals[-1] / residuals[0]) / max(sweeps, 1) if sweeps and residuals[0] > 0 else 0.0
     est = float(np.log(cold / warm) / -rate) if rate < 0 and warm > 0 else 0.0
@@ -150,8 +152,11 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0):
     nw = workers_for(s)
     executor = sweepcg.make_executor(nw, s["backend"])
     try:
+        # a cold start (the raw scores) is scaled to the multiple closest to the solution; a warm
+        # start (last night's adjusted scores) is taken as it is
         res = sweepcg.sweep_cg(system, b[perm], x0=X0[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
-                               omega=s["relaxation"], executor=executor, work=work, state=state, on_sweep=on_sweep)
+                               omega=s["relaxation"], scale_start=X0 is Y, executor=executor, work=work,
+                               state=state, on_sweep=on_sweep)
     finally:
         if executor is not None and s["backend"] == "threads":
             executor.shutdown()
