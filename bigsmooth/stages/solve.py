@@ -103,7 +103,7 @@ def workers_for(s):
     return max(1, min(w, s["groups"]))
 
 
-def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0):
+def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
     """The default solver on the order stage's split graph. The scaled system is written to
     memory-mapped files in solve/system (its pages are the kernel's to evict), so the process holds
     only O(n) vectors plus the pages the sweeps are reading."""
@@ -155,7 +155,7 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0):
         # a cold start (the raw scores) is scaled to the multiple closest to the solution; a warm
         # start (last night's adjusted scores) is taken as it is
         res = sweepcg.sweep_cg(system, b[perm], x0=X0[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
-                               omega=s["relaxation"], scale_start=X0 is Y, executor=executor, work=work,
+                               omega=s["relaxation"], scale_start=cold, executor=executor, work=work,
                                state=state, on_sweep=on_sweep)
     finally:
         if executor is not None and s["backend"] == "threads":
@@ -242,7 +242,10 @@ def run(rundir, cfg):
                 atomic.save_npy(x0_path, X0)
                 atomic.write_json(x0_path + ".json", info["warm_start"])
         if s["method"] == "sweep-cg":
-            Xp, more = _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0)
+            # decided from the warm-start record, not from X0's identity: a resumed run reads X0
+            # back from solve/x0.npy
+            cold = not info.get("warm_start", {}).get("used", False)
+            Xp, more = _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold)
         else:
             A, _ = laplacian.system(W, s["lam"], s["laplacian"])
             Xp, more = _blocks(rundir, s, A, b, Y, perm, ck_path, X0)
