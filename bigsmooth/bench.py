@@ -22,6 +22,7 @@ Prints one table and writes it as JSON. Timings are from this machine at this mo
 ratios measured in the same run, not absolute seconds across machines.
 """
 import argparse
+import glob
 import json
 import os
 import platform
@@ -59,6 +60,29 @@ def exact_sample_recall(E, ind, sample_rows, rng, chunk=50_000):
         best_i = np.take_along_axis(cand_i, keep, axis=1)
     hits = [len(set(ind[r]) & set(best_i[j])) for j, r in enumerate(s)]
     return float(np.sum(hits) / (len(s) * k))
+
+
+def machine_info():
+    """Cores, memory and the processor's model and cache sizes (ratios differ between processors:
+    CG's scattered reads depend on how much of its vectors stay in cache)."""
+    info = {"cores": os.cpu_count(),
+            "memory_gib": round(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30, 1),
+            "python": platform.python_version(), "platform": platform.platform()}
+    try:
+        with open("/proc/cpuinfo") as fh:
+            info["cpu"] = next(line.split(":", 1)[1].strip() for line in fh if line.startswith("model name"))
+    except (OSError, StopIteration):
+        info["cpu"] = platform.processor() or "unknown"
+    caches = {}
+    for d in sorted(glob.glob("/sys/devices/system/cpu/cpu0/cache/index*")):
+        try:
+            level, kind, size = (open(os.path.join(d, f)).read().strip() for f in ("level", "type", "size"))
+        except OSError:
+            continue
+        if kind != "Instruction":
+            caches[f"L{level}"] = size
+    info["caches"] = caches   # as cpu0 sees them (L3 is shared)
+    return info
 
 
 def solver_race(rundir, cfg, lam_degrees, workers, repeat=1):
@@ -191,8 +215,7 @@ def main(argv=None):
     recall = exact_sample_recall(E, ind, args.sample, np.random.default_rng(0))
     t_recall = time.perf_counter() - t0
     table = {
-        "machine": {"cores": os.cpu_count(), "memory_gib": round(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30, 1),
-                    "python": platform.python_version(), "platform": platform.platform()},
+        "machine": machine_info(),
         "rows": args.rows, "feature_columns": len(cfg["input"]["numeric_features"]) + len(cfg["input"]["categorical_features"]),
         "encoded_features": len(emb["features"]), "fair_space_dim": emb["dim"],
         "generate_seconds": t_gen, "job_seconds": t_job,
@@ -210,7 +233,8 @@ def main(argv=None):
         json.dump(table, fh, indent=2)
     print(f"rows {table['rows']:,}  features {table['feature_columns']} columns -> {table['encoded_features']} encoded "
           f"-> {table['fair_space_dim']} fair dims   machine {table['machine']['cores']} cores, "
-          f"{table['machine']['memory_gib']} GiB")
+          f"{table['machine']['memory_gib']} GiB, {table['machine']['cpu']}, caches "
+          + ", ".join(f"{k} {v}" for k, v in table["machine"]["caches"].items()))
     print(f"job {t_job:.1f} s (child process, incl. numba compilation); peak RSS {table['peak_rss_gb']:.2f} GB "
           f"({table['rss_bytes_per_row']:.0f} B/row)")
     print("stages: " + ", ".join(f"{k} {v:.1f} s" for k, v in table["stage_seconds"].items() if v is not None))

@@ -68,11 +68,14 @@ def tune_run(rd, cfg, lams, budget, holdout):
     auc0, cons0 = figures(Y, use, nb_use)
     path = []
     x0 = Y[perm]
+    cold = True
     for lam in sorted(lams):
         system = sweepcg.scale_split(split, lam, c[perm])
+        # the first lam starts as the job does from the raw scores (scaled to the multiple closest
+        # to its solution); each later lam from the previous lam's solution as it is
         res = sweepcg.sweep_cg(system, b, x0=x0, tol=s["tol"], max_sweeps=s["max_sweeps"],
-                               omega=s["relaxation"])
-        x0 = res.x
+                               omega=s["relaxation"], scale_start=cold)
+        x0, cold = res.x, False
         F = np.empty_like(res.x)
         F[perm] = res.x
         auc, cons = figures(F, use, nb_use)

@@ -135,3 +135,18 @@ def test_a_second_score_column_is_audited_side_by_side(tmp_path):
     assert {"consistency", "auc", "gap_over_sd", "decisions_differing_from_adjusted"} <= set(c)
     assert "compared: retrained_score" in (tmp_path / "out" / "current" / "_report.html").read_text()
     assert "retrained_score_adjusted" not in read_output(tmp_path / "out").column_names
+
+
+def test_tune_first_lam_starts_as_the_job_does(tmp_path):
+    # the first lam of the path solves the job's own system from the job's own start (the raw
+    # scores scaled to the multiple closest to the solution), so it takes the job's sweeps
+    cfg = _write_case(tmp_path, _small_table(1200, seed=4))
+    cfg.write_text(cfg.read_text().replace("lam = 1.0", "lam = 30.0").replace("tol = 1e-6", "tol = 1e-10"))
+    res = cli("tune", str(cfg), "--lams", "30")
+    assert res.returncode == 0, res.stderr[-2000:]
+    (run_dir,) = list((tmp_path / "runs").iterdir())
+    t = json.loads((run_dir / "tune" / "tune.json").read_text())
+    assert cli("run", str(cfg)).returncode == 0
+    solve = json.loads((run_dir / "solve" / "solve.json").read_text())
+    assert solve["method"] == "sweep-cg" and solve["lam"] == t["path"][0]["lam"] == 30.0
+    assert t["path"][0]["sweeps"] == solve["sweeps"]
