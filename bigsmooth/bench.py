@@ -1,17 +1,20 @@
 """Benchmark: the whole job on the demo scenario at a given size, and the solver against scipy's CG.
 
     python -m bigsmooth.bench --rows 1000000 [--workers 2] [--dir DIR] [--json FILE]
+    python -m bigsmooth.bench --rows 1000000 --race-only     (the race again on the run left in DIR)
 
 1. Generates the demo table (not timed as part of the job) and runs ``bigsmooth run`` in a fresh
    child process, so numba compilation is included; reads per-stage wall times from the manifest
    and the child's peak RSS (getrusage of waited-for children: the job and its workers).
 2. Neighbour recall@k of the graph against exact brute-force neighbours of a 2,000-row sample.
-3. On the job's own graph, for lam * mean degree in (10, 100): our solver (1 worker and
-   ``--workers``) and scipy.sparse.linalg.cg with a Jacobi preconditioner, side by side in this
-   process, each from the same start (the job's: the raw scores scaled to the multiple closest to
-   the solution) to the same relative residual, each timed from the saved graph to the solution
-   (CG: assembling A = C + lam L from W and the preconditioner; ours: scaling the order stage's
-   split graph for this lam). The reordering and split themselves do not depend on lam and are
+3. On the job's own graph, for lam * mean degree in (10, 100): our solver (1 worker, and
+   ``--workers`` workers on each of ``--backends``: threads, the job's default, and joblib's loky
+   processes over memory-mapped files) and scipy.sparse.linalg.cg with a Jacobi preconditioner,
+   side by side in this process, each from the same start (the job's: the raw scores scaled to
+   the multiple closest to the solution) to the same relative residual, each timed from the saved
+   graph to the solution (CG: assembling A = C + lam L from W and the preconditioner; ours:
+   scaling the order stage's split graph for this lam; starting the worker processes is not
+   timed). The reordering and split themselves do not depend on lam and are
    done once per graph by the order stage (its time is in the stage table). CG runs in input row
    order, as a user of scipy would run it; for information the table also gives CG on our row
    order (``cg_local_order_seconds``: A permuted untimed, plus CG's setup time). The table gives
@@ -22,6 +25,7 @@ Prints one table and writes it as JSON. Timings are from this machine at this mo
 ratios measured in the same run, not absolute seconds across machines.
 """
 import argparse
+import contextlib
 import glob
 import json
 import os
@@ -85,17 +89,42 @@ def machine_info():
     return info
 
 
-def solver_race(rundir, cfg, lam_degrees, workers, repeat=1):
+def _warm_worker(pause):
+    """Load the compiled kernels in a worker process, then hold it a moment so that every worker
+    gets one of these tasks."""
+    from .kernels import _fast
+
+    t = np.zeros((1, 1))
+    _fast.update_sweep(t, t.copy(), t.copy(), t.copy(), np.zeros(1), 0, 1, np.zeros(1))
+    time.sleep(pause)
+
+
+def _contenders(workers, backends):
+    """(key, workers, backend): one worker, then ``workers`` on each backend ('threads' keeps the
+    plain key ``w{workers}``; 'processes' is ``w{workers}_processes``)."""
+    out = [("w1", 1, "threads")]
+    if workers > 1:
+        for be in backends:
+            out.append((f"w{workers}" if be == "threads" else f"w{workers}_{be}", workers, be))
+    return out
+
+
+def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads",)):
     """Our solver vs scipy CG (Jacobi) on the job's graph; returns a list of result dicts.
 
     Each contender runs ``repeat`` times in turn and keeps its best time (the usual way to time on
-    a noisy machine, as ``timeit`` does)."""
+    a noisy machine, as ``timeit`` does). With the 'processes' backend (joblib's loky workers), the
+    scaled system and the solver's vectors are memory-mapped files in the run directory, as in the
+    job, and writing the system counts in its setup."""
+    import tempfile
+
     import scipy.sparse as sp
     import scipy.sparse.linalg as spla
     from .kernels import laplacian, sweepcg
     from .rundir import RunDir
     from .stages.graph import load_graph
     from .stages.order import load_split
+    from .stages.solve import work_files
 
     rd = RunDir(rundir)
     W = load_graph(rd, mmap=False)
@@ -110,6 +139,7 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1):
     sweepcg.prepare_from_graph(sp.csr_matrix(np.array([[0.0, 1.0], [1.0, 0.0]])), 1.0, np.ones(2), [0, 1], [0, 2])
     sweepcg.scale_split(split, 1.0, np.ones(split.n)).matvec(np.ones((split.n, 1)))
     out = []
+    pool = None
     for target in lam_degrees:
         lam = target / mean_deg
         row = {"lam_times_mean_degree": target, "lam": lam, "repeat": repeat}
@@ -141,50 +171,58 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1):
             t_local = time.perf_counter() - t0 + t_setup
             row["cg_local_order_seconds"] = min(t_local, row.get("cg_local_order_seconds", np.inf))
             del A, M, x, x0, Ap
-            for w in sorted({1, workers}):
-                # ours: scale the split graph for this lam, then sweep
-                t0 = time.perf_counter()
-                system = sweepcg.scale_split(split, lam, c[perm])
-                t_setup = time.perf_counter() - t0
-                executor = sweepcg.make_executor(w, "threads")
-                t1 = time.perf_counter()
-                res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, executor=executor,
-                                        omega=cfg["solve"]["relaxation"], scale_start=True)
-                t_all = t_setup + time.perf_counter() - t1
-                if executor is not None:
-                    executor.shutdown()
-                if t_all < row.get(f"ours_w{w}_seconds", np.inf):
-                    row.update({f"ours_w{w}_seconds": t_all, f"ours_w{w}_setup_seconds": t_setup,
-                                f"ours_w{w}_sweeps": res.sweeps, f"ours_w{w}_residual": res.final_residual})
-                del system, res
+            for key, w, backend in _contenders(workers, backends):
+                with tempfile.TemporaryDirectory(prefix="race-", dir=rundir) as tmp, contextlib.ExitStack() as st:
+                    alloc = work = None
+                    if backend == "processes":
+                        # as in the job: the scaled system in files beside the run, the vectors in
+                        # shared memory where there is room (bigsmooth.stages.solve.work_files)
+                        def alloc(name, size, dtype):
+                            return np.lib.format.open_memmap(os.path.join(tmp, f"{name}.npy"), mode="w+",
+                                                             dtype=dtype, shape=(size,))
+                        work = st.enter_context(work_files(len(perm), 1, f"race-{os.getpid()}",
+                                                           os.path.join(tmp, "work")))
+                    if backend == "processes":
+                        # one pool of worker processes for the whole race, started untimed; the
+                        # first run also loads the kernels' compiled variants for memory-mapped
+                        # arrays in the workers (the best of the repeats counts)
+                        if pool is None:
+                            pool = sweepcg.make_executor(w, backend)
+                            list(pool.map(_warm_worker, [0.2] * w))
+                        executor = pool
+                    else:
+                        executor = sweepcg.make_executor(w, backend)
+                    # ours: scale the split graph for this lam, then sweep
+                    t0 = time.perf_counter()
+                    system = sweepcg.scale_split(split, lam, c[perm], alloc=alloc)
+                    t_setup = time.perf_counter() - t0
+                    t1 = time.perf_counter()
+                    res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, executor=executor, work=work,
+                                            omega=cfg["solve"]["relaxation"], scale_start=True)
+                    t_all = t_setup + time.perf_counter() - t1
+                    if executor is not None and executor is not pool:
+                        executor.shutdown()
+                    if t_all < row.get(f"ours_{key}_seconds", np.inf):
+                        row.update({f"ours_{key}_seconds": t_all, f"ours_{key}_setup_seconds": t_setup,
+                                    f"ours_{key}_sweeps": res.sweeps, f"ours_{key}_residual": res.final_residual})
+                    del system, res, work
         cg_iter = row["cg_seconds"] - row["cg_setup_seconds"]
-        for w in sorted({1, workers}):
-            row[f"ratio_w{w}"] = row[f"ours_w{w}_seconds"] / row["cg_seconds"]
+        if pool is not None and target == lam_degrees[-1]:
+            pool.shutdown()
+        for key, _, _ in _contenders(workers, backends):
+            row[f"ratio_{key}"] = row[f"ours_{key}_seconds"] / row["cg_seconds"]
             # the same without either side's setup (iterations only), for information
-            row[f"ratio_w{w}_no_setup"] = (row[f"ours_w{w}_seconds"] - row[f"ours_w{w}_setup_seconds"]) / cg_iter
+            row[f"ratio_{key}_no_setup"] = (row[f"ours_{key}_seconds"] - row[f"ours_{key}_setup_seconds"]) / cg_iter
         out.append(row)
     return out
 
 
-def main(argv=None):
-    p = argparse.ArgumentParser(prog="python -m bigsmooth.bench", description=__doc__,
-                                formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--rows", type=int, default=1_000_000, help="demo rows (default 1000000)")
-    p.add_argument("--workers", type=int, default=2, help="solver workers for the job and the race (default 2)")
-    p.add_argument("--dir", default="bench-out", help="work folder (default ./bench-out; reused data if present)")
-    p.add_argument("--json", default=None, help="write the table here (default DIR/bench-<rows>.json)")
-    p.add_argument("--sample", type=int, default=2000, help="rows in the recall sample (default 2000)")
-    p.add_argument("--seed", type=int, default=7)
-    p.add_argument("--no-race", action="store_true", help="skip the solver comparison")
-    p.add_argument("--repeat", type=int, default=3,
-                   help="runs of each solver in the comparison; the best time counts (default 3)")
-    args = p.parse_args(argv)
-
+def _job(args, base):
+    """Generate the data if needed, run the job in a child process, measure recall; the table's
+    job part and the run directory."""
     from . import demo
     from .atomic import read_json
-    from .config import load_config
 
-    base = os.path.abspath(os.path.join(args.dir, f"rows-{args.rows}"))
     data = os.path.join(base, "data", "applicants")
     t0 = time.perf_counter()
     if not os.path.isdir(data):
@@ -203,54 +241,106 @@ def main(argv=None):
         print(proc.stderr, file=sys.stderr)
         raise SystemExit(f"the job failed with exit code {proc.returncode}")
     peak_kb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    cfg = load_config(cfg_path)
-    (run_id,) = os.listdir(os.path.join(base, "runs"))
-    rundir = os.path.join(base, "runs", run_id)
+    rundir = _the_run(base)
     m = read_json(os.path.join(rundir, "manifest.json"))
-    emb = read_json(os.path.join(rundir, "embed", "embed.json"))
     solve = read_json(os.path.join(rundir, "solve", "solve.json"))
     E = np.load(os.path.join(rundir, "embed", "embedding.npy"), mmap_mode="r")
     ind = np.load(os.path.join(rundir, "graph", "neighbours.npy"), mmap_mode="r")
     t0 = time.perf_counter()
     recall = exact_sample_recall(E, ind, args.sample, np.random.default_rng(0))
     t_recall = time.perf_counter() - t0
-    table = {
-        "machine": machine_info(),
-        "rows": args.rows, "feature_columns": len(cfg["input"]["numeric_features"]) + len(cfg["input"]["categorical_features"]),
-        "encoded_features": len(emb["features"]), "fair_space_dim": emb["dim"],
+    return {
         "generate_seconds": t_gen, "job_seconds": t_job,
         "stage_seconds": {k: v.get("seconds") for k, v in m["stages"].items()},
         "peak_rss_gb": peak_kb * 1024 / 1e9, "rss_bytes_per_row": peak_kb * 1024 / args.rows,
         "recall_at_k": recall, "recall_sample": args.sample, "recall_seconds": t_recall,
         "job_solver": {k: solve.get(k) for k in ("method", "status", "sweeps", "final_residual", "workers", "groups")},
-        "workers": args.workers,
-    }
-    if not args.no_race:
-        table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers, args.repeat)
-    out = args.json or os.path.join(args.dir, f"bench-{args.rows}.json")
-    os.makedirs(os.path.dirname(os.path.abspath(out)), exist_ok=True)
-    with open(out, "w") as fh:
-        json.dump(table, fh, indent=2)
+    }, rundir
+
+
+def _the_run(base):
+    runs = os.path.join(base, "runs")
+    found = sorted(os.listdir(runs)) if os.path.isdir(runs) else []
+    if len(found) != 1:
+        raise SystemExit(f"expected one finished run in {runs}, found {len(found)}; run the benchmark without "
+                         "--race-only first")
+    return os.path.join(runs, found[0])
+
+
+def _print(table, args, out):
     print(f"rows {table['rows']:,}  features {table['feature_columns']} columns -> {table['encoded_features']} encoded "
           f"-> {table['fair_space_dim']} fair dims   machine {table['machine']['cores']} cores, "
           f"{table['machine']['memory_gib']} GiB, {table['machine']['cpu']}, caches "
           + ", ".join(f"{k} {v}" for k, v in table["machine"]["caches"].items()))
-    print(f"job {t_job:.1f} s (child process, incl. numba compilation); peak RSS {table['peak_rss_gb']:.2f} GB "
-          f"({table['rss_bytes_per_row']:.0f} B/row)")
-    print("stages: " + ", ".join(f"{k} {v:.1f} s" for k, v in table["stage_seconds"].items() if v is not None))
-    js = table["job_solver"]
-    print(f"job solver: {js['method']} {js['status']} in {js['sweeps']} sweeps, residual {js['final_residual']:.2e}, "
-          f"{js['workers']} workers, {js['groups']} groups")
-    print(f"neighbour recall@k vs exact on {args.sample} rows: {recall:.4f}")
+    if "job_seconds" in table:
+        print(f"job {table['job_seconds']:.1f} s (child process, incl. numba compilation); peak RSS "
+              f"{table['peak_rss_gb']:.2f} GB ({table['rss_bytes_per_row']:.0f} B/row)")
+        print("stages: " + ", ".join(f"{k} {v:.1f} s" for k, v in table["stage_seconds"].items() if v is not None))
+        js = table["job_solver"]
+        print(f"job solver: {js['method']} {js['status']} in {js['sweeps']} sweeps, residual {js['final_residual']:.2e}, "
+              f"{js['workers']} workers, {js['groups']} groups")
+        print(f"neighbour recall@k vs exact on {args.sample} rows: {table['recall_at_k']:.4f}")
     for r in table.get("solver_race", []):
-        cells = [f"best of {r['repeat']}, lam*deg {r['lam_times_mean_degree']:>4}: CG-Jacobi {r['cg_seconds']:.2f} s ({r['cg_iterations']} it, "
-                 f"setup {r['cg_setup_seconds']:.2f} s; {r['cg_local_order_seconds']:.2f} s on our row order)"]
-        for w in sorted({1, args.workers}):
-            cells.append(f"ours w={w} {r[f'ours_w{w}_seconds']:.2f} s ({r[f'ours_w{w}_sweeps']} sweeps, "
-                         f"setup {r[f'ours_w{w}_setup_seconds']:.2f} s) ratio {r[f'ratio_w{w}']:.2f} "
-                         f"({r[f'ratio_w{w}_no_setup']:.2f} without setup)")
-        print("  " + "; ".join(cells))
+        print(f"best of {r['repeat']}, lam*deg {r['lam_times_mean_degree']}: CG-Jacobi {r['cg_seconds']:.2f} s "
+              f"({r['cg_iterations']} it, setup {r['cg_setup_seconds']:.2f} s; {r['cg_local_order_seconds']:.2f} s "
+              "on our row order)")
+        for key, w, backend in _contenders(args.workers, args.backends):
+            print(f"  ours {w} worker{'s' if w > 1 else ''}{' (' + backend + ')' if w > 1 else ''}: "
+                  f"{r[f'ours_{key}_seconds']:.2f} s ({r[f'ours_{key}_sweeps']} sweeps, setup "
+                  f"{r[f'ours_{key}_setup_seconds']:.2f} s)  ratio {r[f'ratio_{key}']:.2f} "
+                  f"({r[f'ratio_{key}_no_setup']:.2f} without setup)")
     print(f"table written to {out}")
+
+
+def main(argv=None):
+    p = argparse.ArgumentParser(prog="python -m bigsmooth.bench", description=__doc__,
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--rows", type=int, default=1_000_000, help="demo rows (default 1000000)")
+    p.add_argument("--workers", type=int, default=2, help="solver workers for the job and the race (default 2)")
+    p.add_argument("--dir", default="bench-out", help="work folder (default ./bench-out; reused data if present)")
+    p.add_argument("--json", default=None, help="write the table here (default DIR/bench-<rows>.json)")
+    p.add_argument("--sample", type=int, default=2000, help="rows in the recall sample (default 2000)")
+    p.add_argument("--seed", type=int, default=7)
+    p.add_argument("--no-race", action="store_true", help="skip the solver comparison")
+    p.add_argument("--race-only", action="store_true",
+                   help="only the solver comparison, on the finished run an earlier benchmark left in DIR")
+    p.add_argument("--backends", default="threads,processes",
+                   help="comma-separated worker backends raced with --workers workers: threads (the job's "
+                        "default) and/or processes (joblib's loky workers over memmaps); default both")
+    p.add_argument("--repeat", type=int, default=3,
+                   help="runs of each solver in the comparison; the best time counts (default 3)")
+    args = p.parse_args(argv)
+    args.backends = [b.strip() for b in args.backends.split(",") if b.strip()]
+    bad = sorted(set(args.backends) - {"threads", "processes"})
+    if bad or not args.backends:
+        p.error(f"--backends takes threads and/or processes; got {','.join(bad) or 'nothing'}")
+    if args.race_only and args.no_race:
+        p.error("--race-only and --no-race exclude each other")
+
+    from .atomic import read_json
+    from .config import load_config
+
+    base = os.path.abspath(os.path.join(args.dir, f"rows-{args.rows}"))
+    if args.race_only:
+        part, rundir = {}, _the_run(base)
+    else:
+        part, rundir = _job(args, base)
+    cfg = load_config(os.path.join(base, "bigsmooth.toml"))
+    emb = read_json(os.path.join(rundir, "embed", "embed.json"))
+    table = {
+        "machine": machine_info(),
+        "rows": args.rows, "feature_columns": len(cfg["input"]["numeric_features"]) + len(cfg["input"]["categorical_features"]),
+        "encoded_features": len(emb["features"]), "fair_space_dim": emb["dim"],
+        **part,
+        "workers": args.workers, "backends": args.backends,
+    }
+    if not args.no_race:
+        table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers, args.repeat, args.backends)
+    out = args.json or os.path.join(args.dir, f"bench-{args.rows}{'-race' if args.race_only else ''}.json")
+    os.makedirs(os.path.dirname(os.path.abspath(out)), exist_ok=True)
+    with open(out, "w") as fh:
+        json.dump(table, fh, indent=2)
+    _print(table, args, out)
 
 
 if __name__ == "__main__":

@@ -67,6 +67,19 @@ def test_fewer_sweeps_than_jacobi_with_local_groups(rng):
     assert grouped.sweeps < jacobi.sweeps
 
 
+def _mapped(system, folder):
+    """The system with its triplets as read-only memmaps of .npy files in ``folder``."""
+    folder.mkdir(exist_ok=True)
+    parts = {}
+    for part in ("L", "U", "O"):
+        arrs = []
+        for i, arr in enumerate(getattr(system, part)):
+            np.save(folder / f"{part}{i}.npy", arr)
+            arrs.append(np.load(folder / f"{part}{i}.npy", mmap_mode="r"))
+        parts[part] = tuple(arrs)
+    return sweepcg.Grouped(system.s, system.bounds, parts["L"], parts["U"], parts["O"])
+
+
 @pytest.mark.parametrize("backend", ["threads", "processes"])
 def test_bit_identical_for_one_and_two_workers(rng, tmp_path, backend):
     _, Y, A, b = _system(rng, n=2000, density=0.004, cols=2)
@@ -76,18 +89,56 @@ def test_bit_identical_for_one_and_two_workers(rng, tmp_path, backend):
     def mm(name, shape):
         return np.lib.format.open_memmap(str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape)
 
-    parts = {}
-    for part in ("L", "U", "O"):
-        arrs = []
-        for i, arr in enumerate(getattr(system, part)):
-            np.save(tmp_path / f"{part}{i}.npy", arr)
-            arrs.append(np.load(tmp_path / f"{part}{i}.npy", mmap_mode="r"))
-        parts[part] = tuple(arrs)
-    shared = sweepcg.Grouped(system.s, system.bounds, parts["L"], parts["U"], parts["O"])
+    shared = _mapped(system, tmp_path / "sys")
     two = sweepcg.sweep_cg(shared, b, x0=Y, tol=1e-10, executor=sweepcg.make_executor(2, backend),
                            work=sweepcg.Work.allocate(2000, 2, mm))
     assert two.sweeps == serial.sweeps
     assert np.array_equal(two.x, serial.x)
+
+
+def test_process_workers_follow_files_replaced_under_the_same_name(rng, tmp_path):
+    # the workers keep files mapped between tasks; a system written again to the same file names
+    # (in place, same size: np.save truncates the same file; or removed and written with another
+    # size) must be read afresh: each solve agrees with spsolve and with the serial solve, bit for bit
+    pool = sweepcg.make_executor(2, "processes")
+    try:
+        for n, lam in ((800, 4.0), (800, 9.0), (1100, 4.0)):
+            W = random_graph(n, 0.01, rng)
+            Y = rng.random((n, 1))
+            A, c = laplacian.system(W, lam, "unnormalised")
+            system = sweepcg.prepare(A, [0, n // 3, n // 2, n])
+            if n == 1100:
+                import shutil
+
+                shutil.rmtree(tmp_path / "sys")
+            shared = _mapped(system, tmp_path / "sys")
+            work = sweepcg.Work.allocate(n, 1, lambda name, shape: np.lib.format.open_memmap(
+                str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
+            two = sweepcg.sweep_cg(shared, c[:, None] * Y, tol=1e-10, executor=pool, work=work)
+            serial = sweepcg.sweep_cg(system, c[:, None] * Y, tol=1e-10)
+            assert np.array_equal(two.x, serial.x)
+            np.testing.assert_allclose(two.x, reference(W, Y, lam, "unnormalised"), atol=1e-8)
+    finally:
+        pool.shutdown()
+
+
+def test_process_pool_deals_groups_by_size():
+    # one task per worker, groups dealt largest first to the least loaded worker (LPT rule)
+    class Fake(sweepcg.ProcessPool):
+        def __init__(self):
+            self.workers = 2
+            self.sent = []
+
+            class Ex:
+                def map(_, fn, fns, batches):
+                    self.sent = [[args[0] for args in batch] for batch in batches]
+                    return [[a[0] * 10 for a in batch] for batch in batches]
+            self._ex = Ex()
+
+    pool = Fake()
+    out = sweepcg._map(pool, None, [(0,), (1,), (2,), (3,)], order=[1, 0, 2, 3], sizes=[270, 355, 202, 173])
+    assert out == [0, 10, 20, 30]
+    assert pool.sent == [[1, 3], [0, 2]]
 
 
 def test_resume_from_state_is_bit_identical(rng):
@@ -253,3 +304,25 @@ def test_scaled_start_is_no_farther_than_zero_and_converges(rng):
     system = sweepcg.prepare(A, [0, 123, 350, 500])
     res = sweepcg.sweep_cg(system, b, x0=Y, tol=1e-12, max_sweeps=2000, scale_start=True)
     np.testing.assert_allclose(res.x, xstar, atol=1e-8)
+
+
+def test_process_work_vectors_go_to_shared_memory_and_are_removed(tmp_path, monkeypatch):
+    from bigsmooth.stages import solve
+
+    shm = tmp_path / "shm"
+    shm.mkdir()
+    monkeypatch.setattr(solve, "SHM", str(shm))
+    (shm / "bigsmooth-k").mkdir()                           # left by a killed run
+    (shm / "bigsmooth-k" / "x.npy").write_bytes(b"stale")
+    with solve.work_files(100, 2, "k", str(tmp_path / "fallback")) as work:
+        assert work.x.shape == (100, 2) and isinstance(work.x, np.memmap)
+        assert work.x.filename.startswith(str(shm / "bigsmooth-k")) and not work.x.any()
+    assert not (shm / "bigsmooth-k").exists()               # removed afterwards
+    # no room in shared memory (six vectors, twice over): the fallback folder in the run directory
+    class Full:
+        f_bavail, f_frsize = 1, 4096
+
+    monkeypatch.setattr(solve.os, "statvfs", lambda path: Full())
+    with solve.work_files(100, 2, "k", str(tmp_path / "fallback")) as work:
+        assert work.x.filename.startswith(str(tmp_path / "fallback"))
+    assert (tmp_path / "fallback" / "x.npy").exists() and not (shm / "bigsmooth-k").exists()

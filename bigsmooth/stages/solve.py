@@ -12,6 +12,7 @@ The result is written in input row order. The checkpoint (iterate and solver sta
 atomically after every ``solve.checkpoint_every`` sweeps; a run that is started again continues
 from it and reaches the same bits as an uninterrupted run.
 """
+import contextlib
 import logging
 import os
 
@@ -120,14 +121,58 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
 
     system = sweepcg.scale_split(split, s["lam"], cvec[perm], alloc=alloc)
     bounds = split.bounds
-    if s["backend"] == "processes":
-        # process workers map the vectors from the run directory as well
-        workdir = os.path.join(d, "work")
-        os.makedirs(workdir, exist_ok=True)
-        work = sweepcg.Work.allocate(n, c, lambda name, shape: np.lib.format.open_memmap(
-            os.path.join(workdir, f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
-    else:
-        work = sweepcg.Work.allocate(n, c)
+    with contextlib.ExitStack() as stack:
+        if s["backend"] == "processes":
+            # process workers map the solver's vectors as files too
+            work = stack.enter_context(work_files(n, c, _shm_key(rundir.path), os.path.join(d, "work")))
+        else:
+            work = sweepcg.Work.allocate(n, c)
+        return _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
+
+
+SHM = "/dev/shm"
+
+
+def _shm_key(path):
+    """The run directory's name and a hash of its full path (two run roots may hold the same run id)."""
+    import hashlib
+
+    path = os.path.abspath(path)
+    return f"{os.path.basename(path)}-{hashlib.sha256(path.encode()).hexdigest()[:8]}"
+
+
+@contextlib.contextmanager
+def work_files(n, c, key, fallback):
+    """The solver's vectors as memory-mapped files for process workers: in shared memory
+    (``/dev/shm/bigsmooth-<key>``) when it has room for them twice over, else in ``fallback``.
+    New pages of a file on disk cost a block allocation at their first write (measured here on
+    ext4 at 1M rows: about 95 ms for the first sweep's four vectors, against 21 ms for the sweep),
+    and the vectors are scratch (the checkpoint is written separately), so shared memory is the
+    place for them. The shared-memory folder is removed afterwards (and, if a killed run left
+    one, before)."""
+    import shutil
+
+    need = 6 * n * c * 8
+    folder = fallback
+    try:
+        st = os.statvfs(SHM)
+        if st.f_bavail * st.f_frsize >= 2 * need:
+            folder = os.path.join(SHM, f"bigsmooth-{key}")
+    except OSError:
+        pass
+    if folder != fallback:
+        shutil.rmtree(folder, ignore_errors=True)
+    os.makedirs(folder, exist_ok=True)
+    try:
+        yield sweepcg.Work.allocate(n, c, lambda name, shape: np.lib.format.open_memmap(
+            os.path.join(folder, f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
+    finally:
+        if folder != fallback:
+            shutil.rmtree(folder, ignore_errors=True)
+
+
+def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work):
+    n, c = b.shape
     ck = load_checkpoint(ck_path)
     state = None
     if ck is not None and ck.get("method") is not None and str(ck["method"]) == "sweep-cg":
