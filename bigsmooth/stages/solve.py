@@ -203,7 +203,8 @@ def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
                                omega=s["relaxation"], scale_start=cold, executor=executor, work=work,
                                state=state, on_sweep=on_sweep)
     finally:
-        if executor is not None and s["backend"] == "threads":
+        # process workers too: they keep the vectors' files mapped, so their memory goes with them
+        if executor is not None:
             executor.shutdown()
     info = {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
             "true_residual_checks": [list(ch) for ch in res.checks], "final_residual": res.final_residual,
