@@ -113,9 +113,9 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
     """Our solver vs scipy CG (Jacobi) on the job's graph; returns a list of result dicts.
 
     Each contender runs ``repeat`` times in turn and keeps its best time (the usual way to time on
-    a noisy machine, as ``timeit`` does). With the 'processes' backend (joblib's loky workers), the
-    scaled system and the solver's vectors are memory-mapped files in the run directory, as in the
-    job, and writing the system counts in its setup."""
+    a noisy machine, as ``timeit`` does). With the 'processes' backend (joblib's loky workers), as in
+    the job, the scaled system is written to memory-mapped files beside the run (counted in its
+    setup) and the solver's vectors go to :func:`bigsmooth.stages.solve.work_files`."""
     import tempfile
 
     import scipy.sparse as sp
@@ -182,10 +182,8 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
                                                              dtype=dtype, shape=(size,))
                         work = st.enter_context(work_files(len(perm), 1, f"race-{os.getpid()}",
                                                            os.path.join(tmp, "work")))
-                    if backend == "processes":
-                        # one pool of worker processes for the whole race, started untimed; the
-                        # first run also loads the kernels' compiled variants for memory-mapped
-                        # arrays in the workers (the best of the repeats counts)
+                        # one pool of worker processes for the whole race, started untimed; a new
+                        # worker's first solve is slower (the best of the repeats counts)
                         if pool is None:
                             pool = sweepcg.make_executor(w, backend)
                             list(pool.map(_warm_worker, [0.2] * w))
@@ -207,13 +205,13 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
                                     f"ours_{key}_sweeps": res.sweeps, f"ours_{key}_residual": res.final_residual})
                     del system, res, work
         cg_iter = row["cg_seconds"] - row["cg_setup_seconds"]
-        if pool is not None and target == lam_degrees[-1]:
-            pool.shutdown()
         for key, _, _ in _contenders(workers, backends):
             row[f"ratio_{key}"] = row[f"ours_{key}_seconds"] / row["cg_seconds"]
             # the same without either side's setup (iterations only), for information
             row[f"ratio_{key}_no_setup"] = (row[f"ours_{key}_seconds"] - row[f"ours_{key}_setup_seconds"]) / cg_iter
         out.append(row)
+    if pool is not None:
+        pool.shutdown()
     return out
 
 

@@ -330,23 +330,7 @@ def _resolve(a):
         if len(_MAPPED) >= _MAPPED_MAX:
             del _MAPPED[next(iter(_MAPPED))]
         m = _MAPPED[a] = np.memmap(a.path, dtype=np.dtype(a.dtype), mode=a.mode, offset=a.offset, shape=a.shape)
-        _populate(m, write=a.mode != "r")
     return m
-
-
-MADV_POPULATE_READ, MADV_POPULATE_WRITE = 22, 23    # Linux >= 5.14 (include/uapi/asm-generic/mman-common.h)
-
-
-def _populate(m, write):
-    """Map all pages of ``m`` in one call instead of one page fault at a time (a no-op where the
-    kernel does not know the advice)."""
-    mm = getattr(m, "_mmap", None)
-    if mm is None:
-        return
-    try:
-        mm.madvise(MADV_POPULATE_WRITE if write else MADV_POPULATE_READ)
-    except (OSError, ValueError, AttributeError):
-        pass
 
 
 def _call_mapped(fn, args):
@@ -389,9 +373,6 @@ class ProcessPool:
             for j, r in zip(b, res):
                 out[j] = r
         return out
-
-    def submit(self, fn, *args):
-        return self._ex.submit(_call_mapped, fn, _handle(tuple(args)))
 
     def shutdown(self, wait=True):
         self._ex.shutdown(wait=wait)

@@ -150,9 +150,10 @@ def work_files(n, c, key, fallback):
     and the vectors are scratch (the checkpoint is written separately), so shared memory is the
     place for them. The shared-memory folder is removed afterwards (and, if a killed run left
     one, before)."""
+    import dataclasses
     import shutil
 
-    need = 6 * n * c * 8
+    need = len(dataclasses.fields(sweepcg.Work)) * n * c * 8
     folder = fallback
     try:
         st = os.statvfs(SHM)
