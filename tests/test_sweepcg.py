@@ -123,7 +123,8 @@ def test_process_workers_follow_files_replaced_under_the_same_name(rng, tmp_path
 
 
 def test_process_pool_deals_groups_by_size():
-    # one task per worker, groups dealt largest first to the least loaded worker (LPT rule)
+    # one task per worker, groups dealt largest first to the least loaded worker: the longest-
+    # processing-time rule of list scheduling (R. L. Graham, 1969; cited from memory)
     class Fake(sweepcg.ProcessPool):
         def __init__(self):
             self.workers = 2
