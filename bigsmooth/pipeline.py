@@ -79,7 +79,7 @@ def _handle_input_change(cfg, chash, fp, rid):
 def _check_gates(rd, cfg, before_publish):
     """Raise GateError if an audit gate failed: before publishing when gates.on_fail = "hold" (nothing
     is published; last night's output stays current), after it when "publish"."""
-    failed = [g for g in read_json(rd.file("audit", "audit.json")).get("gates", []) if not g["passed"]]
+    failed = [g for g in read_json(rd.file("audit", "audit.json")).get("gates", []) if g["state"] == "failed"]
     if not failed or (before_publish and cfg["gates"]["on_fail"] == "publish"):
         return
     lines = "\n  ".join(g["line"] for g in failed)

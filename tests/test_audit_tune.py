@@ -24,16 +24,16 @@ def test_a_failed_gate_holds_the_output_back(tmp_path):
     cfg = _write_case(tmp_path, _small_table(800, seed=2))
     assert cli("run", str(cfg)).returncode == 0
     night1 = os.readlink(tmp_path / "out" / "current")
-    strict = cfg.read_text().replace("lam = 1.0", "lam = 3.0") + "\n[gates]\nmin_consistency = 0.9999\n"
+    strict = cfg.read_text().replace("lam = 1.0", "lam = 3.0") + "\n[gates]\nmin_neighbour_consistency = 0.9999\n"
     cfg.write_text(strict)
     res = cli("run", str(cfg))
     assert res.returncode == EXIT_GATE, res.stderr[-2000:]
-    assert "1 audit gate(s) failed" in res.stderr and "consistency after" in res.stderr
+    assert "1 audit gate(s) failed" in res.stderr and "neighbour consistency after" in res.stderr
     assert "nothing was published" in res.stderr
     assert os.readlink(tmp_path / "out" / "current") == night1
     again = cli("run", str(cfg))                    # still held: the same answer, nothing published
     assert again.returncode == EXIT_GATE and os.readlink(tmp_path / "out" / "current") == night1
-    cfg.write_text(strict.replace("min_consistency = 0.9999", 'min_consistency = 0.9999\non_fail = "publish"'))
+    cfg.write_text(strict.replace("min_neighbour_consistency = 0.9999", 'min_neighbour_consistency = 0.9999\non_fail = "publish"'))
     res = cli("run", str(cfg))
     assert res.returncode == EXIT_GATE and "published anyway" in res.stderr
     assert os.readlink(tmp_path / "out" / "current") != night1
@@ -96,7 +96,7 @@ def test_multiclass_scores_stay_on_the_simplex(tmp_path):
     a = json.loads((tmp_path / "out" / "current" / "_audit.json").read_text())
     assert set(a["scores"]) == {"p_low", "p_mid", "p_high"}
     am = a["argmax"]
-    assert 0 <= am["changed_rate"] <= 1 and am["consistency"]["after"] >= am["consistency"]["before"]
+    assert 0 <= am["changed_rate"] <= 1 and am["neighbour_consistency"]["after"] >= am["neighbour_consistency"]["before"]
 
 
 def test_report_renders_in_headless_chromium(tmp_path):
@@ -132,7 +132,7 @@ def test_a_second_score_column_is_audited_side_by_side(tmp_path):
     assert res.returncode == 0, res.stderr[-2000:]
     a = json.loads((tmp_path / "out" / "current" / "_audit.json").read_text())
     c = a["compare"]["retrained_score"]
-    assert {"consistency", "auc", "gap_over_sd", "decisions_differing_from_adjusted"} <= set(c)
+    assert {"neighbour_consistency", "auc", "gap_over_sd", "decisions_differing_from_adjusted"} <= set(c)
     assert "compared: retrained_score" in (tmp_path / "out" / "current" / "_report.html").read_text()
     assert "retrained_score_adjusted" not in read_output(tmp_path / "out").column_names
 

@@ -158,23 +158,75 @@ def test_random_graph_control_matches_an_explicit_solve(rng):
     assert np.allclose(np.asarray(M.sum(axis=1)).ravel(), R.degree)
     W = sp.csr_matrix(M)       # a "real" graph with the same shape: 6 entries of 0.5 per row
     y = rng.random(300)
-    got = random_graph_control(W, y, 2.0, "unnormalised", 1e-12, np.random.default_rng(1))
     expect = spsolve((sp.identity(300) + 2.0 * cs_laplacian(M)).tocsc(), y)
+    # asked for the spread of the lam = 2 solution, the control starts at lam = 2 and stops there
+    got, rec = random_graph_control(W, y, 2.0, "unnormalised", 1e-12, np.random.default_rng(1), target_sd=expect.std())
+    assert rec["strength"] == 2.0 and rec["matched"]
     assert np.allclose(got, expect, atol=1e-9)
 
 
-def test_counterfactual_update_reproduces_the_solution(rng):
-    # with y_cf = y the counterfactual update must give back the exact solution f = spsolve(A, C y)
-    # (scipy.sparse.linalg.spsolve), for both Laplacians: it is the solved system's own row equation
+def test_random_graph_control_is_matched_in_spread(rng):
+    # the control's strength is searched so that its sd equals the target within 1%; its result is
+    # the exact solve at the strength it reports (scipy spsolve on I + t L, L from csgraph.laplacian)
+    from scipy.sparse.csgraph import laplacian as cs_laplacian
     from scipy.sparse.linalg import spsolve
 
-    from bigsmooth.kernels import laplacian
+    from bigsmooth.stages.audit import RandomRegularGraph, random_graph_control
+
+    M = RandomRegularGraph(400, 4, 0.7, np.random.default_rng(2)).matrix()
+    y = rng.random(400)
+    for target in (0.5 * y.std(), 0.1 * y.std(), 0.9 * y.std()):
+        got, rec = random_graph_control(sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2),
+                                        target_sd=target)
+        assert rec["matched"] and abs(got.std() - target) <= 0.01 * target
+        expect = spsolve((sp.identity(400) + rec["strength"] * cs_laplacian(M)).tocsc(), y)
+        assert np.allclose(got, expect, atol=1e-7)
+    # a spread the smoothing cannot reach (above the raw scores') is reported as not matched
+    _, rec = random_graph_control(sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2),
+                                  target_sd=2 * y.std())
+    assert not rec["matched"]
+
+
+def test_self_influence_equals_the_dense_inverse_diagonal(rng):
+    # G_ii = diag((C + lam L)^-1 C), against numpy.linalg.inv on small random graphs, both
+    # Laplacians, weak and strong smoothing; rows restricted to a ball cap are lower bounds
+    from bigsmooth.kernels import influence, laplacian
+
+    for kind in ("unnormalised", "random_walk"):
+        for lam in (0.3, 3.0, 30.0):
+            W = laplacian.as_weight_matrix(random_graph(150, 0.04, rng))
+            A, c = laplacian.system(W, lam, kind)
+            expect = np.diag(np.linalg.inv(A.toarray()) @ np.diag(c))
+            g, step, capped = influence.self_influence(A, c, np.arange(150), tol=1e-10)
+            assert not capped.any() and np.allclose(g, expect, rtol=1e-7, atol=1e-9), (kind, lam)
+            g_cap, _, capped = influence.self_influence(A, c, np.arange(150), tol=1e-10, max_ball=20)
+            assert capped.any() and np.all(g_cap <= expect + 1e-12)       # the M-matrix bound
+
+
+def test_counterfactual_after_is_the_exact_single_row_rerun(rng):
+    # for each row, rerunning the solve (scipy.sparse.linalg.spsolve) with only that row's raw score
+    # replaced by its counterfactual gives the adjusted score the audit uses; with y_cf = y nothing moves
+    from scipy.sparse.linalg import spsolve
+
+    from bigsmooth.kernels import laplacian, metrics
     from bigsmooth.stages.audit import counterfactual_figures
 
-    W = laplacian.as_weight_matrix(random_graph(200, 0.05, rng))
-    y = rng.random(200)
+    W = laplacian.as_weight_matrix(random_graph(120, 0.06, rng))
+    y = rng.random(120)
+    ycf = np.clip(y + rng.normal(0, 0.2, 120), 0, 1)
     for kind in ("unnormalised", "random_walk"):
         A, c = laplacian.system(W, 3.0, kind)
         f = spsolve(A.tocsc(), c * y)
-        got = counterfactual_figures(W, y, f, y.copy(), {"laplacian": kind, "lam": 3.0}, 0.3)
-        assert got["same_decision_after"] == 1.0 and got["mean_abs_gap_after"] < 1e-12
+        rerun = np.empty(120)
+        for i in range(120):
+            y2 = y.copy()
+            y2[i] = ycf[i]
+            rerun[i] = spsolve(A.tocsc(), c * y2)[i]
+        cut = metrics.quantile_cutoff(f, 0.3)
+        s = {"laplacian": kind, "lam": 3.0}
+        got = counterfactual_figures(W, y, f, ycf, s, 0.3, np.arange(120), tol=1e-12)
+        assert got["all_rows"] and got["rows_evaluated"] == 120
+        assert np.isclose(got["same_decision_after"], np.mean((f >= cut) == (rerun >= cut)))
+        assert np.isclose(got["mean_abs_gap_after"], np.mean(np.abs(f - rerun)), atol=1e-10)
+        same = counterfactual_figures(W, y, f, y.copy(), s, 0.3, np.arange(120), tol=1e-12)
+        assert same["same_decision_after"] == 1.0 and same["mean_abs_gap_after"] < 1e-12

@@ -6,12 +6,16 @@ inputs predicts wage > 100 (thousand dollars). Its out-of-fold scores (5 stratif
 through bigsmooth's command line with race as the protected attribute, k = 10, lam = 1.
 
 Reference figures, measured outside this project with exact neighbours and a direct solve on the
-same setup (given in the project's issue 5): consistency at a quantile cutoff 0.886 -> 0.970,
-|gap/sd| 0.30 -> 0.09, AUC change -0.2%. Our pipeline differs in details (its own fair space and
-heat-kernel weights), so the test asserts the direction and size class of each change, not the
-digits: a clear consistency gain, a smaller |gap/sd|, an AUC drop within 1% (the common-practice
-budget), and neither control (shrinkage toward the mean, a random graph of the same degree)
-reaching the real gain.
+same setup (given in the project's issue 5; not re-derived here): counterfactual consistency at a
+quantile cutoff (the same decision for a worker's score and for the score with race set to
+"1. White") 0.886 -> 0.970, |gap/sd| 0.30 -> 0.09, AUC change -0.2%. Our pipeline differs in
+details (its own fair space and heat-kernel weights, and the reference's model is not ours), so the
+test compares like with like, the counterfactual figure with the counterfactual figure (ours after
+smoothing is the exact single-row rerun), and asserts the direction and size class of each change,
+not the digits: a gain in counterfactual and neighbour consistency, a smaller |gap/sd|, an AUC drop
+within 1% (the common-practice budget), neither control (shrinkage toward the mean, a random graph
+of the same degree and spread) reaching the real gain, and no leakage warning (race is not
+recoverable from the fair-space neighbours here).
 """
 import json
 
@@ -79,25 +83,27 @@ def test_wage_smoothing_gains_consistency_within_the_auc_budget(tmp_path):
                    tmp_path / "pairs.parquet")
     text = text.replace('counterfactual_score = "score_if_white"',
                         'counterfactual_score = "score_if_white"\npairs = "pairs.parquet"')
+    text = text.replace("select_rate = 0.3", "select_rate = 0.3\ncounterfactual_rows = 3000")   # all rows
     (tmp_path / "job.toml").write_text(text)
     res = cli("run", str(tmp_path / "job.toml"))
     assert res.returncode == 0, res.stderr[-3000:]
     a = json.loads((tmp_path / "out" / "current" / "_audit.json").read_text())
     b, f = a["scores"]["score"]["before"], a["scores"]["score"]["after"]
-    gain = f["consistency"] - b["consistency"]
-    assert gain >= 0.025, (b["consistency"], f["consistency"])         # reference: +0.084 (ours: +0.036)
+    gain = f["neighbour_consistency"] - b["neighbour_consistency"]
+    assert gain >= 0.025, (b["neighbour_consistency"], f["neighbour_consistency"])
     gs = a["groups"]["race"]["gap_over_sd"]
     assert abs(gs["after"]) < abs(gs["before"])                          # reference: 0.30 -> 0.09
     assert (b["auc"] - f["auc"]) / b["auc"] <= 0.01                      # reference: -0.2%
     for name, c in a["controls"].items():
-        assert c["consistency"] - b["consistency"] < 0.5 * gain, name    # the controls do not reach it
+        assert c["neighbour_consistency"] - b["neighbour_consistency"] < 0.5 * gain, name  # controls do not reach it
     # the printed summary names the figures a reviewer reads first
-    assert "consistency of decisions" in res.stdout and "gate max_auc_drop: passed" in res.stdout
+    assert "neighbour consistency of decisions" in res.stdout and "gate max_auc_drop: passed" in res.stdout
     pr = a["pairs"]
     assert pr["pairs_found"] == pr["pairs"] > 20, pr
     assert pr["same_decision_after"] >= pr["same_decision_before"] and pr["mean_abs_gap_after"] < pr["mean_abs_gap_before"]
-    cf = a["counterfactual"]        # decisions that do not depend on race, before and after
-    assert cf["same_decision_after"] > cf["same_decision_before"], cf
+    cf = a["counterfactual"]        # decisions that do not depend on race: reference 0.886 -> 0.970
+    assert cf["all_rows"] and cf["same_decision_after"] > cf["same_decision_before"], cf
+    assert not [w for w in a["warnings"] if w.startswith("leakage")], a["warnings"]
     assert cf["mean_abs_gap_after"] < cf["mean_abs_gap_before"]
     page = (tmp_path / "out" / "current" / "_report.html").read_text()
     assert "<h2>Cautions</h2>" in page and "data:image/png;base64," in page

@@ -123,3 +123,37 @@ def same_group_share(codes, neighbours, rows=None):
     same = float(np.mean(codes[neighbours] == own[:, None]))
     share = np.bincount(codes[codes >= 0]) / max(1, int((codes >= 0).sum()))
     return same, float(np.sum(share ** 2))
+
+
+def neighbour_vote_auc(codes, neighbours, rows, level):
+    """AUC of the neighbour vote for one protected level: each row in ``rows`` is scored by the share
+    of its neighbours (``neighbours[q]`` belongs to ``rows[q]``) that are in ``level``, and the score
+    is compared with whether the row itself is in it. A nonlinear probe of what the graph sees: 0.5
+    when neighbours are blind to the attribute, 1 when they always share it."""
+    codes = np.asarray(codes)
+    vote = np.mean(codes[neighbours] == level, axis=1)
+    return roc_auc(codes[rows] == level, vote)
+
+
+def pair_differences(fi, fj, dist, constant, zero_tol=1e-9):
+    """Lipschitz check over pairs with their fair-space distances, pairs at distance 0 kept apart.
+
+    Returns counts to be summed over chunks: ``pairs``, ``positive`` (pairs at d > 0), ``violations``
+    (of those, |f_i - f_j| > constant * d), ``zero`` (pairs at d = 0, i.e. rows identical in the fair
+    space), ``zero_differing`` (of those, |f_i - f_j| > zero_tol) and ``zero_abs_sum`` (sum of their
+    |f_i - f_j|)."""
+    diff = np.abs(np.asarray(fi, dtype=np.float64) - np.asarray(fj, dtype=np.float64))
+    d = np.asarray(dist, dtype=np.float64)
+    z = d == 0
+    return {"pairs": int(d.size), "positive": int(np.sum(~z)), "violations": int(np.sum(diff[~z] > constant * d[~z])),
+            "zero": int(np.sum(z)), "zero_differing": int(np.sum(diff[z] > zero_tol)),
+            "zero_abs_sum": float(np.sum(diff[z]))}
+
+
+def lipschitz_summary(counts):
+    """Rates from summed :func:`pair_differences` counts."""
+    zero = counts["zero"]
+    return {"rate": counts["violations"] / counts["positive"] if counts["positive"] else 0.0,
+            "zero_distance_share": zero / counts["pairs"] if counts["pairs"] else 0.0,
+            "zero_distance_differing": counts["zero_differing"] / zero if zero else 0.0,
+            "zero_distance_mean_abs_difference": counts["zero_abs_sum"] / zero if zero else 0.0}

@@ -8,7 +8,7 @@
 
 The version folder is built under a hidden staging name and renamed when complete, so readers of
 ``current`` see last night's output until the new one is whole. The version's name is recorded in
-the run directory (publish/pending.json) before anything is written: a run killed after the rename
+the run directory (publish/pending.json) by the audit, before anything is written: a run killed after the rename
 reuses its complete version folder and only moves the pointers; one killed before it rebuilds the
 folder. Leftover staging folders (the job holds the output lock, so they belong to dead runs) are
 removed first.
@@ -18,13 +18,12 @@ import json
 import logging
 import os
 import shutil
-import time
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .. import atomic, faults
+from .. import atomic, faults, provenance
 from ..errors import OutputError
 from ..table import batch_rows_for
 
@@ -38,7 +37,7 @@ def output_columns(inp, out):
     return cols
 
 
-def _write_file(src_path, dst_path, cols, inp, out, Y, F, lo, hi, offset, batch_rows):
+def _write_file(src_path, dst_path, cols, inp, out, Y, F, lo, hi, offset, batch_rows, meta):
     pf = pq.ParquetFile(src_path)
     present = set(pf.schema_arrow.names)
     read = [c for c in cols if c in present]
@@ -53,6 +52,7 @@ def _write_file(src_path, dst_path, cols, inp, out, Y, F, lo, hi, offset, batch_
                 arrays[c + out["suffix"]] = pa.array(adj)
                 arrays[c + "_change"] = pa.array(adj - Y[pos:pos + b, j])
             t = pa.table(arrays)
+            t = t.replace_schema_metadata(meta)
             if writer is None:
                 writer = pq.ParquetWriter(dst_path, t.schema)
             writer.write_table(t)
@@ -87,16 +87,23 @@ def _move_pointers(root, version, run_id, rows):
     atomic.fsync_dir(root)
 
 
+def _refresh_audit(rundir, cfg, fp, version):
+    """The provenance as of publishing: the status follows the current gates.on_fail (which is not part
+    of the run identity), and the report is drawn again so that it shows it (and any tuning done since
+    the audit). Returns the provenance record."""
+    from . import report as html_report
+
+    audit = atomic.read_json(rundir.file("audit", "audit.json"))
+    audit["provenance"] = provenance.record(rundir.load(), cfg, fp, version, audit["gates"])
+    atomic.write_json(rundir.file("audit", "audit.json"), audit)
+    html_report.write(rundir, cfg, audit)
+    return audit["provenance"]
+
+
 def run(rundir, cfg, fp, run_id):
     inp, out = cfg["input"], cfg["output"]
     root = out["path"]
-    pending = rundir.file("publish", "pending.json")
-    if os.path.exists(pending):
-        version = atomic.read_json(pending)["version"]
-    else:
-        version = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime()) + "-" + run_id[:8]
-        rundir.stage_dir("publish")
-        atomic.write_json(pending, {"version": version})
+    version = provenance.version_name(rundir, run_id)
     staging = os.path.join(root, f".staging-{version}")
     final = os.path.join(root, version)
     try:
@@ -112,6 +119,7 @@ def run(rundir, cfg, fp, run_id):
     F = np.load(rundir.file("solve", "adjusted.npy"), mmap_mode="r")
     lo, hi = inp["score_range"]
     cols = output_columns(inp, out)
+    meta = {provenance.PARQUET_KEY: json.dumps(_refresh_audit(rundir, cfg, fp, version), sort_keys=True).encode()}
     batch_rows = cfg["embed"]["batch_rows"] or batch_rows_for(cfg["run"]["memory_mb"], len(cols) + 2 * len(inp["scores"]))
     try:
         os.makedirs(staging, exist_ok=False)
@@ -123,7 +131,7 @@ def run(rundir, cfg, fp, run_id):
             rel = os.path.relpath(e["path"], fp["root"])
             dst = os.path.join(staging, rel)
             os.makedirs(os.path.dirname(dst), exist_ok=True)
-            got = _write_file(e["path"], dst, cols, inp, out, Y, F, lo, hi, e["offset"], batch_rows)
+            got = _write_file(e["path"], dst, cols, inp, out, Y, F, lo, hi, e["offset"], batch_rows, meta)
             if got != e["rows"]:
                 raise RuntimeError(f"{e['path']}: wrote {got} rows, the footer says {e['rows']}")
             written += got

@@ -1,9 +1,15 @@
 """The audit as one self-contained HTML page (plots embedded as PNG data URIs; opens offline).
 
-Sections: summary (what changed, gates, warnings), the figures before / after beside the two
-controls, score distributions by group, the histogram of changes, the group tables, the tuning
-trade-off when ``bigsmooth tune`` has run for this run, and the cautions. matplotlib draws with
-the Agg backend (no display needed).
+Order of the page: status banner (PUBLISHED / HELD) with a one-line caution, where the figures come
+from (provenance), how to read the page, the summary with the gates and warnings, the figures before
+and after beside the controls (each with its definition and which direction is better), groups
+(four-fifths ratio before and after, decisions changed by group), leakage, score distributions for
+every protected attribute, the changes and the largest of them, the solver record, the tuning
+trade-off when ``bigsmooth tune`` has run for this run, and the full cautions (once).
+
+Every value from the data or the config passes through :func:`html.escape`. matplotlib draws with
+the Agg backend (no display needed). :func:`write` reads what it needs from the run directory, so
+``bigsmooth report RUN_DIR`` can draw the page again (for instance after tuning).
 """
 import base64
 import html
@@ -12,10 +18,49 @@ import os
 
 import numpy as np
 
-from .. import atomic
+from .. import atomic, provenance
 
-FIGURE_ROWS = ("consistency", "neighbour_disagreement", "lipschitz_violations_local", "lipschitz_violations_global",
-               "auc", "accuracy_at_cutoff", "balanced_accuracy_at_cutoff", "brier", "log_loss", "sd", "cutoff")
+# (key, label, definition, which direction is better)
+FIGURES = (
+    ("neighbour_consistency", "Neighbour consistency of decisions (fair space)",
+     "1 - mean over rows of |d_i - mean of d over the row's k nearest neighbours in the fair space|, "
+     "d = selected at the cutoff", "higher"),
+    ("neighbour_disagreement", "Neighbour disagreement",
+     "sum of w_ij (f_i - f_j)^2 over graph edges / sum of w_ij", "lower"),
+    ("lipschitz_violations_local", "Lipschitz violations, neighbour pairs",
+     "share of neighbour pairs at distance d > 0 with |f_i - f_j| > L d", "lower"),
+    ("lipschitz_violations_global", "Lipschitz violations, random pairs",
+     "share of random pairs at distance d > 0 with |f_i - f_j| > L d", "lower"),
+    ("zero_distance_pairs_differing", "Identical neighbours with different scores",
+     "share of neighbour pairs at distance 0 (identical in the fair space) whose scores differ", "lower"),
+    ("zero_distance_mean_abs_difference", "Identical neighbours: mean |difference|",
+     "mean |f_i - f_j| over neighbour pairs at distance 0", "lower"),
+    ("auc", "AUC on labelled rows", "probability that a random positive outscores a random negative", "higher"),
+    ("accuracy_at_cutoff", "Accuracy at the cutoff", "share of labelled rows whose decision equals the label",
+     "higher"),
+    ("balanced_accuracy_at_cutoff", "Balanced accuracy at the cutoff",
+     "mean of the true positive and true negative rates", "higher"),
+    ("brier", "Brier score", "mean (score - label)^2", "lower"),
+    ("log_loss", "Log loss", "mean negative log-likelihood of the labels", "lower"),
+    ("sd", "Spread (sd) of scores", "standard deviation over all rows; the controls are matched to it",
+     "(context)"),
+    ("cutoff", "Cutoff", "score at or above which the top share of rows is selected", "(context)"),
+)
+SCALE_DEPENDENT = {"neighbour_disagreement", "lipschitz_violations_local", "lipschitz_violations_global",
+                   "zero_distance_mean_abs_difference", "brier", "log_loss", "sd"}
+
+ARROW = "&rarr;"
+FOUR_FIFTHS_CAUTION = ("The four-fifths rule (29 CFR 1607.4(D)) is a US employment-selection rule of thumb, not "
+                       "the legal test in every domain or country.")
+PROTECTED_CAUTION = ("Processing protected attributes needs its own lawful basis and a data-protection review.")
+FLIP_CAUTION = ("People whose decision flips may need notice, an explanation or human review.")
+CAUTIONS = (
+    "Post-processing changes decisions about people. These figures describe what the smoothing did to this "
+    "table; they are no proof of legal compliance. Defer to local law, your compliance function and counsel.",
+    FOUR_FIFTHS_CAUTION, PROTECTED_CAUTION, FLIP_CAUTION,
+    "The protected attributes are used only to define what the similarity measure must ignore and to audit "
+    "the result; they are not used to set anyone's score.",
+)
 
 
 def _png(fig):
@@ -27,7 +72,7 @@ def _png(fig):
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode()
 
 
-def _plots(report, Y, F, codes, scan, protected):
+def _plots(report, Y, F, codes, levels, protected):
     import matplotlib
 
     matplotlib.use("Agg")
@@ -36,126 +81,267 @@ def _plots(report, Y, F, codes, scan, protected):
     out = {}
     y, f = Y[:, 0], F[:, 0]
     bins = np.linspace(min(y.min(), f.min()), max(y.max(), f.max()), 41)
-    if protected:
-        col = protected[0]
-        levels = [v for v, _ in scan["levels"][col]]
-        fig, axes = plt.subplots(1, 2, figsize=(10, 3.4), sharey=True)
+    for j, col in enumerate(protected):
+        fig, axes = plt.subplots(1, 2, figsize=(10, 3.2), sharey=True)
         for ax, s, title in ((axes[0], y, "before"), (axes[1], f, "after")):
-            for code, lv in enumerate(levels):
-                m = codes[:, 0] == code
+            for code, lv in enumerate(levels[col]):
+                m = codes[:, j] == code
                 if m.sum() >= report.get("min_group_rows", 10):
                     ax.hist(s[m], bins=bins, histtype="step", density=True, label=str(lv))
             ax.set_title(f"{report['decision_score']} {title}, by {col}")
             ax.set_xlabel("score")
         axes[0].set_ylabel("density")
-        axes[1].legend(fontsize=8)
-        out["distributions"] = _png(fig)
+        axes[1].legend(fontsize=8, title=col)
+        out[f"distributions:{col}"] = _png(fig)
     counts, edges = (np.asarray(v) for v in report["change"]["histogram"])
     fig, ax = plt.subplots(figsize=(6, 3))
     ax.bar(edges[:-1], counts, width=np.diff(edges), align="edge")
     ax.set_xlabel("adjusted - raw score")
     ax.set_ylabel("rows")
-    ax.set_title("changes")
+    ax.set_title("Change of each row's score")
     out["changes"] = _png(fig)
     return out
 
 
-def _table(header, rows):
-    h = "".join(f"<th>{html.escape(str(c))}</th>" for c in header)
-    body = "".join("<tr>" + "".join(f"<td>{html.escape(_fmt(c))}</td>" for c in r) + "</tr>" for r in rows)
-    return f"<table><tr>{h}</tr>{body}</table>"
-
-
-def _fmt(v):
-    if isinstance(v, float):
-        return f"{v:.4g}" if np.isfinite(v) else "-"
+def fmt(v):
+    """The page's one number format: integers with thousands separators, other numbers to 4 decimals
+    (scientific below 0.001), '-' for a missing value."""
+    if isinstance(v, bool) or v is None:
+        return "-" if v is None else ("yes" if v else "no")
+    if isinstance(v, (int, np.integer)):
+        return f"{int(v):,}"
+    if isinstance(v, (float, np.floating)):
+        if not np.isfinite(v):
+            return "-"
+        return f"{v:.3e}" if v != 0 and abs(v) < 1e-3 else f"{v:.4f}"
     return str(v)
 
 
-def render(report, plots, tune=None):
+def pct(v):
+    return f"{100 * v:.2f}%" if v is not None and np.isfinite(v) else "-"
+
+
+def _table(header, rows, cls=""):
+    h = "".join(f"<th>{html.escape(str(c))}</th>" for c in header)
+    body = "".join("<tr>" + "".join(f"<td>{c if isinstance(c, _Raw) else html.escape(fmt(c))}</td>" for c in r)
+                   + "</tr>" for r in rows)
+    return f"<table class='{cls}'><tr>{h}</tr>{body}</table>"
+
+
+class _Raw(str):
+    """Already-escaped HTML for a table cell."""
+
+
+def _caution(text):
+    return f"<p class='caution'>&#9888; {html.escape(text)}</p>"
+
+
+def render(report, plots, tune=None, applied_lam=None):
     """The page as a string."""
     e = html.escape
+    prov = report.get("provenance") or {}
     s = report["scores"][report["decision_score"]]
     b, a = s["before"], s["after"]
     gates = report.get("gates", [])
-    failed = [g for g in gates if not g["passed"]]
-    parts = [f"<h1>bigsmooth audit: {report['rows']:,} rows</h1>",
-             "<section id='summary'><h2>Summary</h2><ul>",
-             f"<li>Decisions: the top {report['select_rate']:.0%} by {e(report['decision_score'])} are selected, "
-             f"before and after alike; {report['decisions']['changed']:,} decisions changed "
-             f"({report['decisions']['changed_rate']:.2%}).</li>",
-             f"<li>Consistency of decisions among neighbours {b['consistency']:.4f} &rarr; {a['consistency']:.4f}.</li>"]
+    held = prov.get("status") == "held"
+    parts = [f"<div class='banner {'held' if held else 'ok'}'>{e(provenance.banner(prov)) if prov else ''}</div>",
+             f"<p class='oneline'>{e(CAUTIONS[0].split('. ')[0])}; this page is no proof of legal compliance "
+             "(full cautions at the end).</p>"]
+    if report.get("note"):
+        parts.append(f"<p class='note'>{e(report['note'])}</p>")
+    parts.append(f"<h1>bigsmooth audit: {report['rows']:,} rows</h1>")
+    if prov:
+        rows = [["status", prov["status"] + (f" (failed: {', '.join(prov['failed_gates'])})" if prov["failed_gates"] else "")],
+                ["output version", prov["output_version"] or "none (held)"], ["output folder", prov["output_path"]],
+                ["run id", prov["run_id"]], ["written (UTC)", prov["written_utc"]],
+                ["bigsmooth version", prov["bigsmooth_version"]], ["config", prov["config_path"]],
+                ["config file sha256", prov["config_file_sha256"]], ["settings hash", prov["settings_hash"]],
+                ["input", prov["input_path"]], ["input rows / files", f"{prov['input_rows']:,} / {prov['input_files']:,}"],
+                ["input fingerprint", prov["input_fingerprint"]], ["score column(s)", ", ".join(prov["score_columns"])],
+                ["lam applied", f"{prov['lam']:g}"], ["Laplacian", prov["laplacian"]], ["neighbours k", prov["neighbours"]]]
+        parts += ["<section id='provenance'><h2>Where these figures come from</h2>",
+                  _table(["", ""], rows, "prov"), "</section>"]
+    parts += ["<section id='howto'><h2>How to read this page</h2><ul>",
+              f"<li>Decisions: the top {report['select_rate']:.0%} of rows by {e(report['decision_score'])} are "
+              "selected, before (raw scores) and after (adjusted scores) alike, so shrinking every score toward "
+              "the mean cannot change a decision by itself.</li>",
+              f"<li>Each figure reads before {ARROW} after; the column 'better' says which direction is better.</li>",
+              "<li>The controls show what the figures would say without the neighbour graph: a real gain is one "
+              "the controls do not reach.</li>",
+              "<li>Gates are checks that hold the output back when they fail; a gate that is off is shown as off "
+              "and never counts as passed.</li></ul></section>"]
+    d = report["decisions"]
+    summ = [f"<li>Decisions changed at the cutoff: {d['changed']:,} ({pct(d['changed_rate'])}); newly selected "
+            f"{d['newly_selected']:,}, newly not selected {d['newly_not_selected']:,}.</li>",
+            f"<li>Neighbour consistency of decisions in the fair space {fmt(b['neighbour_consistency'])} {ARROW} "
+            f"{fmt(a['neighbour_consistency'])} (higher is better).</li>"]
     if "auc" in b:
-        parts.append(f"<li>AUC on {b['labelled_rows']:,} labelled rows {b['auc']:.4f} &rarr; {a['auc']:.4f}.</li>")
+        summ.append(f"<li>AUC on {b['labelled_rows']:,} labelled rows {fmt(b['auc'])} {ARROW} {fmt(a['auc'])} "
+                    f"(change {(a['auc'] - b['auc']):+.4f}).</li>")
     cf = report.get("counterfactual")
     if cf:
-        parts.append(f"<li>Counterfactual consistency (same decision for the row and its counterfactual score) "
-                     f"{cf['same_decision_before']:.4f} &rarr; {cf['same_decision_after']:.4f}.</li>")
+        scope = "all rows" if cf["all_rows"] else f"a seeded sample of {cf['rows_evaluated']:,} rows"
+        summ.append(f"<li>Counterfactual consistency (same decision for the row and for the model's score with "
+                    f"its protected attributes changed) {fmt(cf['same_decision_before'])} {ARROW} "
+                    f"{fmt(cf['same_decision_after'])} on {scope}; 'after' is the exact result of rerunning the "
+                    f"job with only that row's score changed (self-influence G_ii by local solves, tolerance "
+                    f"{cf['self_influence_tolerance']:g}). Before, over all rows: "
+                    f"{fmt(cf['same_decision_before_all_rows'])}.</li>")
     pr = report.get("pairs")
     if pr:
-        parts.append(f"<li>Comparable pairs ({pr['pairs_found']:,} of {pr['pairs']:,} found): same decision "
-                     f"{pr['same_decision_before']:.4f} &rarr; {pr['same_decision_after']:.4f}.</li>")
-    parts.append(f"<li>Gates: {'all passed' if not failed else 'FAILED: ' + ', '.join(g['gate'] for g in failed)}.</li>")
-    parts += [f"<li>{e(g['line'])}: {'passed' if g['passed'] else '<b>failed</b>'}</li>" for g in gates]
-    parts += [f"<li class='warn'>Warning: {e(w)}</li>" for w in report.get("warnings", [])]
-    parts.append("</ul></section>")
+        summ.append(f"<li>Comparable pairs ({pr['pairs_found']:,} of {pr['pairs']:,} found): same decision "
+                    f"{fmt(pr['same_decision_before'])} {ARROW} {fmt(pr['same_decision_after'])}.</li>")
+    from .audit import gates_line
+
+    summ.append(f"<li>Gates: {e(gates_line(gates))}.</li><li><ul>")
+    summ += [f"<li class='gate {g['state']}'><b>{e(g['state'].upper() if g['state'] == 'failed' else g['state'])}"
+             f"</b> {e(g['gate'])}: {e(g['line'])}</li>" for g in gates]
+    summ.append("</ul></li>")
+    summ += [f"<li class='warn'>Warning: {e(w)}</li>" for w in report.get("warnings", [])]
+    parts += ["<section id='summary'><h2>Summary</h2><ul>", *summ, "</ul>", _caution(FLIP_CAUTION), "</section>"]
+
     ctrl = report.get("controls", {})
     other = report.get("compare", {})
-    header = ["figure", "before", "after"] + [f"control: {k}" for k in ctrl] + [f"compared: {k}" for k in other]
-    rows = [[k, b.get(k, float("nan")), a.get(k, float("nan"))] + [c.get(k, float("nan")) for c in ctrl.values()]
-            + [c.get(k, float("nan")) for c in other.values()] for k in FIGURE_ROWS if k in b]
+    header = ["figure", "definition", "better", "before", "after"] + [f"control: {k}" for k in ctrl] + \
+        [f"compared: {k}" for k in other]
+    rows = []
+    for key, label, definition, better in FIGURES:
+        if key not in b:
+            continue
+        row = [label, definition, better, b.get(key), a.get(key)]
+        for c in ctrl.values():
+            v = c.get(key)
+            row.append(_Raw(e(fmt(v)) + " <i>(not comparable)</i>") if key in SCALE_DEPENDENT and not
+                       c.get("spread_matched", True) else v)
+        row += [c.get(key) for c in other.values()]
+        rows.append(row)
+    for col in report["groups"]:
+        row = [f"Group gap / sd: {col}", "largest minus smallest group mean, over the sd of all scores", "lower",
+               report["groups"][col]["gap_over_sd"]["before"], report["groups"][col]["gap_over_sd"]["after"]]
+        row += [c.get("gap_over_sd", {}).get(col) for c in ctrl.values()]
+        row += [c.get("gap_over_sd", {}).get(col) for c in other.values()]
+        rows.append(row)
+    cm = report.get("control_matching", {})
+    matching = "; ".join(f"{k}: sd {fmt(v['sd'])}" + (f", strength {v['strength']:.4g}" if "strength" in v else "")
+                         + ("" if v["matched"] else " (NOT matched)") for k, v in cm.items())
     parts += ["<section id='figures'><h2>Before, after and the controls</h2>",
-              "<p>The controls show what the figures would say without the neighbour graph: shrinking every score "
-              "toward the mean by the same spread reduction (decisions at a quantile cutoff do not move), and "
-              "smoothing with the same strength on a random graph of the same degree. A real gain is one the "
-              "controls do not reach.</p>", _table(header, rows),
-              f"<p>Lipschitz constant L = {report['lipschitz_constant']:.4g} ({e(report['lipschitz_constant_source'])}).</p>",
-              "</section>"]
-    if "distributions" in plots:
-        parts.append(f"<section id='distributions'><h2>Score distributions by group</h2><img alt='distributions' src='{plots['distributions']}'></section>")
-    parts.append(f"<section id='changes'><h2>Changes</h2><img alt='changes' src='{plots['changes']}'>")
-    parts.append(_table(["id", "before", "after"], [[c["id"], c["before"][0], c["after"][0]] for c in report["largest_changes"]]))
-    parts.append("</section><section id='groups'><h2>Groups</h2>")
+              "<p>Controls: shrinking every score toward the mean by the same spread reduction (decisions at a "
+              "quantile cutoff do not move), and smoothing on a random graph of the same degree whose strength "
+              f"is chosen so that its spread (sd) equals the result's. {e(matching)}.</p>",
+              _table(header, rows, "figs"),
+              f"<p>Lipschitz constant L = {report['lipschitz_constant']:.4g} "
+              f"({e(report['lipschitz_constant_source'])}). Pairs at fair-space distance 0 are kept out of the "
+              "violation rates and shown on their own rows.</p>", "</section>"]
+
+    parts.append("<section id='groups'><h2>Groups</h2>")
     for col, g in report["groups"].items():
         after = {r["group"]: r for r in g["after"]}
+        changed = {r["group"]: r for r in g.get("decisions_changed_by_group", [])}
         rows = []
         for r in g["before"]:
             if r["suppressed"]:
-                rows.append([r["group"], r["count"], "suppressed", "", "", "", ""])
+                rows.append([r["group"], r["count"], "suppressed", "", "", "", "", "", ""])
                 continue
             q = after[r["group"]]
-            rows.append([r["group"], r["count"], r["mean_score"], q["mean_score"], r["selection_rate"], q["selection_rate"],
-                         f"{q['ratio_to_highest']:.3f}" + (" below 4/5" if q["below_four_fifths"] else "")])
+            ch = changed.get(r["group"], {})
+            flag = lambda x: _Raw(e(fmt(x["ratio_to_highest"])) + (" <b>below 4/5</b>" if x["below_four_fifths"] else ""))
+            rows.append([r["group"], r["count"], r["mean_score"], q["mean_score"], pct(r["selection_rate"]),
+                         pct(q["selection_rate"]), flag(r), flag(q), pct(ch.get("decisions_changed_rate"))])
         gs = g["gap_over_sd"]
-        parts += [f"<h3>{e(col)}</h3>", _table(["group", "rows", "mean before", "mean after", "selected before",
-                                                "selected after", "ratio to highest after"], rows),
-                  f"<p>gap/sd {gs['before']:.3f} &rarr; {gs['after']:.3f}; same-group neighbours "
-                  f"{g['same_group_neighbours']:.1%} (random mixing {g['same_group_if_random']:.1%}). Groups under "
-                  f"the configured size are suppressed. Four-fifths rule: 29 CFR 1607.4(D).</p>"]
+        parts += [f"<h3>{e(col)}</h3>",
+                  _table(["group", "rows", "mean score before", "mean score after", "selected before",
+                          "selected after", "four-fifths ratio before", "four-fifths ratio after",
+                          "decisions changed"], rows),
+                  f"<p>Group gap / sd {fmt(gs['before'])} {ARROW} {fmt(gs['after'])}. The four-fifths ratio is the "
+                  "group's selection rate over the highest group's; below 0.8 is flagged. Groups under "
+                  f"{report.get('min_group_rows', 10)} rows are suppressed.</p>"]
+    parts += [_caution(FOUR_FIFTHS_CAUTION), "</section>"]
+
+    lk = report.get("leakage", {})
+    if lk:
+        rows = []
+        for col, v in lk.get("neighbour_vote", {}).items():
+            lin = lk.get("linear_probe", {}).get(col, {}).get("levels", {})
+            for lv, auc in v["levels"].items():
+                rows.append([col, lv, lin.get(lv, {}).get("features_auc"), lin.get(lv, {}).get("fair_space_auc"), auc])
+        parts += ["<section id='leakage'><h2>Leakage: can the fair space still tell the groups apart?</h2>",
+                  "<p>AUC of predicting each protected level (0.5 = no better than chance; higher is worse). The linear "
+                  "probe is a least-squares fit on a sample; the fair space is built to defeat it, so it reads near "
+                  "0.5 by construction. The neighbour vote scores each row by the share of its fair-space neighbours "
+                  "in the level: a nonlinear probe of what the graph itself uses. A warning is raised above "
+                  f"{lk.get('warn_above_auc', float('nan')):.2f} (embed.leakage_warn_auc), on "
+                  f"{lk.get('probe_rows', 0):,} sampled rows.</p>",
+                  _table(["attribute", "level", "linear probe: raw features", "linear probe: fair space",
+                          "neighbour vote: fair space"], rows), _caution(PROTECTED_CAUTION), "</section>"]
+
+    parts.append("<section id='distributions'><h2>Score distributions by group</h2>")
+    parts += [f"<img alt='score distributions by {e(k.split(':', 1)[1])}' src='{v}'>" for k, v in plots.items()
+              if k.startswith("distributions:")]
     parts.append("</section>")
+    parts.append(f"<section id='changes'><h2>Changes</h2><img alt='changes' src='{plots['changes']}'>")
+    q = report["change"]["quantiles_abs"]
+    parts.append(f"<p>|change|: median {fmt(q['0.5'])}, 90th percentile {fmt(q['0.9'])}, 99th {fmt(q['0.99'])}, "
+                 f"largest {fmt(q['1.0'])}; mean {fmt(report['change']['mean_abs'])}.</p>")
+    big = report["largest_changes"]
+    if big:
+        cols = list(big[0].get("groups", {}))
+        dec = lambda v: "selected" if v else "not selected"
+        rows = [[_Raw(e(str(c["id"]))), c["before"][0], c["after"][0], c["after"][0] - c["before"][0],
+                 f"{dec(c['decision_before'])} {chr(8594)} {dec(c['decision_after'])}"
+                 if "decision_before" in c else "", "yes" if c.get("decision_before") != c.get("decision_after") else "no"]
+                + [c["groups"][k] for k in cols] for c in big]
+        parts += ["<h3>Largest changes</h3>",
+                  _table(["id", "before", "after", "change", "decision", "flipped"] + cols, rows)]
+    parts += [_caution(FLIP_CAUTION), "</section>"]
+
+    sv = report.get("solver", {})
+    if sv:
+        parts += ["<section id='solver'><h2>Solver record</h2>",
+                  _table(["method", "Laplacian", "lam", "status", "sweeps", "final relative residual"],
+                         [[sv["method"], sv["laplacian"], f"{sv['lam']:g}", sv["status"], sv["sweeps"],
+                           f"{sv['final_residual']:.3e}"]]), "</section>"]
     if tune:
+        rec = tune.get("recommended")
         parts += ["<section id='tuning'><h2>Tuning</h2>",
-                  f"<img alt='trade-off' src='{plots['tradeoff']}'>" if "tradeoff" in plots else "",
-                  _table(["lam", "sweeps", "AUC", "AUC drop", "consistency"],
-                         [[r["lam"], r["sweeps"], r["auc"], r["auc_drop"], r["consistency"]] for r in tune["path"]]),
-                  f"<p>Recommended lam: {e(str(tune.get('recommended')))}.</p></section>"]
-    parts += ["<section id='cautions'><h2>Cautions</h2>", f"<p>{e(report['caution'])}</p>",
-              "<p>The protected attributes are used only to define what the similarity measure must ignore; they "
-              "are not used to set anyone's score.</p></section>"]
-    style = ("body{font-family:sans-serif;max-width:1100px;margin:2em auto;color:#222}table{border-collapse:collapse;"
-             "margin:.5em 0}td,th{border:1px solid #bbb;padding:3px 8px;text-align:right}th{background:#eee}"
-             ".warn{color:#a40}img{max-width:100%}")
-    return (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>bigsmooth audit</title>"
-            f"<style>{style}</style></head><body>{''.join(parts)}</body></html>\n")
+                  f"<p><b>Applied lam {applied_lam:g}; recommended lam "
+                  f"{'none (no lam kept the AUC within budget)' if rec is None else f'{rec:g}'}</b> "
+                  f"(best neighbour consistency with an AUC drop within {pct(tune['auc_drop_budget'])}, on "
+                  f"{tune['tuning_rows']:,} labelled rows; {tune['holdout_rows']:,} held out).</p>"]
+        parts += [f"<p class='warn'>Warning: {e(w)}</p>" for w in tune.get("warnings", [])]
+        parts.append(f"<img alt='trade-off' src='{plots['tradeoff']}'>" if "tradeoff" in plots else "")
+        hold = tune["holdout_rows"] > 0
+        rows = [[f"{r['lam']:g}", r["sweeps"], r["auc"], r.get("auc_change", -r["auc_drop"]), r["consistency"]]
+                + ([r["holdout_auc"], r["holdout_consistency"]] if hold else []) for r in tune["path"]]
+        parts += [_table(["lam", "sweeps", "AUC", "AUC change (relative)", "neighbour consistency"]
+                         + (["hold-out AUC", "hold-out consistency"] if hold else []), rows), "</section>"]
+    parts += ["<section id='cautions'><h2>Cautions</h2><ul>", *[f"<li>{e(c)}</li>" for c in CAUTIONS],
+              "</ul></section>"]
+    style = ("body{font-family:sans-serif;max-width:1150px;margin:1.5em auto;color:#222}table{border-collapse:collapse;"
+             "margin:.5em 0}td,th{border:1px solid #bbb;padding:3px 8px;text-align:right;vertical-align:top}"
+             "th{background:#eee}table.figs td:nth-child(2){text-align:left;font-size:85%;color:#555;max-width:22em}"
+             "table.figs td:first-child,table.prov td{text-align:left}.warn{color:#a40}img{max-width:100%}"
+             ".banner{font-size:1.3em;font-weight:bold;padding:.6em 1em;border-radius:4px}"
+             ".banner.ok{background:#e3f4e3;border:1px solid #6a6}.banner.held{background:#fbe3e0;border:1px solid #c44}"
+             ".oneline,.caution{font-size:90%;color:#555}.note{font-weight:bold;color:#345}"
+             ".gate.failed{color:#b00}.gate.off{color:#777}")
+    return (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>bigsmooth audit "
+            f"{e(prov.get('run_id', ''))}</title><style>{style}</style></head><body>{''.join(parts)}</body></html>\n")
 
 
-def write(rundir, cfg, report, Y, F, codes, scan):
+def write(rundir, cfg, report):
+    """Draw the page for ``report`` from the arrays of the run directory and write audit/report.html."""
+    Y = np.load(rundir.file("embed", "scores.npy"), mmap_mode="r")
+    F = np.load(rundir.file("solve", "adjusted.npy"), mmap_mode="r")
+    codes = np.load(rundir.file("embed", "protected.npy"), mmap_mode="r")
+    scan = atomic.read_json(rundir.file("scan", "scan.json"))
+    protected = cfg["input"]["protected"]
+    levels = {c: [v for v, _ in scan["levels"][c]] for c in protected}
     tune_path = rundir.file("tune", "tune.json")
     tune = atomic.read_json(tune_path) if os.path.exists(tune_path) else None
-    plots = _plots({**report, "min_group_rows": cfg["audit"]["min_group_rows"]}, Y, F, codes, scan,
-                   cfg["input"]["protected"])
+    plots = _plots(report, np.asarray(Y), np.asarray(F), np.asarray(codes), levels, protected)
     png = rundir.file("tune", "tradeoff.png")
     if tune and os.path.exists(png):
         with open(png, "rb") as fh:      # drawn by bigsmooth.tune
             plots["tradeoff"] = "data:image/png;base64," + base64.b64encode(fh.read()).decode()
-    atomic.write_bytes(os.path.join(rundir.stage_dir("audit"), "report.html"), render(report, plots, tune).encode())
+    page = render({**report, "note": cfg["audit"]["report_note"]}, plots, tune, applied_lam=cfg["solve"]["lam"])
+    atomic.write_bytes(rundir.file("audit", "report.html"), page.encode())

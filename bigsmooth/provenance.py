@@ -1,0 +1,76 @@
+"""Where an artifact came from: one record carried by the audit JSON, the report and every
+published Parquet file (key ``bigsmooth.provenance`` of the file's key/value metadata).
+
+The output version's name is chosen once per run, before the audit is written, and kept in the run
+directory (publish/pending.json), so the audit, the report and the published files all name the
+same version folder, also after an interruption.
+"""
+import hashlib
+import os
+import time
+
+from . import __version__, atomic
+
+PARQUET_KEY = b"bigsmooth.provenance"
+
+
+def version_name(rundir, run_id):
+    """The output version folder of this run: chosen on first call, then read back."""
+    pending = rundir.file("publish", "pending.json")
+    if os.path.exists(pending):
+        return atomic.read_json(pending)["version"]
+    version = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime()) + "-" + run_id[:8]
+    rundir.stage_dir("publish")
+    atomic.write_json(pending, {"version": version})
+    return version
+
+
+def file_sha256(path):
+    with open(path, "rb") as fh:
+        return hashlib.sha256(fh.read()).hexdigest()
+
+
+def status_of(gates, on_fail):
+    """("published" | "held", the failed gates) for a list of gate records."""
+    failed = [g["gate"] for g in gates if g["state"] == "failed"]
+    return ("held" if failed and on_fail == "hold" else "published"), failed
+
+
+def record(manifest, cfg, fp, version, gates):
+    """The provenance record of a run's audit and output."""
+    status, failed = status_of(gates, cfg["gates"]["on_fail"])
+    cfg_path = manifest.get("config_path", "")
+    try:
+        cfg_sha = file_sha256(cfg_path)
+    except OSError:
+        cfg_sha = ""
+    return {
+        "written_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "bigsmooth_version": __version__,
+        "run_id": manifest["run_id"],
+        "config_path": cfg_path,
+        "config_file_sha256": cfg_sha,
+        "settings_hash": manifest["config_hash"],
+        "input_path": cfg["input"]["path"],
+        "input_rows": int(fp["rows"]),
+        "input_files": len(fp["files"]),
+        "input_fingerprint": fp["hash"],
+        "score_columns": list(cfg["input"]["scores"]),
+        "lam": cfg["solve"]["lam"],
+        "laplacian": cfg["solve"]["laplacian"],
+        "neighbours": cfg["graph"]["neighbours"],
+        "output_path": cfg["output"]["path"],
+        "output_version": version if status == "published" else None,
+        "status": status,
+        "failed_gates": failed,
+    }
+
+
+def banner(prov):
+    """One line: PUBLISHED or HELD, with the failed gates."""
+    if prov["status"] == "held":
+        return f"HELD: gate(s) {', '.join(prov['failed_gates'])} failed; nothing was published"
+    if prov["failed_gates"]:
+        return (f"PUBLISHED as {prov['output_version']} although gate(s) {', '.join(prov['failed_gates'])} "
+                "failed (gates.on_fail = \"publish\")")
+    return f"PUBLISHED as {prov['output_version']}"
