@@ -59,14 +59,27 @@ def build_parser():
                                    "last) and print AUC, its drop and the consistency of decisions on the "
                                    "labelled rows; recommends the lam with the best consistency whose AUC drop "
                                    "is within the budget. Saves tune/tune.json and tune/tradeoff.png in the run "
-                                   "directory; the run's audit report then shows the trade-off. To keep some "
-                                   "labelled rows out of the choice, use --holdout.")
+                                   "directory. The next `bigsmooth run` that publishes shows the trade-off in its "
+                                   "report (applied lam, recommended lam); for a run that has already finished, "
+                                   "`bigsmooth report RUN_DIR` draws the report again. By default 20%% of the "
+                                   "labelled rows are held out of the choice and reported separately.")
     t.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
     t.add_argument("--lams", default=None, help="comma-separated lam values (default 0.1,0.3,1,3,10,30)")
     t.add_argument("--max-auc-drop", type=float, default=None,
                    help="AUC drop budget, relative (default gates.max_auc_drop, 0.01 = 1%%)")
-    t.add_argument("--holdout", type=float, default=0.0,
-                   help="share of labelled rows kept out of the choice and reported separately (default 0)")
+    t.add_argument("--holdout", type=float, default=0.2,
+                   help="share of labelled rows kept out of the choice and reported separately (default 0.2; "
+                        "0 uses every labelled row for the choice)")
+
+    rp = sub.add_parser("report", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+                        help="draw the HTML audit report of a run directory again (e.g. after tuning)",
+                        description="Draw RUN_DIR/audit/report.html again from the run's audit and arrays, with "
+                                    "the tuning trade-off when `bigsmooth tune` has run since. Reads the config "
+                                    "the run was made with (its path is in the manifest) unless --config is "
+                                    "given. A published version folder is never changed: its _report.html stays "
+                                    "as it was published.")
+    rp.add_argument("run_dir", metavar="RUN_DIR")
+    rp.add_argument("--config", default=None, help="config file to read instead of the one in the manifest")
 
     s = sub.add_parser("status", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                        help="show the stages, timings and solver record of a run directory",
@@ -150,6 +163,24 @@ def cmd_tune(args):
     return EXIT_OK
 
 
+def cmd_report(args):
+    from . import atomic
+    from .config import load_config
+    from .errors import InputMissingError
+    from .rundir import RunDir
+    from .stages import report
+
+    rd = RunDir(args.run_dir)
+    if not rd.exists():
+        raise InputMissingError(f"{args.run_dir} is not a run directory (no manifest.json)")
+    if not os.path.exists(rd.file("audit", "audit.json")):
+        raise InputMissingError(f"{args.run_dir} has no audit yet (the audit stage has not finished); run the job first")
+    cfg = load_config(args.config or rd.load()["config_path"])
+    report.write(rd, cfg, atomic.read_json(rd.file("audit", "audit.json")))
+    print(f"report: {rd.file('audit', 'report.html')}")
+    return EXIT_OK
+
+
 def cmd_status(args):
     from .atomic import read_json
 
@@ -199,7 +230,8 @@ def main(argv=None):
         return EXIT_USAGE
     _setup_logging(args.quiet)
     try:
-        return {"run": cmd_run, "demo": cmd_demo, "tune": cmd_tune, "status": cmd_status}[args.command](args)
+        return {"run": cmd_run, "demo": cmd_demo, "tune": cmd_tune, "status": cmd_status,
+                "report": cmd_report}[args.command](args)
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)
         return exc.exit_code if exc.exit_code != EXIT_SOFTWARE else EXIT_USAGE

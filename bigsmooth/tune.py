@@ -10,8 +10,9 @@ best consistency whose AUC drop is within the budget (default gates.max_auc_drop
 common practice). With ``--holdout F`` a share F of the labelled rows (chosen by a seeded draw) is
 kept out of the choice and the recommended lam is reported on them as well.
 
-Writes ``<run dir>/tune/tune.json`` and ``tune/tradeoff.png``; a later audit of the run shows the
-trade-off in its report.
+Writes ``<run dir>/tune/tune.json`` and ``tune/tradeoff.png``. The next ``bigsmooth run`` that publishes
+draws the report again with the trade-off in it ("applied lam X; recommended lam Y"); for a run that
+has already finished, ``bigsmooth report RUN_DIR`` draws it again.
 """
 import logging
 import os
@@ -79,17 +80,26 @@ def tune_run(rd, cfg, lams, budget, holdout):
         F = np.empty_like(res.x)
         F[perm] = res.x
         auc, cons = figures(F, use, nb_use)
-        row = {"lam": lam, "sweeps": res.sweeps, "status": res.status, "auc": auc,
-               "auc_drop": (auc0 - auc) / auc0 if auc0 > 0 else 0.0, "consistency": cons}
+        drop = (auc0 - auc) / auc0 if auc0 > 0 else 0.0
+        row = {"lam": lam, "sweeps": res.sweeps, "status": res.status, "auc": auc, "auc_drop": drop,
+               "auc_change": -drop, "consistency": cons}
         if holdout > 0:
             hrows = np.flatnonzero(held)
             row["holdout_auc"], row["holdout_consistency"] = figures(F, hrows, np.asarray(nb[hrows]))
         path.append(row)
-        log.info("lam %g: %d sweeps, AUC %.4f (drop %.2f%%), consistency %.4f", lam, res.sweeps, auc,
-                 100 * row["auc_drop"], cons)
+        log.info("lam %g: %d sweeps, AUC %.4f (change %+.2f%%), neighbour consistency %.4f", lam, res.sweeps, auc,
+                 100 * row["auc_change"], cons)
     rec = recommend(path, budget)
+    warnings = []
+    if rec is not None and len(path) > 1 and rec in (path[0]["lam"], path[-1]["lam"]):
+        side = "smallest" if rec == path[0]["lam"] else "largest"
+        warnings.append(f"the recommended lam {rec:g} is the {side} lam tried: the best value may lie beyond the "
+                        "grid; extend --lams on that side and tune again")
     out = {"raw": {"auc": auc0, "consistency": cons0}, "path": path, "recommended": rec, "auc_drop_budget": budget,
-           "tuning_rows": int(len(use)), "holdout_rows": int(held.sum()), "select_rate": rate}
+           "tuning_rows": int(len(use)), "holdout_rows": int(held.sum()), "select_rate": rate,
+           "applied_lam": s["lam"], "warnings": warnings}
+    for w in warnings:
+        log.warning("tune: %s", w)
     d = rd.stage_dir("tune")
     atomic.write_json(os.path.join(d, "tune.json"), out)
     _plot(out, os.path.join(d, "tradeoff.png"))
@@ -102,15 +112,23 @@ def _plot(out, path):
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(6, 3.4))
-    xs = [100 * r["auc_drop"] for r in out["path"]]
+    fig, ax = plt.subplots(figsize=(6.5, 3.8))
+    xs = [100 * r["auc_change"] for r in out["path"]]
     ys = [r["consistency"] for r in out["path"]]
-    ax.plot(xs, ys, "o-")
+    ax.plot(xs, ys, "o-", label="lam path (labels: lam)")
     for r, x, y in zip(out["path"], xs, ys):
         ax.annotate(f"{r['lam']:g}", (x, y), fontsize=7, xytext=(3, 3), textcoords="offset points")
-    ax.axvline(100 * out["auc_drop_budget"], color="grey", ls="--", lw=1)
-    ax.set_xlabel("AUC drop on labelled rows (% of raw)")
-    ax.set_ylabel("consistency at the cutoff")
+    ax.axvline(-100 * out["auc_drop_budget"], color="grey", ls="--", lw=1,
+               label=f"AUC budget ({-100 * out['auc_drop_budget']:+.1f}%)")
+    ax.plot([0], [out["raw"]["consistency"]], "s", color="black", label="raw scores")
+    rec = [r for r in out["path"] if r["lam"] == out["recommended"]]
+    if rec:
+        ax.plot([100 * rec[0]["auc_change"]], [rec[0]["consistency"]], "*", ms=14, color="tab:red",
+                label=f"recommended lam {rec[0]['lam']:g}")
+    ax.set_xlabel("AUC change on labelled rows (% of raw; negative = worse)")
+    ax.set_ylabel("neighbour consistency at the cutoff")
+    ax.set_title("Accuracy against consistency over lam")
+    ax.legend(fontsize=7, loc="best")
     with atomic.atomic_path(path) as tmp:
         fig.savefig(tmp, format="png", dpi=90, bbox_inches="tight")
     plt.close(fig)
@@ -118,16 +136,20 @@ def _plot(out, path):
 
 def table_lines(out):
     lines = [f"tuning on {out['tuning_rows']} labelled rows (held out: {out['holdout_rows']}); raw AUC "
-             f"{out['raw']['auc']:.4f}, consistency {out['raw']['consistency']:.4f}",
-             f"{'lam':>8} {'sweeps':>6} {'AUC':>7} {'drop':>7} {'consistency':>11}"
+             f"{out['raw']['auc']:.4f}, neighbour consistency {out['raw']['consistency']:.4f}",
+             f"{'lam':>8} {'sweeps':>6} {'AUC':>7} {'AUC change':>10} {'neighbour consistency':>21}"
              + (f" {'holdout AUC':>11} {'holdout cons.':>13}" if out["holdout_rows"] else "")]
     for r in out["path"]:
-        line = f"{r['lam']:>8g} {r['sweeps']:>6} {r['auc']:>7.4f} {100 * r['auc_drop']:>6.2f}% {r['consistency']:>11.4f}"
+        line = (f"{r['lam']:>8g} {r['sweeps']:>6} {r['auc']:>7.4f} {100 * -r['auc_drop']:>+9.2f}% "
+                f"{r['consistency']:>21.4f}")
         if out["holdout_rows"]:
             line += f" {r['holdout_auc']:>11.4f} {r['holdout_consistency']:>13.4f}"
         lines.append(line)
     rec = out["recommended"]
-    lines.append(f"recommended lam: {rec:g} (best consistency with AUC drop <= {100 * out['auc_drop_budget']:.1f}%)"
-                 if rec is not None else
-                 f"no lam keeps the AUC drop within {100 * out['auc_drop_budget']:.1f}%; smoothing is not advised")
+    applied = out.get("applied_lam")
+    lines.append((f"applied lam (solve.lam): {applied:g}; " if applied is not None else "")
+                 + (f"recommended lam: {rec:g} (best neighbour consistency with an AUC change of at least "
+                    f"{-100 * out['auc_drop_budget']:+.1f}%)" if rec is not None else
+                    f"no lam keeps the AUC change within {-100 * out['auc_drop_budget']:+.1f}%; smoothing is not advised"))
+    lines += [f"warning: {w}" for w in out.get("warnings", [])]
     return lines

@@ -71,10 +71,13 @@ def test_tune_then_run_shows_the_trade_off_in_the_report(tmp_path):
     page = (tmp_path / "out" / "current" / "_report.html").read_text()
     p = _Sections()
     p.feed(page)
-    assert p.ids == ["summary", "figures", "distributions", "changes", "groups", "tuning", "cautions"]
-    assert len(p.imgs) == 3 and all(s.startswith("data:image/png;base64,") for s in p.imgs)
+    assert p.ids == ["provenance", "howto", "summary", "figures", "groups", "leakage", "distributions", "changes",
+                     "solver", "tuning", "cautions"]
+    # a distribution plot for each of the two protected attributes, the changes, the trade-off
+    assert len(p.imgs) == 4 and all(s.startswith("data:image/png;base64,") for s in p.imgs)
     assert "http://" not in page and "https://" not in page         # opens offline
     assert "no proof of legal compliance" in page and "29 CFR 1607.4(D)" in page
+    assert f"Applied lam 1; recommended lam {t['recommended']:g}" in page
 
 
 def test_multiclass_scores_stay_on_the_simplex(tmp_path):
