@@ -11,6 +11,27 @@ import tempfile
 
 import numpy as np
 
+_UMASK = os.umask(0)
+os.umask(_UMASK)
+
+
+def new_memmap(path, dtype, shape):
+    """A new .npy memmap whose disk blocks are reserved up front (posix_fallocate): a full disk
+    then fails here with OSError(ENOSPC) instead of killing the process with SIGBUS at the first
+    write to a page the file system cannot back."""
+    arr = np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
+    fd = os.open(path, os.O_RDWR)
+    try:
+        size = os.fstat(fd).st_size
+        if size:
+            os.posix_fallocate(fd, 0, size)
+    except OSError:
+        del arr
+        raise
+    finally:
+        os.close(fd)
+    return arr
+
 
 def fsync_dir(path):
     """fsync a directory so that a rename inside it is durable."""
@@ -31,6 +52,7 @@ def atomic_path(target):
     parent = os.path.dirname(os.path.abspath(target))
     os.makedirs(parent, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(target) + ".", suffix=".tmp", dir=parent)
+    os.fchmod(fd, 0o666 & ~_UMASK)     # mkstemp makes 0600; a finished file follows the umask like any other
     os.close(fd)
     try:
         yield tmp
@@ -70,7 +92,7 @@ def open_memmap(target, dtype, shape):
     """Yield a writable .npy memmap on a temporary sibling of ``target``; on success flush it and
     rename it into place (complete or absent, like every other write here)."""
     with atomic_path(target) as tmp:
-        arr = np.lib.format.open_memmap(tmp, mode="w+", dtype=dtype, shape=shape)
+        arr = new_memmap(tmp, dtype, shape)
         try:
             yield arr
             arr.flush()

@@ -31,8 +31,12 @@ def build_parser():
     p.add_argument("--version", action="version", version=f"bigsmooth {__version__}")
     p.add_argument("-q", "--quiet", action="store_true", help="log warnings and errors only")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    # the logging flag is accepted after the command as well (bigsmooth run -q CONFIG)
+    common = _Parser(add_help=False)
+    common.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS,
+                        help="log warnings and errors only")
 
-    r = sub.add_parser("run", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+    r = sub.add_parser("run", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                        help="run (or resume) the job described by a config file",
                        description="Run the job described by CONFIG (TOML; see configs/template.toml). "
                                    "The run directory is named by a hash of the settings and the input "
@@ -41,18 +45,20 @@ def build_parser():
     r.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
     r.add_argument("--fresh", action="store_true", help="discard any earlier state of this run and start over")
 
-    d = sub.add_parser("demo", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+    d = sub.add_parser("demo", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                        help="generate the synthetic demo table and run the job on it",
                        description="Generate a synthetic nightly tenancy pre-screen of a fictional housing "
                                    "co-operative (hive-partitioned Parquet under DIR/data), write its config "
                                    "to DIR/bigsmooth.toml and run the job. Prints where the output and the "
-                                   "audit are.")
-    d.add_argument("--rows", type=int, default=300_000, help="applicants to generate (default 300000)")
+                                   "audit are. On a DIR that already holds the demo, its table and its "
+                                   "(possibly edited) config are used as they are; --rows or --seed other than "
+                                   "the table's are refused.")
+    d.add_argument("--rows", type=int, default=None, help="applicants to generate (default 300000)")
     d.add_argument("--dir", default="bigsmooth-demo", help="folder for the demo's data, runs and output "
                                                           "(default ./bigsmooth-demo)")
-    d.add_argument("--seed", type=int, default=7, help="seed of the generated data (default 7)")
+    d.add_argument("--seed", type=int, default=None, help="seed of the generated data (default 7)")
 
-    t = sub.add_parser("tune", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+    t = sub.add_parser("tune", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                        help="solve a path of lam values and recommend one (accuracy vs consistency)",
                        description="Run the stages of CONFIG up to the graph ordering (shared with `bigsmooth "
                                    "run`), solve for each lam on the same graph (warm-starting each from the "
@@ -71,7 +77,7 @@ def build_parser():
                    help="share of labelled rows kept out of the choice and reported separately (default 0.2; "
                         "0 uses every labelled row for the choice)")
 
-    rp = sub.add_parser("report", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+    rp = sub.add_parser("report", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                         help="draw the HTML audit report of a run directory again (e.g. after tuning)",
                         description="Draw RUN_DIR/audit/report.html again from the run's audit and arrays, with "
                                     "the tuning trade-off when `bigsmooth tune` has run since. Reads the config "
@@ -81,7 +87,7 @@ def build_parser():
     rp.add_argument("run_dir", metavar="RUN_DIR")
     rp.add_argument("--config", default=None, help="config file to read instead of the one in the manifest")
 
-    s = sub.add_parser("status", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
+    s = sub.add_parser("status", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                        help="show the stages, timings and solver record of a run directory",
                        description="Print each stage's state and timing and the solver's convergence "
                                    "record for RUN_DIR (a folder under run.dir holding manifest.json).")
@@ -126,19 +132,35 @@ def cmd_run(args):
 
 
 def cmd_demo(args):
-    from . import demo
+    from . import atomic, demo
     from .pipeline import run_job
 
-    if args.rows < 100:
+    rows = 300_000 if args.rows is None else args.rows
+    seed = 7 if args.seed is None else args.seed
+    if rows < 100:
         raise BigsmoothError("--rows must be at least 100")
     base = os.path.abspath(args.dir)
     data = os.path.join(base, "data", "applicants")
+    made = os.path.join(base, "data", ".demo.json")
     if not os.path.isdir(data) or not os.listdir(data):
-        log.info("generating %d synthetic applicants under %s", args.rows, data)
-        demo.write_demo_table(data, args.rows, seed=args.seed)
+        log.info("generating %d synthetic applicants under %s", rows, data)
+        demo.write_demo_table(data, rows, seed=seed)
+        atomic.write_json(made, {"rows": rows, "seed": seed})
     else:
+        have = atomic.read_json(made) if os.path.exists(made) else None
+        asked = {k: v for k, v in (("rows", args.rows), ("seed", args.seed)) if v is not None}
+        if asked and (have is None or any(have.get(k) != v for k, v in asked.items())):
+            was = f"--rows {have['rows']} --seed {have['seed']}" if have else "other settings"
+            raise BigsmoothError(f"the demo table under {data} was generated with {was}; to use "
+                                 + " ".join(f"--{k} {v}" for k, v in asked.items())
+                                 + " give another --dir or delete that folder")
         log.info("using the demo table already under %s (delete the folder to regenerate)", data)
-    cfg_path = demo.write_demo_config(os.path.join(base, "bigsmooth.toml"), "data/applicants", "output", "runs")
+    cfg_path = os.path.join(base, "bigsmooth.toml")
+    text = demo.CONFIG_TEMPLATE.format(data="data/applicants", output="output", runs="runs")
+    if os.path.exists(cfg_path) and open(cfg_path, encoding="utf-8", errors="replace").read() != text:
+        log.warning("%s differs from the demo's own config (edited?); using it as it is", cfg_path)
+    else:
+        demo.write_demo_config(cfg_path, "data/applicants", "output", "runs")
     print(f"demo config: {cfg_path}")
     _print_result(run_job(cfg_path))
     return EXIT_OK
@@ -235,6 +257,12 @@ def main(argv=None):
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)
         return exc.exit_code if exc.exit_code != EXIT_SOFTWARE else EXIT_USAGE
+    except BrokenPipeError:
+        # the reader of our standard output went away (e.g. `bigsmooth status RUN | head -1`): not an
+        # error of ours; keep Python from complaining again when it flushes at exit
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
     except KeyboardInterrupt:
         print("bigsmooth: interrupted; run the same command again to resume", file=sys.stderr)
         return 130

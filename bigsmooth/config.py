@@ -110,6 +110,9 @@ RULES = {
 }
 
 PATH_KEYS = {("input", "path"), ("output", "path"), ("run", "dir"), ("input", "pairs")}
+REQUIRED_PATHS = {("input", "path"): "Parquet file, folder or glob", ("output", "path"): "folder for the output",
+                  ("run", "dir"): "folder for the run directories"}
+ADJUSTED_SUFFIX_RESERVED = ("", "_change")
 
 
 def _suggest(word, candidates):
@@ -190,6 +193,11 @@ def validate(raw, base_dir="."):
         for key, rule in rules.items():
             if key in given:
                 value = _check(section, key, rule, given[key])
+                if (section, key) in PATH_KEYS and isinstance(value, str) and "://" in value:
+                    raise ConfigError(f"{section}.{key} = {value!r} names an object store or URL; object stores "
+                                      "are not supported yet: use a local or mounted file system path")
+                if (section, key) in REQUIRED_PATHS and not value.strip():
+                    raise ConfigError(f"{section}.{key} is empty; it must name a {REQUIRED_PATHS[(section, key)]}")
             elif rule.default is REQUIRED:
                 raise ConfigError(f"{section}.{key} is required ({rule.doc})")
             else:
@@ -228,8 +236,35 @@ def _cross_checks(cfg):
     for f in cfg["embed"]["feature_weights"]:
         if f not in feats:
             raise ConfigError(f"embed.feature_weights names {f!r}, which is not a feature{_suggest(f, feats)}")
-    if os.path.abspath(cfg["output"]["path"]) == os.path.abspath(inp["path"]):
-        raise ConfigError("output.path must differ from input.path")
+    _check_output_apart(cfg)
+    suffix = cfg["output"]["suffix"]
+    if suffix in ADJUSTED_SUFFIX_RESERVED or not suffix.strip():
+        raise ConfigError(f"output.suffix must be a non-empty suffix other than '_change' (the change column "
+                          f"ends in '_change'); got {suffix!r}")
+    out_cols = [inp["id"]] + inp["scores"] + inp["protected"]
+    for c in inp["scores"]:
+        for made in (c + suffix, c + "_change"):
+            if made in out_cols:
+                raise ConfigError(f"output.suffix {suffix!r} makes the output column {made!r}, which is also an "
+                                  "input column of the output; choose another suffix")
+
+
+def _inside(child, parent):
+    return child == parent or child.startswith(parent.rstrip(os.sep) + os.sep)
+
+
+def _check_output_apart(cfg):
+    """The output must not be the input folder, inside it, or a link to it: the next night would read
+    last night's output as input."""
+    inp_path, out_path = cfg["input"]["path"], cfg["output"]["path"]
+    base = inp_path
+    while any(c in base for c in "*?["):
+        base = os.path.dirname(base)
+    in_real, out_real = os.path.realpath(base), os.path.realpath(out_path)
+    bad = out_real == in_real if os.path.isfile(in_real) else _inside(out_real, in_real)
+    if bad or os.path.abspath(out_path) == os.path.abspath(inp_path):
+        raise ConfigError(f"output.path {out_path} is the input folder, inside it or a link to it (input.path "
+                          f"{inp_path}); the next run would read this output as input. Put the output elsewhere.")
 
 
 def load_config(path):
@@ -237,9 +272,23 @@ def load_config(path):
     path = os.fspath(path)
     try:
         with open(path, "rb") as fh:
-            raw = tomllib.load(fh)
+            data = fh.read()
     except FileNotFoundError:
         raise ConfigError(f"config file not found: {path}") from None
+    except IsADirectoryError:
+        raise ConfigError(f"config path {path} is a directory; give the path of a TOML file") from None
+    except OSError as exc:
+        raise ConfigError(f"config file {path} cannot be read: {exc.strerror}") from None
+    if data.startswith(b"\xef\xbb\xbf"):       # a byte-order mark, as some editors write: not part of TOML
+        data = data[3:]
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data[:exc.start].count(b"\n") + 1
+        raise ConfigError(f"config file {path} is not UTF-8 text (TOML must be UTF-8): byte 0x{data[exc.start]:02x} "
+                          f"on line {line}; save it as UTF-8") from None
+    try:
+        raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
     return validate(raw, base_dir=os.path.dirname(os.path.abspath(path)))

@@ -14,17 +14,36 @@ EXIT_CANTCREAT = 73  # EX_CANTCREAT: cannot write the run directory or output
 EXIT_TEMPFAIL = 75   # EX_TEMPFAIL: another run holds the lock; retry later
 EXIT_CONFIG = 78     # EX_CONFIG: the config file is wrong
 
-EXIT_CODES = {
-    EXIT_OK: "success (or nothing to do: the run was already complete)",
-    EXIT_GATE: "an audit gate failed (output held back unless gates.on_fail = \"publish\")",
-    EXIT_USAGE: "bad command line",
-    EXIT_DATA: "bad input data (columns, types, nulls, duplicates, ranges)",
-    EXIT_NOINPUT: "input path missing, unreadable or not Parquet",
-    EXIT_SOFTWARE: "internal error",
-    EXIT_CANTCREAT: "cannot write the run directory or the output",
-    EXIT_TEMPFAIL: "another run holds the lock; retry later",
-    EXIT_CONFIG: "bad configuration",
+# code: (meaning, what to do). The one source of the exit-code table: the CLI's --help, the README
+# and jobs/nightly.sh are generated from it (python -m bigsmooth.errors; tests/test_exit_codes.py).
+EXIT_TABLE = {
+    EXIT_OK: ("success (or nothing to do: the run was already complete)", "nothing"),
+    EXIT_GATE: ("an audit gate failed (output held back unless gates.on_fail = \"publish\")",
+                "read the report; nothing was published unless gates.on_fail = \"publish\"; alert"),
+    EXIT_USAGE: ("bad command line", "fix the call; alert"),
+    EXIT_DATA: ("bad input data (columns, types, nulls, duplicate ids, ranges, schemas), or input files that "
+                "changed while the job ran", "fix the data; the message has counts and example ids; alert"),
+    EXIT_NOINPUT: ("input path missing, unreadable or not Parquet (also corrupt data pages)",
+                   "check the path, permissions and files"),
+    EXIT_SOFTWARE: ("internal error", "report it (a bug); the run resumes after a fix"),
+    EXIT_CANTCREAT: ("cannot write the run directory or the output (also a full disk)",
+                     "free space or fix permissions, then run again: it resumes"),
+    EXIT_TEMPFAIL: ("another run holds the lock; retry later", "retry later"),
+    EXIT_CONFIG: ("bad configuration", "fix the config; alert"),
 }
+EXIT_CODES = {code: meaning for code, (meaning, _) in EXIT_TABLE.items()}
+
+
+def markdown_table():
+    """The exit-code table as the README shows it."""
+    rows = ["| code | meaning | what to do |", "|---|---|---|"]
+    rows += [f"| {c} | {m} | {w} |" for c, (m, w) in EXIT_TABLE.items()]
+    return "\n".join(rows)
+
+
+def shell_comment():
+    """The exit-code table as comment lines for shell scripts in jobs/."""
+    return "\n".join(f"#   {c:>3}  {m}" for c, (m, _) in EXIT_TABLE.items())
 
 
 class BigsmoothError(Exception):
@@ -68,3 +87,9 @@ def examples(values, limit=5):
     """Format up to ``limit`` example values for an error message."""
     vals = list(values)[:limit]
     return ", ".join(repr(v) for v in vals)
+
+
+if __name__ == "__main__":
+    print(markdown_table())
+    print()
+    print(shell_comment())

@@ -3,6 +3,7 @@
     BIGSMOOTH_FAULT=solve:sweep:3                 SIGKILL this process right after solver sweep 3
     BIGSMOOTH_FAULT=publish:before-rename         SIGKILL before the version folder is renamed
     BIGSMOOTH_FAULT=checkpoint:write=oserror      raise OSError(ENOSPC) there instead
+    BIGSMOOTH_FAULT=stage:graph:start=stop        SIGSTOP there (a test changes something, then SIGCONT)
     BIGSMOOTH_FAULT=embed:chunk:2,stage:audit:start   several points (the first one reached fires)
 
 Points (see :data:`POINTS`): ``stage:<name>:start`` (the stage marked running, nothing written)
@@ -37,7 +38,7 @@ def _armed():
 
 
 def point(name):
-    """Fire the fault armed at ``name``, if any: SIGKILL (default) or ``oserror``."""
+    """Fire the fault armed at ``name``, if any: SIGKILL (default), ``oserror`` or ``stop``."""
     if ENV not in os.environ:
         return
     action = _armed().get(name)
@@ -45,4 +46,7 @@ def point(name):
         return
     if action == "oserror":
         raise OSError(errno.ENOSPC, f"No space left on device (injected by {ENV} at {name})")
+    if action == "stop":
+        os.kill(os.getpid(), signal.SIGSTOP)
+        return
     os.kill(os.getpid(), signal.SIGKILL)

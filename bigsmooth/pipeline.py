@@ -2,15 +2,20 @@
 import logging
 import os
 import shutil
+import time
 
 from . import config as config_mod
 from .atomic import read_json
-from .errors import DataError, GateError, OutputError
+from .errors import DataError, GateError, InputMissingError, OutputError
 from .rundir import STAGES, RunDir, hold_lock, run_id
 from .stages import audit, embed, graph, order, publish, scan, solve
-from .table import changed_files, fingerprint
+from .table import changed_files, fingerprint, unreadable_files, verify_unchanged
 
 log = logging.getLogger("bigsmooth.run")
+
+# stages that read the input files (each checks, before it starts, that they are the files the run
+# began on; embed also after its two passes, publish also before its version folder is renamed)
+READS_INPUT = ("scan", "embed", "audit", "publish")
 
 
 def _check_writable(path):
@@ -90,6 +95,53 @@ def _check_gates(rd, cfg, before_publish):
                     "(see `bigsmooth tune`) or change the [gates] thresholds.")
 
 
+def _reading(name, fp, call):
+    """Run a stage; a failure inside DuckDB or Arrow while it reads the input becomes an input error
+    (exit 66) naming the files that cannot be read, when some can't (otherwise it is raised as it is)."""
+    import duckdb
+    import pyarrow as pa
+
+    try:
+        return call() or {}
+    except (duckdb.Error, pa.ArrowException) as exc:
+        if name not in READS_INPUT:
+            raise
+        bad = unreadable_files(fp)
+        if not bad:
+            raise
+        lines = "\n  ".join(f"{p}: {why}" for p, why in bad)
+        raise InputMissingError(f"{len(bad)} input file(s) cannot be read (corrupt data pages?) in stage {name}:\n  "
+                                f"{lines}\nReplace or remove them and run again.") from exc
+
+
+KEEP_ON_FRESH = (".lock", "tune")     # the lock we hold; tuning results (the graph is rebuilt the same)
+
+
+def _discard(rd):
+    """Reset a run directory so that a kill at any moment leaves either the old run or a new one:
+    the manifest is moved aside first (from then on the run counts as new), then every other entry,
+    then the set-aside folder is deleted."""
+    aside = os.path.join(rd.path, f".discard-{os.getpid()}-{int(time.time() * 1e6)}")
+    os.makedirs(aside)
+    os.rename(rd.manifest_path, os.path.join(aside, "manifest.json"))
+    for name in os.listdir(rd.path):
+        if name not in KEEP_ON_FRESH and not name.startswith(".discard-"):
+            os.rename(os.path.join(rd.path, name), os.path.join(aside, name))
+    shutil.rmtree(aside)
+
+
+def _clear_stale(rd):
+    """Remove what a killed reset left: set-aside folders, and any stage output in a run directory
+    without a manifest (the manifest is written before any stage runs, so such files belong to a
+    discarded run and must not be resumed from)."""
+    if not os.path.isdir(rd.path):
+        return
+    for name in os.listdir(rd.path):
+        p = os.path.join(rd.path, name)
+        if name.startswith(".discard-") or (not rd.exists() and name not in KEEP_ON_FRESH):
+            shutil.rmtree(p, ignore_errors=True) if os.path.isdir(p) and not os.path.islink(p) else os.unlink(p)
+
+
 def _stage_calls(rd, cfg, fp, rid):
     return {
         "scan": lambda: scan.run(rd, cfg, fp),
@@ -121,18 +173,21 @@ def run_job(config_path, fresh=False, tune=None):
     with rd.lock():
         if not rd.exists():
             _handle_input_change(cfg, chash, fp, rid)
+        _clear_stale(rd)
         if fresh and rd.exists():
-            log.info("--fresh: discarding the earlier state of run %s", rid)
-            for name in os.listdir(rd.path):
-                if name != ".lock":
-                    p = os.path.join(rd.path, name)
-                    shutil.rmtree(p) if os.path.isdir(p) else os.unlink(p)
+            log.info("--fresh: discarding the earlier state of run %s (tuning results are kept)", rid)
+            _discard(rd)
         if rd.exists():
             m = rd.load()
             if rd.all_done() and tune is None:
                 out = m["stages"]["publish"]["summary"]["path"]
-                log.info("run %s is already complete (same config and input); nothing to do. Output: %s", rid, out)
-                return {"run_dir": rd.path, "run_id": rid, "already_complete": True, "output": out}
+                if os.path.isdir(out):
+                    log.info("run %s is already complete (same config and input); nothing to do. Output: %s", rid, out)
+                    return {"run_dir": rd.path, "run_id": rid, "already_complete": True, "output": out}
+                log.warning("run %s is complete but its published version folder %s is gone; publishing it again",
+                            rid, out)
+                m["stages"]["publish"] = {"state": "pending"}
+                rd.save(m)
             log.info("resuming run %s", rid)
         else:
             rd.create({"run_id": rid, "config_hash": chash, "config_path": os.path.abspath(config_path),
@@ -154,8 +209,10 @@ def run_job(config_path, fresh=False, tune=None):
                     continue
                 log.info("stage %s", name)
                 with rd.stage(name) as record:
+                    if name in READS_INPUT:
+                        verify_unchanged(fp, f"before stage {name}")
                     try:
-                        record.update(calls[name]() or {})
+                        record.update(_reading(name, fp, calls[name]))
                     except OSError as exc:
                         # a failed write (disk full, permissions): earlier outputs and checkpoints stay
                         raise OutputError(f"stage {name} could not write in {rd.path}: {exc}. Earlier "

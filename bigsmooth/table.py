@@ -20,6 +20,8 @@ from .errors import DataError, InputMissingError
 log = logging.getLogger("bigsmooth.table")
 
 ROW = "__bigsmooth_row"
+FILE_COL = "__bigsmooth_file"     # DuckDB's file name column, under a name no input column takes
+RESERVED_COLUMNS = ("file_row_number", ROW, FILE_COL)   # DuckDB's row-number option cannot be renamed
 
 
 def quote(name):
@@ -27,9 +29,22 @@ def quote(name):
     return '"' + str(name).replace('"', '""') + '"'
 
 
-def _visible(path, root):
-    rel = os.path.relpath(path, root)
-    return not any(part.startswith((".", "_")) for part in rel.split(os.sep))
+def _walk_parquet(root):
+    """Parquet files under ``root`` (any case of the .parquet ending; hidden and _-prefixed names
+    skipped), following links to folders but refusing a folder reached twice (a link loop)."""
+    files, seen = [], {}
+    for dirpath, dirnames, filenames in os.walk(root, followlinks=True):
+        st = os.stat(dirpath)
+        key = (st.st_dev, st.st_ino)
+        if key in seen:
+            raise InputMissingError(f"input folder {root}: the folder {seen[key]} is reached again as {dirpath} "
+                                    "(a symbolic link loop or a second link to it); remove the link so that "
+                                    "every file is read once")
+        seen[key] = dirpath
+        dirnames[:] = sorted(d for d in dirnames if not d.startswith((".", "_")))
+        files += [os.path.join(dirpath, f) for f in filenames
+                  if f.lower().endswith(".parquet") and not f.startswith((".", "_"))]
+    return [os.path.abspath(f) for f in files if os.path.isfile(f)]
 
 
 def resolve_files(path):
@@ -39,14 +54,20 @@ def resolve_files(path):
         if not files:
             raise InputMissingError(f"input.path {path!r} matches no files")
     elif os.path.isdir(path):
-        files = [os.path.abspath(f) for f in glob.glob(os.path.join(path, "**", "*.parquet"), recursive=True)
-                 if os.path.isfile(f) and _visible(f, path)]
+        files = _walk_parquet(path)
         if not files:
             raise InputMissingError(f"input folder {path} holds no .parquet files")
     elif os.path.isfile(path):
         files = [os.path.abspath(path)]
     else:
         raise InputMissingError(f"input.path {path} does not exist")
+    real = {}
+    for f in files:
+        r = os.path.realpath(f)
+        if r in real:
+            raise InputMissingError(f"the input file {r} is reached twice, as {real[r]} and as {f} (a symbolic "
+                                    "link?); every file must be read once")
+        real[r] = f
     for f in files:
         if not os.access(f, os.R_OK):
             raise InputMissingError(f"input file {f} is not readable (permissions)")
@@ -70,6 +91,57 @@ def footer_hash(path):
         size = int.from_bytes(tail[:4], "little")
         fh.seek(-(8 + size), os.SEEK_END)
         return hashlib.sha256(fh.read(size)).hexdigest()[:32]
+
+
+def verify_unchanged(fp, when):
+    """Raise DataError if any input file changed since the run's fingerprint was taken (size, mtime,
+    footer): a stage must never read a file other than the one the earlier stages read."""
+    lines = []
+    for e in fp["files"]:
+        try:
+            st = os.stat(e["path"])
+            same = st.st_size == e["size"] and st.st_mtime_ns == e["mtime_ns"] and footer_hash(e["path"]) == e["footer"]
+        except (OSError, ValueError):
+            lines.append(f"removed or unreadable: {e['path']}")
+            continue
+        if not same:
+            lines.append(f"changed: {e['path']}")
+    if lines:
+        raise DataError(f"{len(lines)} input file(s) changed while the job was running ({when}):\n  "
+                        + "\n  ".join(lines[:10]) + "\nNothing was published. Run the job again once the input "
+                        "is complete; it starts a fresh run on the new files.")
+
+
+def unreadable_files(fp, limit=5):
+    """[(path, first line of the error)] for input files whose data cannot be decoded, found by
+    reading each file whole (the error path only: a failed read of several files does not say which
+    one failed)."""
+    import duckdb
+
+    con = connect()
+    bad = []
+    for e in fp["files"]:
+        try:
+            reader = con.sql("SELECT * FROM read_parquet($f)", params={"f": e["path"]}).to_arrow_reader(65536)
+            for _ in reader:
+                pass
+            pq.ParquetFile(e["path"]).read()
+        except (duckdb.Error, pa.ArrowException, OSError) as exc:
+            bad.append((e["path"], (str(exc).splitlines() or [type(exc).__name__])[0]))
+            if len(bad) >= limit:
+                break
+    return bad
+
+
+def id_digests(con, fp, id_col):
+    """{path: order-sensitive digest of the file's ids}: the xor over rows of a hash of the text
+    "id:row number in the file" (one string, so that swapping two ids changes it; a hash of the two
+    values as separate arguments combined them so that the xor over rows lost the order)."""
+    rows = con.execute(f"SELECT {FILE_COL}, bit_xor(hash(CAST({quote(id_col)} AS VARCHAR) || ':' || CAST(file_row_number AS VARCHAR))) FROM read_parquet("
+                       f"$files, hive_partitioning = true, union_by_name = true, filename = '{FILE_COL}', "
+                       f"file_row_number = true) GROUP BY {FILE_COL}",
+                       {"files": [e["path"] for e in fp["files"]]}).fetchall()
+    return {path: str(d) for path, d in rows}
 
 
 def changed_files(old, new):
@@ -158,15 +230,15 @@ class Source:
 
     def __init__(self, con, fp):
         self.files = fp["files"]
-        offsets = pa.table({"filename": [e["path"] for e in fp["files"]],
+        offsets = pa.table({FILE_COL: [e["path"] for e in fp["files"]],
                             "__offset": pa.array([e["offset"] for e in fp["files"]], pa.int64())})
         con.register("__bigsmooth_offsets", offsets)
         self.params = {"files": [e["path"] for e in fp["files"]]}
         self.sql = (f"(SELECT o.__offset + t.file_row_number AS {ROW}, "
-                    f"t.* EXCLUDE (filename, file_row_number) "
+                    f"t.* EXCLUDE ({FILE_COL}, file_row_number) "
                     f"FROM read_parquet($files, hive_partitioning = true, union_by_name = true, "
-                    f"filename = true, file_row_number = true, can_have_nan = true) t "
-                    f"JOIN __bigsmooth_offsets o USING (filename)) AS src")
+                    f"filename = '{FILE_COL}', file_row_number = true, can_have_nan = true) t "
+                    f"JOIN __bigsmooth_offsets o USING ({FILE_COL})) AS src")
 
     def fetch(self, con, sql, **params):
         """Run a query whose FROM names ``{src}``; return all result rows as tuples."""
@@ -188,6 +260,8 @@ class Source:
         """
         con.execute("SET preserve_insertion_order = true")
         for e in self.files:
+            if e["rows"] == 0:          # nothing to stream (its schema may even lack the columns)
+                continue
             rel = con.sql(f"SELECT file_row_number AS {ROW}, {select} FROM read_parquet($file, "
                           f"hive_partitioning = true, file_row_number = true, can_have_nan = true)",
                           params={"file": e["path"]})

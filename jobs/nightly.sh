@@ -6,8 +6,18 @@
 # Example crontab line (02:30 every night; logs appended, one line per event):
 #   30 2 * * *  /opt/bigsmooth/jobs/nightly.sh /etc/bigsmooth/tenancy.toml >>/var/log/bigsmooth.log 2>&1
 #
-# Exit codes are bigsmooth's own (see README): 0 done or already done, 75 another run holds the
-# lock (retry later), 65 bad data, 66 missing input, 73 cannot write, 78 bad config, 70 bug.
+# Exit codes are bigsmooth's own (README "Exit codes"); 75 means retry later:
+# exit-codes:start (generated from bigsmooth/errors.py: python -m bigsmooth.errors)
+#     0  success (or nothing to do: the run was already complete)
+#     3  an audit gate failed (output held back unless gates.on_fail = "publish")
+#    64  bad command line
+#    65  bad input data (columns, types, nulls, duplicate ids, ranges, schemas), or input files that changed while the job ran
+#    66  input path missing, unreadable or not Parquet (also corrupt data pages)
+#    70  internal error
+#    73  cannot write the run directory or the output (also a full disk)
+#    75  another run holds the lock; retry later
+#    78  bad configuration
+# exit-codes:end
 # Running it again after an interruption resumes the same run.
 set -u
 if [ $# -ne 1 ]; then

@@ -5,9 +5,7 @@ from html.parser import HTMLParser
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
-from bigsmooth import demo
 from bigsmooth.errors import EXIT_GATE
 from bigsmooth.tune import recommend
 from helpers import _small_table, _write_case, cli, read_output

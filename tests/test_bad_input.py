@@ -43,9 +43,9 @@ def _cfg_text(edit=None):
 
 
 class Case:
-    def __init__(self, name, files=None, cfg=None, code=EXIT_DATA, says=(), setup=None, works=False):
+    def __init__(self, name, files=None, cfg=None, code=EXIT_DATA, says=(), setup=None, works=False, argv=None):
         self.name, self.files, self.cfg, self.code, self.says = name, files, cfg, code, says
-        self.setup, self.works = setup, works
+        self.setup, self.works, self.argv = setup, works, argv
 
     def __repr__(self):
         return self.name
@@ -154,7 +154,106 @@ CASES = [
          'label = "sustained_12m"\npairs = "pairs.parquet"'),
          setup=lambda tmp: pq.write_table(pa.table({"id_a": [1], "other": [2]}), tmp / "pairs.parquet"),
          says=["lacks column(s) id_b"]),
+    # ---- issue 11: inputs that went wrong silently or with a traceback ----
+    Case("output folder inside the input folder", [B], cfg=lambda t: t.replace('path = "out"', 'path = "in/out"'),
+         code=EXIT_CONFIG, says=["output.path", "inside it or a link to it"]),
+    Case("output folder equal to the input folder", [B], cfg=lambda t: t.replace('path = "out"', 'path = "in"'),
+         code=EXIT_CONFIG, says=["output.path", "the next run would read this output as input"]),
+    Case("output folder a symlink to the input folder", [B], cfg=lambda t: t.replace('path = "out"', 'path = "outlink"'),
+         setup=lambda tmp: os.symlink(tmp / "in", tmp / "outlink"), code=EXIT_CONFIG,
+         says=["output.path", "a link to it"]),
+    Case("empty output.path", [B], cfg=lambda t: t.replace('path = "out"', 'path = ""'), code=EXIT_CONFIG,
+         says=["output.path is empty"]),
+    Case("empty input.path", [B], cfg=lambda t: t.replace('path = "in"', 'path = ""'), code=EXIT_CONFIG,
+         says=["input.path is empty"]),
+    Case("input on an object store", [B], cfg=lambda t: t.replace('path = "in"', 'path = "s3://bucket/scores/"'),
+         code=EXIT_CONFIG, says=["input.path = 's3://bucket/scores/'", "object store", "not supported"]),
+    Case("output on an object store", [B], cfg=lambda t: t.replace('path = "out"', 'path = "gs://bucket/out"'),
+         code=EXIT_CONFIG, says=["output.path", "object store"]),
+    Case("empty output.suffix (would overwrite the raw score)", [B],
+         cfg=lambda t: t.replace("[output]\n", '[output]\nsuffix = ""\n'), code=EXIT_CONFIG, says=["output.suffix"]),
+    Case("output.suffix '_change' (would lose the adjusted score)", [B],
+         cfg=lambda t: t.replace("[output]\n", '[output]\nsuffix = "_change"\n'), code=EXIT_CONFIG,
+         says=["output.suffix must be a non-empty suffix other than '_change'"]),
+    Case("output.suffix making a column that exists", [B],
+         cfg=lambda t: t.replace("[output]\n", '[output]\nsuffix = "_x"\ninclude_protected = true\n')
+         .replace('protected = ["origin_group", "age_band"]', 'protected = ["origin_group", "sustain_score_x"]'),
+         code=EXIT_CONFIG,
+         says=["makes the output column 'sustain_score_x'"]),
+    Case("ids integer in one file and strings in another",
+         [B, _with(_base_other(), applicant_id=[f"x{i}" for i in range(200)])],
+         says=["the id column 'applicant_id' has different types in different files", "integer in 1 file(s)",
+               "string in 1 file(s)"]),
+    Case("a partition folder key that is also a column inside the file", [B],
+         setup=lambda tmp: _move_into(tmp, "origin_group=group_a"),
+         says=["'origin_group' is both a partition folder key", "origin_group=group_a"]),
+    Case("a column named file_row_number", [_with(B, file_row_number=list(range(200)))],
+         says=["column 'file_row_number' has a name bigsmooth needs for its own row numbering"]),
+    Case("a column that appears twice in one file", ["twice"], says=["'references' appear more than once"]),
+    Case("a feature value of 1e200", [_set(B, "monthly_income", [7], 1e200)],
+         says=["1 rows with value in numeric feature 'monthly_income' beyond +-1e+100", *_ids(B, [7])]),
+    Case("pairs file with string ids against integer ids", [B],
+         cfg=lambda t: t.replace('label = "sustained_12m"', 'label = "sustained_12m"\npairs = "pairs.parquet"'),
+         setup=lambda tmp: pq.write_table(pa.table({"id_a": ["1"], "id_b": ["2"]}), tmp / "pairs.parquet"),
+         says=["column id_a has type VARCHAR but the id column 'applicant_id' has type"]),
+    Case("pairs file that does not exist", [B],
+         cfg=lambda t: t.replace('label = "sustained_12m"', 'label = "sustained_12m"\npairs = "nope.parquet"'),
+         code=EXIT_NOINPUT, says=["input.pairs", "nope.parquet does not exist"]),
+    Case("pairs file that is not Parquet", [B],
+         cfg=lambda t: t.replace('label = "sustained_12m"', 'label = "sustained_12m"\npairs = "pairs.parquet"'),
+         setup=lambda tmp: (tmp / "pairs.parquet").write_text("id_a,id_b\n1,2\n"), code=EXIT_NOINPUT,
+         says=["input.pairs", "is not readable Parquet"]),
+    Case("config in Latin-1", [B], setup=lambda tmp: _latin1(tmp / "job.toml"), code=EXIT_CONFIG,
+         says=["is not UTF-8 text", "line 1"]),
+    Case("config path that is a directory", [B], argv=lambda tmp: ["run", str(tmp)], code=EXIT_CONFIG,
+         says=["is a directory"]),
+    Case("a symbolic link loop in the input folder", [B], setup=lambda tmp: os.symlink(tmp / "in", tmp / "in" / "loop"),
+         code=EXIT_NOINPUT, says=["is reached again as", "symbolic link loop"]),
+    Case("the same file reached through a link", [B],
+         setup=lambda tmp: os.symlink(tmp / "in" / "part-0.parquet", tmp / "in" / "again.parquet"),
+         code=EXIT_NOINPUT, says=["is reached twice"]),
+    Case("corrupt data pages behind an intact footer", [B, "pages"], code=EXIT_NOINPUT,
+         says=["part-1.parquet", "cannot be read (corrupt data pages?)"]),
+    Case("protected attribute column missing", [{k: v for k, v in B.items() if k != "age_band"}],
+         says=["input.protected: column 'age_band' is not in the table"]),
+    Case("label column of strings", [_with(B, sustained_12m=["yes"] * 200)],
+         says=["input.label: column 'sustained_12m' has type VARCHAR"]),
+    Case("id column of booleans", [_with(B, applicant_id=[True, False] * 100)],
+         says=["input.id: column 'applicant_id' has type BOOLEAN"]),
+    Case("categorical feature of floats", [_with(B, employment=[0.5] * 200)],
+         says=["input.categorical_features: column 'employment' has type DOUBLE"]),
+    Case("counterfactual column missing", [B],
+         cfg=lambda t: t.replace('label = "sustained_12m"', 'label = "sustained_12m"\ncounterfactual_score = "cf"'),
+         says=["input.counterfactual_score: column 'cf' is not in the table"]),
+    Case("zero neighbours", [B], cfg=lambda t: t.replace("neighbours = 10", "neighbours = 0"), code=EXIT_CONFIG,
+         says=["graph.neighbours must be an integer in [1, 200]; got 0"]),
+    Case("unknown Laplacian", [B], cfg=lambda t: t.replace('laplacian = "unnormalised"', 'laplacian = "normalized"'),
+         code=EXIT_CONFIG, says=["solve.laplacian must be one of 'unnormalised', 'random_walk'"]),
+    Case("select_rate of 0", [B], cfg=lambda t: t.replace("select_rate = 0.3", "select_rate = 0.0"),
+         code=EXIT_CONFIG, says=["audit.select_rate"]),
+    Case("memory budget below the floor", [B], cfg=lambda t: t.replace("seed = 0", "seed = 0\nmemory_mb = 10"),
+         code=EXIT_CONFIG, says=["run.memory_mb must be an integer in [256"]),
+    Case("a score column also given as a feature", [B],
+         cfg=lambda t: t.replace('"debt_to_income"]', '"debt_to_income", "sustain_score"]'), code=EXIT_CONFIG,
+         says=["'sustain_score' is given as both input.scores and input.numeric_features"]),
+    Case("a glob that matches nothing", [B], cfg=lambda t: t.replace('path = "in"', 'path = "in/*.nothing"'),
+         code=EXIT_NOINPUT, says=["matches no files"]),
+    Case("a seed below zero", [B], cfg=lambda t: t.replace("seed = 0", "seed = -1"), code=EXIT_CONFIG,
+         says=["run.seed"]),
     # ---- these must work ----
+    Case("upper-case .PARQUET endings", [B, _base_other()],
+         setup=lambda tmp: os.rename(tmp / "in" / "part-1.parquet", tmp / "in" / "part-1.PARQUET"), works=True),
+    Case("an unused input column named filename", [_with(B, filename=["x.csv"] * 200)], works=True),
+    Case("a config with a byte-order mark", [B], setup=lambda tmp: _with_bom(tmp / "job.toml"), works=True),
+    Case("labels all null: the AUC gate says it is off", [_with(B, sustained_12m=pa.array([None] * 200, pa.int8()))],
+         works=True, says=["AUC drop: off, cannot be evaluated"]),
+    Case("labels of one class: the AUC gate says it is off", [_with(B, sustained_12m=pa.array([1] * 200, pa.int8()))],
+         works=True, says=["hold only one outcome"]),
+    Case("hidden files and _SUCCESS markers beside the data", [B],
+         setup=lambda tmp: ((tmp / "in" / "_SUCCESS").write_text(""), (tmp / "in" / ".part-9.parquet.crc").write_text("x")),
+         works=True),
+    Case("a 0-row file with another schema beside full files", [B, pa.table({"other": pa.array([], pa.int64())})],
+         works=True),
     Case("an empty partition among full ones", [B, pa.table(_base_other()).slice(0, 0), _base_other()],
          works=True),
     Case("a constant feature", [_with(B, references=[1.0] * 200)], works=True),
@@ -184,6 +283,28 @@ def _hold_run_lock(tmp):
     return ("lock", fd)     # kept open (and locked) until the test ends
 
 
+def _move_into(tmp, folder):
+    (tmp / "in" / folder).mkdir()
+    os.rename(tmp / "in" / "part-0.parquet", tmp / "in" / folder / "part-0.parquet")
+
+
+def _latin1(path):
+    path.write_bytes(b"# Gr\xfc\xdfe: a comment in Latin-1\n" + path.read_bytes())
+
+
+def _with_bom(path):
+    path.write_bytes(b"\xef\xbb\xbf" + path.read_bytes())
+
+
+def _corrupt_pages(path):
+    """Overwrite the middle of the data pages (the footer stays intact and readable)."""
+    data = bytearray(path.read_bytes())
+    footer = int.from_bytes(data[-8:-4], "little") + 8
+    for i in range(4, len(data) - footer - 4, 7):
+        data[i] = (data[i] * 31 + 17) % 256
+    path.write_bytes(bytes(data))
+
+
 def _write_files(tmp, files):
     d = tmp / "in"
     d.mkdir()
@@ -193,6 +314,13 @@ def _write_files(tmp, files):
             pq.write_table(pa.table(_base_other()), path)
             data = path.read_bytes()
             path.write_bytes(data[: len(data) // 2])
+        elif f == "pages":
+            pq.write_table(pa.table(_base_other()), path, compression="snappy")
+            _corrupt_pages(path)
+        elif f == "twice":
+            t = pa.table(B)
+            pq.write_table(pa.Table.from_arrays(t.columns + [t.column("references")], names=t.column_names + ["references"]),
+                           path)
         elif f == "csv":
             path.write_text("applicant_id,sustain_score\n1,0.5\n")
         elif f == "only-readme":
@@ -223,17 +351,20 @@ def test_bad_input_case(tmp_path, case):
     (tmp_path / "job.toml").write_text(text)
     keep = case.setup(tmp_path) if case.setup else None
     before = _digest(tmp_path / "in")
-    res = cli("run", str(tmp_path / "job.toml"))
+    res = cli(*(case.argv(tmp_path) if case.argv else ["run", str(tmp_path / "job.toml")]))
     if isinstance(keep, tuple) and keep[0] == "lock":
         os.close(keep[1])
     assert _digest(tmp_path / "in") == before, "the input was modified"
     if case.works:
         assert res.returncode == 0, res.stderr
-        rows = sum(pq.ParquetFile(tmp_path / "in" / f).metadata.num_rows for f in os.listdir(tmp_path / "in"))
+        rows = sum(pq.ParquetFile(tmp_path / "in" / f).metadata.num_rows for f in os.listdir(tmp_path / "in")
+                   if f.lower().endswith(".parquet") and not f.startswith((".", "_")))
         out = read_output(tmp_path / "out")
         assert out.num_rows == rows
         idcol = "select" if "select" in out.column_names else ID
         assert len(set(out.column(idcol).to_pylist())) == rows
+        for phrase in case.says:
+            assert phrase in res.stdout, (phrase, res.stdout[-3000:])
         return
     assert res.returncode == case.code, (res.returncode, res.stderr[-3000:])
     for phrase in case.says:
@@ -242,5 +373,5 @@ def test_bad_input_case(tmp_path, case):
     _assert_nothing_published(tmp_path)
 
 
-def test_the_table_has_at_least_thirty_cases():
-    assert len(CASES) >= 30
+def test_the_table_has_at_least_eighty_cases():
+    assert len(CASES) >= 80

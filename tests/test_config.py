@@ -98,7 +98,7 @@ def test_identity_hash_ignores_operational_settings():
     raw = base_raw()
     raw["embed"]["batch_rows"] = 16384
     raw["run"]["memory_mb"] = 1024
-    raw["embed"]["leakage_warn_auc"] = 0.9
+    raw["audit"]["report_note"] = "another note"
     assert config.config_hash(config.validate(raw)) == config.config_hash(a)
     for section, key, value in [("solve", "lam", 2.0), ("audit", "select_rate", 0.5)]:
         changed = base_raw()

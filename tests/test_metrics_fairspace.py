@@ -181,6 +181,12 @@ def test_random_graph_control_is_matched_in_spread(rng):
         assert rec["matched"] and abs(got.std() - target) <= 0.01 * target
         expect = spsolve((sp.identity(400) + rec["strength"] * cs_laplacian(M)).tocsc(), y)
         assert np.allclose(got, expect, atol=1e-7)
+    # the same through the search on a sample of 150 rows, refined on the full graph
+    got, rec = random_graph_control(sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2),
+                                    target_sd=0.5 * y.std(), search_rows=150)
+    assert rec["matched"] and rec["sample_solves"] > 0 and abs(got.std() - 0.5 * y.std()) <= 0.005 * y.std()
+    expect = spsolve((sp.identity(400) + rec["strength"] * cs_laplacian(M)).tocsc(), y)
+    assert np.allclose(got, expect, atol=1e-7)
     # a spread the smoothing cannot reach (above the raw scores') is reported as not matched
     _, rec = random_graph_control(sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2),
                                   target_sd=2 * y.std())

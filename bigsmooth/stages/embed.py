@@ -19,7 +19,7 @@ from ..errors import DataError
 from ..kernels import fairspace
 from ..kernels.metrics import roc_auc
 from ..progress import Progress
-from ..table import Source, batch_rows_for, connect_budget, quote, units
+from ..table import Source, batch_rows_for, connect_budget, quote, units, verify_unchanged
 from .scan import MISSING_LEVEL
 
 log = logging.getLogger("bigsmooth.embed")
@@ -73,7 +73,7 @@ class _Outputs:
 
     def open(self, path, shape, dtype, fill=None):
         tmp = path + ".partial"
-        mm = np.lib.format.open_memmap(tmp, mode="w+", dtype=dtype, shape=shape)
+        mm = atomic.new_memmap(tmp, dtype, shape)
         if fill is not None:
             mm[:] = fill
         self.items[path] = (tmp, mm)
@@ -182,6 +182,7 @@ def run(rundir, cfg, fp):
     if seen != n:
         raise RuntimeError(f"embed pass 2 streamed {seen} rows; the footers say {n}")
 
+    verify_unchanged(fp, "during stage embed")
     leakage = {}
     fair_sample = np.asarray(E[sample], dtype=np.float64)
     code_sample = np.asarray(codes[sample])

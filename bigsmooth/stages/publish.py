@@ -24,8 +24,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .. import atomic, faults, provenance
-from ..errors import OutputError
-from ..table import batch_rows_for
+from ..errors import DataError, OutputError
+from ..table import batch_rows_for, connect_budget, id_digests, verify_unchanged
 
 log = logging.getLogger("bigsmooth.publish")
 
@@ -87,6 +87,22 @@ def _move_pointers(root, version, run_id, rows):
     atomic.fsync_dir(root)
 
 
+def _verify_input(rundir, cfg, fp):
+    """The files just copied are the files the run read: fingerprints unchanged, and each file's ids in
+    the same order as the scan saw them (an order-sensitive digest). Otherwise rows would get other
+    rows' adjusted scores."""
+    verify_unchanged(fp, "while publishing")
+    want = atomic.read_json(rundir.file("scan", "scan.json")).get("id_digests")
+    if want is None:
+        return
+    got = id_digests(connect_budget(cfg["run"]["memory_mb"]), fp, cfg["input"]["id"])
+    bad = sorted(p for p in want if got.get(p) != want[p])
+    if bad:
+        raise DataError(f"{len(bad)} input file(s) hold other ids, or the same ids in another order, than when the "
+                        "run scanned them:\n  " + "\n  ".join(bad[:10]) + "\nNothing was published. Run the job "
+                        "again once the input is complete; it starts a fresh run.")
+
+
 def _refresh_audit(rundir, cfg, fp, version):
     """The provenance as of publishing: the status follows the current gates.on_fail (which is not part
     of the run identity), and the report is drawn again so that it shows it (and any tuning done since
@@ -145,6 +161,7 @@ def run(rundir, cfg, fp, run_id):
                 with open(os.path.join(dirpath, f), "rb") as fh:
                     os.fsync(fh.fileno())
             atomic.fsync_dir(dirpath)
+        _verify_input(rundir, cfg, fp)
         faults.point("publish:before-rename")
         os.rename(staging, final)
         atomic.fsync_dir(root)

@@ -132,6 +132,15 @@ class _Raw(str):
     """Already-escaped HTML for a table cell."""
 
 
+def _ratio_cell(row):
+    flag = " <b>below 4/5</b>" if row["below_four_fifths"] else ""
+    return _Raw(html.escape(fmt(row["ratio_to_highest"])) + flag)
+
+
+def _decision(selected):
+    return "selected" if selected else "not selected"
+
+
 def _caution(text):
     return f"<p class='caution'>&#9888; {html.escape(text)}</p>"
 
@@ -175,9 +184,9 @@ def render(report, plots, tune=None, applied_lam=None):
             f"{d['newly_selected']:,}, newly not selected {d['newly_not_selected']:,}.</li>",
             f"<li>Neighbour consistency of decisions in the fair space {fmt(b['neighbour_consistency'])} {ARROW} "
             f"{fmt(a['neighbour_consistency'])} (higher is better).</li>"]
-    if "auc" in b:
+    if "auc" in b and np.isfinite(b["auc"]):
         summ.append(f"<li>AUC on {b['labelled_rows']:,} labelled rows {fmt(b['auc'])} {ARROW} {fmt(a['auc'])} "
-                    f"(change {(a['auc'] - b['auc']):+.4f}).</li>")
+                    f"(relative change {100 * (a['auc'] - b['auc']) / b['auc']:+.2f}%; negative = worse).</li>")
     cf = report.get("counterfactual")
     if cf:
         scope = "all rows" if cf["all_rows"] else f"a seeded sample of {cf['rows_evaluated']:,} rows"
@@ -244,9 +253,8 @@ def render(report, plots, tune=None, applied_lam=None):
                 continue
             q = after[r["group"]]
             ch = changed.get(r["group"], {})
-            flag = lambda x: _Raw(e(fmt(x["ratio_to_highest"])) + (" <b>below 4/5</b>" if x["below_four_fifths"] else ""))
             rows.append([r["group"], r["count"], r["mean_score"], q["mean_score"], pct(r["selection_rate"]),
-                         pct(q["selection_rate"]), flag(r), flag(q), pct(ch.get("decisions_changed_rate"))])
+                         pct(q["selection_rate"]), _ratio_cell(r), _ratio_cell(q), pct(ch.get("decisions_changed_rate"))])
         gs = g["gap_over_sd"]
         parts += [f"<h3>{e(col)}</h3>",
                   _table(["group", "rows", "mean score before", "mean score after", "selected before",
@@ -285,9 +293,8 @@ def render(report, plots, tune=None, applied_lam=None):
     big = report["largest_changes"]
     if big:
         cols = list(big[0].get("groups", {}))
-        dec = lambda v: "selected" if v else "not selected"
         rows = [[_Raw(e(str(c["id"]))), c["before"][0], c["after"][0], c["after"][0] - c["before"][0],
-                 f"{dec(c['decision_before'])} {chr(8594)} {dec(c['decision_after'])}"
+                 f"{_decision(c['decision_before'])} {chr(8594)} {_decision(c['decision_after'])}"
                  if "decision_before" in c else "", "yes" if c.get("decision_before") != c.get("decision_after") else "no"]
                 + [c["groups"][k] for k in cols] for c in big]
         parts += ["<h3>Largest changes</h3>",
@@ -310,9 +317,9 @@ def render(report, plots, tune=None, applied_lam=None):
         parts += [f"<p class='warn'>Warning: {e(w)}</p>" for w in tune.get("warnings", [])]
         parts.append(f"<img alt='trade-off' src='{plots['tradeoff']}'>" if "tradeoff" in plots else "")
         hold = tune["holdout_rows"] > 0
-        rows = [[f"{r['lam']:g}", r["sweeps"], r["auc"], r.get("auc_change", -r["auc_drop"]), r["consistency"]]
+        rows = [[f"{r['lam']:g}", r["sweeps"], r["auc"], f"{-100 * r['auc_drop']:+.2f}%", r["consistency"]]
                 + ([r["holdout_auc"], r["holdout_consistency"]] if hold else []) for r in tune["path"]]
-        parts += [_table(["lam", "sweeps", "AUC", "AUC change (relative)", "neighbour consistency"]
+        parts += [_table(["lam", "sweeps", "AUC", "AUC change (relative; negative = worse)", "neighbour consistency"]
                          + (["hold-out AUC", "hold-out consistency"] if hold else []), rows), "</section>"]
     parts += ["<section id='cautions'><h2>Cautions</h2><ul>", *[f"<li>{e(c)}</li>" for c in CAUTIONS],
               "</ul></section>"]

@@ -11,7 +11,7 @@ import os
 
 from .. import atomic
 from ..errors import ConfigError, DataError, InputMissingError, examples
-from ..table import Source, connect_budget, quote
+from ..table import RESERVED_COLUMNS, Source, connect_budget, id_digests, quote
 
 log = logging.getLogger("bigsmooth.scan")
 
@@ -19,6 +19,7 @@ NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYIN
                  "UBIGINT", "FLOAT", "DOUBLE", "BOOLEAN")
 FLOAT_TYPES = ("FLOAT", "DOUBLE")
 MAX_LEVELS = 1000
+MAX_FEATURE = 1e100     # squares and sums of squares over billions of rows stay finite in float64
 MISSING_LEVEL = "(missing)"
 
 
@@ -34,7 +35,8 @@ def check_schema(columns, inp):
     """Compare configured columns with the table's {name: duckdb type}; raise on any mismatch."""
     problems = []
     wanted = [("id", inp["id"])] + [("scores", c) for c in inp["scores"]] + \
-        [("compare_scores", c) for c in inp["compare_scores"] + ([inp["counterfactual_score"]] if inp["counterfactual_score"] else [])] + \
+        [("compare_scores", c) for c in inp["compare_scores"]] + \
+        [("counterfactual_score", c) for c in ([inp["counterfactual_score"]] if inp["counterfactual_score"] else [])] + \
         [("numeric_features", c) for c in inp["numeric_features"]] + \
         [("categorical_features", c) for c in inp["categorical_features"]] + \
         [("protected", c) for c in inp["protected"]] + ([("label", inp["label"])] if inp["label"] else [])
@@ -45,7 +47,7 @@ def check_schema(columns, inp):
             problems.append(f"input.{role}: column {col!r} is not in the table{hint}")
             continue
         t = columns[col]
-        if role in ("scores", "compare_scores", "numeric_features", "label") and not _is_numeric(t):
+        if role in ("scores", "compare_scores", "counterfactual_score", "numeric_features", "label") and not _is_numeric(t):
             problems.append(f"input.{role}: column {col!r} has type {t}; a numeric type is needed")
         if role == "id" and not (t in NUMERIC_TYPES[:9] or t == "VARCHAR"):
             problems.append(f"input.id: column {col!r} has type {t}; an integer or string type is needed")
@@ -57,21 +59,81 @@ def check_schema(columns, inp):
                         + f"\nThe table's columns are: {', '.join(columns)}")
 
 
-def _check_pairs(con, path):
+def _check_pairs(con, path, id_col, id_type):
     import duckdb
 
     if not os.path.isfile(path):
         raise InputMissingError(f"input.pairs {path} does not exist")
     try:
-        cols = [r[0] for r in con.execute("DESCRIBE SELECT * FROM read_parquet($p)", {"p": path}).fetchall()]
+        types = dict((r[0], r[1]) for r in con.execute("DESCRIBE SELECT * FROM read_parquet($p)", {"p": path}).fetchall())
     except duckdb.Error as exc:
         raise InputMissingError(f"input.pairs {path} is not readable Parquet: {str(exc).splitlines()[0]}") from None
-    missing = [c for c in ("id_a", "id_b") if c not in cols]
-    return [f"input.pairs {path} lacks column(s) {', '.join(missing)} (it has {', '.join(cols)})"] if missing else []
+    missing = [c for c in ("id_a", "id_b") if c not in types]
+    if missing:
+        return [f"input.pairs {path} lacks column(s) {', '.join(missing)} (it has {', '.join(types)})"]
+    want = "string" if id_type == "VARCHAR" else "integer"
+    out = []
+    for c in ("id_a", "id_b"):
+        got = "string" if types[c] == "VARCHAR" else ("integer" if types[c] in NUMERIC_TYPES[:9] else types[c])
+        if got != want:
+            out.append(f"input.pairs {path}: column {c} has type {types[c]} but the id column {id_col!r} has type "
+                       f"{id_type}; write the pairs' ids with the table's id type")
+    return out
+
+
+def _hive_keys(path, root):
+    rel = os.path.relpath(os.path.dirname(path), root)
+    return {part.split("=", 1)[0] for part in rel.split(os.sep) if "=" in part}
+
+
+def _kind(t):
+    """integer / string / other, for comparing a column's Arrow type across files."""
+    import pyarrow as pa
+
+    if pa.types.is_integer(t):
+        return "integer"
+    if pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t):
+        return "string"
+    return str(t)
+
+
+def check_files(fp, inp):
+    """Checks of each file's own schema (its footer), before DuckDB reads the files together: no
+    column twice, no column named as DuckDB's row numbering, no hive folder key that is also a
+    column inside the file (DuckDB would silently take the folder's value), one kind of id type."""
+    import pyarrow.parquet as pq
+
+    problems, id_kinds = [], {}
+    for e in fp["files"]:
+        schema = pq.read_schema(e["path"])
+        names = schema.names
+        twice = sorted({n for n in names if names.count(n) > 1})
+        if twice:
+            problems.append(f"{e['path']}: column(s) {', '.join(map(repr, twice))} appear more than once in the file")
+        reserved = [n for n in names if n in RESERVED_COLUMNS]
+        if reserved:
+            problems.append(f"{e['path']}: column {reserved[0]!r} has a name bigsmooth needs for its own row "
+                            "numbering; rename the column")
+        clash = sorted(_hive_keys(e["path"], fp["root"]) & set(names))
+        if clash:
+            problems.append(f"{e['path']}: {', '.join(map(repr, clash))} is both a partition folder key (in the "
+                            "path) and a column inside the file; the folder value would silently replace the "
+                            "file's. Rename the folder key or the column")
+        if inp["id"] in names and not twice:
+            id_kinds.setdefault(_kind(schema.field(inp["id"]).type), []).append(e["path"])
+        if len(problems) >= 10:
+            break
+    if len(id_kinds) > 1:
+        listing = "; ".join(f"{k} in {len(v)} file(s), e.g. {v[0]}" for k, v in sorted(id_kinds.items()))
+        problems.append(f"the id column {inp['id']!r} has different types in different files ({listing}); the "
+                        "output could not be read back as one dataset. Write one type in every file")
+    if problems:
+        raise DataError(f"{len(problems)} problem(s) in the input files' schemas:\n  " + "\n  ".join(problems))
 
 
 def run(rundir, cfg, fp):
     inp = cfg["input"]
+    check_files(fp, inp)
     con = connect_budget(cfg["run"]["memory_mb"])
     src = Source(con, fp)
     cols = dict((r[0], r[1]) for r in src.fetch(con, "DESCRIBE SELECT * FROM {src}"))
@@ -101,6 +163,9 @@ def run(rundir, cfg, fp):
         checks.append((f"{q} IS NULL", f"null value in numeric feature {c!r}", True))
         if _is_float(cols[c]):
             checks.append((f"isnan({q}) OR isinf({q})", f"NaN or infinite value in numeric feature {c!r}", True))
+        checks.append((f"abs(CAST({q} AS DOUBLE)) > {MAX_FEATURE:g}",
+                       f"value in numeric feature {c!r} beyond +-{MAX_FEATURE:g} (too large for the statistics in "
+                       "float64; rescale the feature)", True))
     if inp["label"]:
         q = quote(inp["label"])
         checks.append((f"{q} IS NOT NULL AND CAST({q} AS DOUBLE) NOT IN (0, 1)",
@@ -125,7 +190,7 @@ def run(rundir, cfg, fp):
         problems.append(f"{non_null_ids - distinct} duplicate rows of id column {inp['id']!r}; e.g. "
                         + ", ".join(f"{v!r} x{c}" for v, c in dup))
     if inp["pairs"]:
-        problems += _check_pairs(con, inp["pairs"])
+        problems += _check_pairs(con, inp["pairs"], inp["id"], cols[inp["id"]])
     levels = {}
     for c in inp["categorical_features"] + inp["protected"]:
         q = quote(c)
@@ -143,7 +208,8 @@ def run(rundir, cfg, fp):
     if problems:
         raise DataError(f"the input has {len(problems)} problem(s) in {total} rows:\n  " + "\n  ".join(problems)
                         + "\nFix the rows (or the config) and run again; nothing was written to the output.")
-    info = {"rows": total, "files": len(fp["files"]), "columns": cols, "levels": levels}
+    digests = id_digests(con, fp, inp["id"])
+    info = {"rows": total, "files": len(fp["files"]), "columns": cols, "levels": levels, "id_digests": digests}
     atomic.write_json(rundir.file("scan", "scan.json"), info)
     log.info("scanned %d rows in %d files: all checks passed", total, len(fp["files"]))
     return {"rows": total, "files": len(fp["files"])}

@@ -117,7 +117,7 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
     os.makedirs(sysdir, exist_ok=True)
 
     def alloc(name, size, dtype):
-        return np.lib.format.open_memmap(os.path.join(sysdir, f"{name}.npy"), mode="w+", dtype=dtype, shape=(size,))
+        return atomic.new_memmap(os.path.join(sysdir, f"{name}.npy"), dtype, (size,))
 
     system = sweepcg.scale_split(split, s["lam"], cvec[perm], alloc=alloc)
     bounds = split.bounds
@@ -165,8 +165,8 @@ def work_files(n, c, key, fallback):
         shutil.rmtree(folder, ignore_errors=True)
     os.makedirs(folder, exist_ok=True)
     try:
-        yield sweepcg.Work.allocate(n, c, lambda name, shape: np.lib.format.open_memmap(
-            os.path.join(folder, f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
+        yield sweepcg.Work.allocate(n, c, lambda name, shape: atomic.new_memmap(
+            os.path.join(folder, f"{name}.npy"), np.float64, shape))
     finally:
         if folder != fallback:
             shutil.rmtree(folder, ignore_errors=True)
