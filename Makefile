@@ -17,8 +17,9 @@ install: $(VENV)/.installed
 demo: $(VENV)/.installed
 	$(BIN)/bigsmooth demo $(DEMO_ARGS)
 
+# two test processes (pytest-xdist): the suite is mostly command-line runs in subprocesses
 test: $(VENV)/.installed
-	$(BIN)/python -m pytest -q $(TEST_ARGS)
+	$(BIN)/python -m pytest -q -n 2 $(TEST_ARGS)
 
 test-slow: $(VENV)/.installed
 	$(BIN)/python -m pytest -q -m slow $(TEST_ARGS)
