@@ -117,7 +117,7 @@ def test_gates_that_are_off_say_off_and_a_held_run_says_held(tmp_path):
     cfg = _write_case(tmp_path, _small_table(400, seed=12))
     res = cli("run", str(cfg))
     assert res.returncode == 0
-    assert "gate min_neighbour_consistency: off" in res.stdout and "gates: all 1 gates that are on passed (3 off)" in res.stdout
+    assert "gate min_neighbour_consistency: off" in res.stdout and "gates: the one gate that is on passed (3 off)" in res.stdout
     assert "passed (neighbour consistency" not in res.stdout
     text = cfg.read_text() + "\n[gates]\nmax_decision_change_rate = 0.0001\n"
     cfg.write_text(text)

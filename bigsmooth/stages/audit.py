@@ -521,6 +521,8 @@ def gates_line(gates):
         return f"FAILED: {', '.join(failed)} ({len(on) - len(failed)} of {len(on)} gates that are on passed; {off} off)"
     if not on:
         return f"none on (all {off} gates are off)"
+    if len(on) == 1:
+        return f"the one gate that is on passed ({off} off)"
     return f"all {len(on)} gates that are on passed ({off} off)"
 
 

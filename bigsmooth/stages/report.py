@@ -141,6 +141,11 @@ def _decision(selected):
     return "selected" if selected else "not selected"
 
 
+def _arrows(text):
+    """Escape a line written for the terminal and give it the page's one arrow style."""
+    return html.escape(text).replace(" -&gt; ", f" {ARROW} ")
+
+
 def _caution(text):
     return f"<p class='caution'>&#9888; {html.escape(text)}</p>"
 
@@ -169,7 +174,7 @@ def render(report, plots, tune=None, applied_lam=None):
                 ["input fingerprint", prov["input_fingerprint"]], ["score column(s)", ", ".join(prov["score_columns"])],
                 ["lam applied", f"{prov['lam']:g}"], ["Laplacian", prov["laplacian"]], ["neighbours k", prov["neighbours"]]]
         parts += ["<section id='provenance'><h2>Where these figures come from</h2>",
-                  _table(["", ""], rows, "prov"), "</section>"]
+                  _table(["item", "value"], rows, "prov"), "</section>"]
     parts += ["<section id='howto'><h2>How to read this page</h2><ul>",
               f"<li>Decisions: the top {report['select_rate']:.0%} of rows by {e(report['decision_score'])} are "
               "selected, before (raw scores) and after (adjusted scores) alike, so shrinking every score toward "
@@ -202,11 +207,11 @@ def render(report, plots, tune=None, applied_lam=None):
                     f"{fmt(pr['same_decision_before'])} {ARROW} {fmt(pr['same_decision_after'])}.</li>")
     from .audit import gates_line
 
-    summ.append(f"<li>Gates: {e(gates_line(gates))}.</li><li><ul>")
+    summ.append(f"<li>Gates: {e(gates_line(gates))}.<ul>")
     summ += [f"<li class='gate {g['state']}'><b>{e(g['state'].upper() if g['state'] == 'failed' else g['state'])}"
-             f"</b> {e(g['gate'])}: {e(g['line'])}</li>" for g in gates]
+             f"</b> {e(g['gate'])}: {_arrows(g['line'])}</li>" for g in gates]
     summ.append("</ul></li>")
-    summ += [f"<li class='warn'>Warning: {e(w)}</li>" for w in report.get("warnings", [])]
+    summ += [f"<li class='warn'>Warning: {_arrows(w)}</li>" for w in report.get("warnings", [])]
     parts += ["<section id='summary'><h2>Summary</h2><ul>", *summ, "</ul>", _caution(FLIP_CAUTION), "</section>"]
 
     ctrl = report.get("controls", {})
@@ -314,7 +319,7 @@ def render(report, plots, tune=None, applied_lam=None):
                   f"{'none (no lam kept the AUC within budget)' if rec is None else f'{rec:g}'}</b> "
                   f"(best neighbour consistency with an AUC drop within {pct(tune['auc_drop_budget'])}, on "
                   f"{tune['tuning_rows']:,} labelled rows; {tune['holdout_rows']:,} held out).</p>"]
-        parts += [f"<p class='warn'>Warning: {e(w)}</p>" for w in tune.get("warnings", [])]
+        parts += [f"<p class='warn'>Warning: {_arrows(w)}</p>" for w in tune.get("warnings", [])]
         parts.append(f"<img alt='trade-off' src='{plots['tradeoff']}'>" if "tradeoff" in plots else "")
         hold = tune["holdout_rows"] > 0
         rows = [[f"{r['lam']:g}", r["sweeps"], r["auc"], f"{-100 * r['auc_drop']:+.2f}%", r["consistency"]]
