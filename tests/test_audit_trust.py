@@ -151,3 +151,32 @@ def test_the_selection_ratio_gate_holds_a_run_whose_group_ratio_falls(tmp_path):
     assert res.returncode == (3 if fell else 0)
     gate = [g for g in a["gates"] if g["gate"] == "max_selection_ratio_drop"][0]
     assert gate["state"] == ("failed" if fell else "passed")
+    # a fall is also a warning; a group that fell below 0.8 is named as such
+    for g in a["groups"].values():
+        for r in g["ratio_change"]:
+            if r["ratio_drop"] is not None and r["ratio_drop"] > 0.001:
+                assert any(f"= {r['group']}" in w and "fell" in w for w in a["warnings"]), (r, a["warnings"])
+
+
+def test_a_group_whose_selection_ratio_falls_is_warned_about_and_fails_the_gate(tmp_path):
+    # group Z lives alone on an outer ring of the feature plane (a region no linear projection
+    # removes) and keeps its scores; groups A and X share the inner disk, X's raw scores carry a
+    # +0.15 boost that smoothing over the shared neighbourhoods takes away. X's selection rate over
+    # Z's (the four-fifths ratio, 29 CFR 1607.4(D)) therefore falls: a warning, and a failed gate
+    rng = np.random.default_rng(9)
+    n = 3000
+    ang, rad = rng.uniform(0, 2 * np.pi, n), np.sqrt(rng.uniform(0, 1, n))
+    group = np.where(rad > 0.8, "Z", rng.choice(["A", "X"], n))
+    x = np.column_stack([rad * np.cos(ang), rad * np.sin(ang), 0.3 * rng.normal(size=(n, 2))])
+    score = np.clip(0.5 + 0.1 * rng.normal(size=n) + 0.25 * (group == "Z") + 0.15 * (group == "X"), 0, 1)
+    res = _run(tmp_path, {"id": np.arange(n), "score": score, **{f"x{j + 1}": x[:, j] for j in range(4)},
+                          "group": group, "label": (rng.random(n) < score).astype(np.int8)},
+               extra='[gates]\nmax_auc_drop = 1.0\nmax_selection_ratio_drop = 0.02\non_fail = "publish"\n',
+               features=("x1", "x2", "x3", "x4"))
+    assert res.returncode == 3, res.stderr[-2000:]
+    a = _audit(tmp_path)
+    x_row = [r for r in a["groups"]["group"]["ratio_change"] if r["group"] == "X"][0]
+    assert x_row["ratio_drop"] > 0.02, x_row
+    assert any("group = X" in w and "fell" in w for w in a["warnings"]), a["warnings"]
+    gate = [g for g in a["gates"] if g["gate"] == "max_selection_ratio_drop"][0]
+    assert gate["state"] == "failed" and "(group = X)" in gate["line"]

@@ -78,8 +78,11 @@ def test_fresh_killed_while_discarding_leaves_a_run_that_works(tmp_path):
     res = cli("run", str(cfg))
     assert res.returncode == 0, res.stderr[-2000:]
     assert not aside.exists() and (run_dir / "manifest.json").exists()
+    (run_dir / "tune").mkdir()
+    (run_dir / "tune" / "tune.json").write_text("{}")
     res = cli("run", "--fresh", str(cfg))
     assert res.returncode == 0 and not [p for p in run_dir.iterdir() if p.name.startswith(".discard-")]
+    assert (run_dir / "tune" / "tune.json").exists()           # --fresh keeps the tuning results
 
 
 def test_files_of_the_run_and_output_follow_the_umask(tmp_path):
