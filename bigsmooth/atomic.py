@@ -19,6 +19,9 @@ def new_memmap(path, dtype, shape):
     """A new .npy memmap whose disk blocks are reserved up front (posix_fallocate): a full disk
     then fails here with OSError(ENOSPC) instead of killing the process with SIGBUS at the first
     write to a page the file system cannot back."""
+    # a new inode: never truncate a file that may be a hard link shared with another run
+    with contextlib.suppress(FileNotFoundError):
+        os.unlink(path)
     arr = np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
     fd = os.open(path, os.O_RDWR)
     try:

@@ -41,9 +41,13 @@ def build_parser():
                        description="Run the job described by CONFIG (TOML; see configs/template.toml). "
                                    "The run directory is named by a hash of the settings and the input "
                                    "files: the same config and input resume an interrupted run, and a "
-                                   "finished one is not redone.")
+                                   "finished one is not redone. A run whose settings differ from an earlier "
+                                   "run's only in later stages (e.g. solve.lam) reuses the earlier run's "
+                                   "scan, embed, graph and order outputs (hard links in run.dir).")
     r.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
-    r.add_argument("--fresh", action="store_true", help="discard any earlier state of this run and start over")
+    r.add_argument("--fresh", action="store_true", help="discard any earlier state of this run and start over, "
+                                                        "computing every stage anew (no outputs reused from "
+                                                        "other runs)")
 
     d = sub.add_parser("demo", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
                        help="generate the synthetic demo table and run the job on it",
@@ -222,7 +226,8 @@ def cmd_status(args):
     for name in STAGES:
         st = m["stages"][name]
         secs = f"{st['seconds']:.1f}" if "seconds" in st else "-"
-        print(f"{name:<9} {st['state']:<8} {secs:>9}" + (f"  {st['error']}" if st.get("error") else ""))
+        print(f"{name:<9} {st['state']:<8} {secs:>9}" + (f"  {st['error']}" if st.get("error") else "")
+              + (f"  (reused from run {st['reused_from']})" if st.get("reused_from") else ""))
     sol = os.path.join(args.run_dir, "solve", "solve.json")
     ck = os.path.join(args.run_dir, "checkpoint", "solver.npz")
     if os.path.exists(sol):

@@ -7,8 +7,9 @@ import time
 from . import config as config_mod
 from .atomic import read_json
 from .errors import DataError, GateError, InputMissingError, OutputError
-from .rundir import STAGES, RunDir, hold_lock, run_id
+from .rundir import STAGES, RunDir, find_stage, hold_lock, run_id
 from .stages import audit, embed, graph, order, publish, scan, solve
+from .stages import base as stage_base
 from .table import changed_files, fingerprint, unreadable_files, verify_unchanged
 
 log = logging.getLogger("bigsmooth.run")
@@ -138,7 +139,7 @@ def _clear_stale(rd):
         return
     for name in os.listdir(rd.path):
         p = os.path.join(rd.path, name)
-        if name.startswith(".discard-") or (not rd.exists() and name not in KEEP_ON_FRESH):
+        if name.startswith((".discard-", ".adopt-")) or (not rd.exists() and name not in KEEP_ON_FRESH):
             shutil.rmtree(p, ignore_errors=True) if os.path.isdir(p) and not os.path.islink(p) else os.unlink(p)
 
 
@@ -195,6 +196,7 @@ def run_job(config_path, fresh=False, tune=None):
             log.info("new run %s: %d rows in %d files", rid, fp["rows"], len(fp["files"]))
         _check_writable(cfg["output"]["path"])
         calls = _stage_calls(rd, cfg, fp, rid)
+        ids = stage_base.identities(cfg, fp["hash"])
         # a second job publishing to the same output waits for this one (exit 75 at once)
         with hold_lock(cfg["output"]["path"], f"output {cfg['output']['path']}"):
             for name in STAGES:
@@ -207,8 +209,14 @@ def run_job(config_path, fresh=False, tune=None):
                 if rd.is_done(name):
                     log.info("stage %s already done; skipping", name)
                     continue
+                if stage_base.shareable(name, cfg) and not fresh:
+                    source = find_stage(cfg["run"]["dir"], name, ids[name], exclude=rd.path)
+                    if source and rd.adopt(name, source, ids[name]):
+                        log.info("stage %s: reusing the outputs of run %s (same input and %s settings)", name,
+                                 os.path.basename(source), name)
+                        continue
                 log.info("stage %s", name)
-                with rd.stage(name) as record:
+                with rd.stage(name, ids[name]) as record:
                     if name in READS_INPUT:
                         verify_unchanged(fp, f"before stage {name}")
                     try:

@@ -14,6 +14,7 @@ import fcntl
 import hashlib
 import logging
 import os
+import shutil
 import socket
 import time
 
@@ -73,11 +74,13 @@ class RunDir:
         return all(v["state"] == "done" for v in self.load()["stages"].values())
 
     @contextlib.contextmanager
-    def stage(self, name):
-        """Mark a stage running, then done (with the summary the body stores) or failed."""
+    def stage(self, name, identity=None):
+        """Mark a stage running, then done (with the summary the body stores and the stage's identity,
+        see :mod:`bigsmooth.stages.base`) or failed."""
         m = self.load()
         entry = m["stages"][name]
         entry.update(state="running", started=_now())
+        entry.pop("reused_from", None)
         entry.pop("error", None)
         self.save(m)
         t0 = time.monotonic()
@@ -95,9 +98,36 @@ class RunDir:
             raise
         m = self.load()
         m["stages"][name].update(state="done", finished=_now(), seconds=round(time.monotonic() - t0, 3),
-                                 summary=record)
+                                 summary=record, **({"identity": identity} if identity else {}))
         self.save(m)
         log.info("stage %s done in %.1f s", name, time.monotonic() - t0)
+
+    def adopt(self, name, source, identity):
+        """Take stage ``name``'s outputs from the run directory ``source`` (same identity): its files
+        are hard-linked (copied where links are not possible) into a temporary folder that is renamed
+        into place, then the stage is marked done with ``reused_from``. Finished stage files are never
+        written again (every write replaces a file), so a link shares exactly the finished content.
+        Returns False, leaving nothing behind, if the source's files cannot be read."""
+        src_manifest = atomic.read_json(os.path.join(source, "manifest.json"))
+        src_dir = os.path.join(source, name)
+        dst_dir = os.path.join(self.path, name)
+        tmp = os.path.join(self.path, f".adopt-{name}")
+        shutil.rmtree(tmp, ignore_errors=True)
+        try:
+            shutil.copytree(src_dir, tmp, copy_function=_link_or_copy)
+        except (OSError, shutil.Error) as exc:
+            shutil.rmtree(tmp, ignore_errors=True)
+            log.info("stage %s: could not reuse the outputs of %s (%s); computing them", name, source, exc)
+            return False
+        shutil.rmtree(dst_dir, ignore_errors=True)
+        os.rename(tmp, dst_dir)
+        atomic.fsync_dir(self.path)
+        m = self.load()
+        m["stages"][name] = {"state": "done", "finished": _now(), "seconds": 0.0, "identity": identity,
+                             "reused_from": src_manifest["run_id"],
+                             "summary": src_manifest["stages"][name].get("summary", {})}
+        self.save(m)
+        return True
 
     def lock(self):
         """Hold an exclusive fcntl lock on the run for the whole block; fail at once if held."""
@@ -128,6 +158,33 @@ def hold_lock(folder, what):
         yield
     finally:
         os.close(fd)
+
+
+def _link_or_copy(src, dst):
+    try:
+        os.link(src, dst)
+    except OSError:
+        shutil.copy2(src, dst)
+    return dst
+
+
+def find_stage(run_root, name, identity, exclude):
+    """A finished run directory under ``run_root`` whose stage ``name`` is done with ``identity``
+    (newest first), or None."""
+    if not os.path.isdir(run_root):
+        return None
+    found = []
+    for entry in os.listdir(run_root):
+        path = os.path.join(run_root, entry)
+        if path == exclude:
+            continue
+        try:
+            st = atomic.read_json(os.path.join(path, "manifest.json"))["stages"].get(name, {})
+        except (OSError, ValueError, KeyError):
+            continue
+        if st.get("state") == "done" and st.get("identity") == identity and os.path.isdir(os.path.join(path, name)):
+            found.append((st.get("finished", ""), path))
+    return max(found)[1] if found else None
 
 
 def _now():
