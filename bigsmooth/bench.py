@@ -38,6 +38,8 @@ import time
 
 import numpy as np
 
+from . import artifacts as art
+
 
 def exact_sample_recall(E, ind, sample_rows, rng, chunk=50_000):
     """Recall@k of neighbour lists ``ind`` against exact neighbours for a random sample of rows.
@@ -122,15 +124,13 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
     import scipy.sparse.linalg as spla
     from .kernels import laplacian, sweepcg
     from .rundir import RunDir
-    from .stages.graph import load_graph
-    from .stages.order import load_split
     from .stages.solve import work_files
 
     rd = RunDir(rundir)
-    W = load_graph(rd, mmap=False)
-    Y = np.load(rd.file("embed", "scores.npy"))[:, :1]
-    perm = np.load(rd.file("order", "order.npy"))
-    split = load_split(rd)
+    W = art.GRAPH_WEIGHTS.load(rd)
+    Y = art.EMBED_SCORES.load(rd)[:, :1]
+    perm = art.ORDER_PERM.load(rd)
+    split = art.load_split(rd)
     tol = cfg["solve"]["tol"]
     mean_deg = float(np.asarray(W.sum(axis=1)).mean())
     # warm the compiled kernels on a tiny system so compilation is not timed
@@ -240,10 +240,10 @@ def _job(args, base):
         raise SystemExit(f"the job failed with exit code {proc.returncode}")
     peak_kb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     rundir = _the_run(base)
-    m = read_json(os.path.join(rundir, "manifest.json"))
-    solve = read_json(os.path.join(rundir, "solve", "solve.json"))
-    E = np.load(os.path.join(rundir, "embed", "embedding.npy"), mmap_mode="r")
-    ind = np.load(os.path.join(rundir, "graph", "neighbours.npy"), mmap_mode="r")
+    m = read_json(os.path.join(rundir, art.MANIFEST))
+    solve = art.SOLVE_INFO.load(rundir)
+    E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
+    ind = art.GRAPH_NEIGHBOURS.load(rundir, mmap=True)
     t0 = time.perf_counter()
     recall = exact_sample_recall(E, ind, args.sample, np.random.default_rng(0))
     t_recall = time.perf_counter() - t0
@@ -315,7 +315,6 @@ def main(argv=None):
     if args.race_only and args.no_race:
         p.error("--race-only and --no-race exclude each other")
 
-    from .atomic import read_json
     from .config import load_config
 
     base = os.path.abspath(os.path.join(args.dir, f"rows-{args.rows}"))
@@ -324,7 +323,7 @@ def main(argv=None):
     else:
         part, rundir = _job(args, base)
     cfg = load_config(os.path.join(base, "bigsmooth.toml"))
-    emb = read_json(os.path.join(rundir, "embed", "embed.json"))
+    emb = art.EMBED_INFO.load(rundir)
     table = {
         "machine": machine_info(),
         "rows": args.rows, "feature_columns": len(cfg["input"]["numeric_features"]) + len(cfg["input"]["categorical_features"]),

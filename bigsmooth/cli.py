@@ -8,6 +8,7 @@ import time
 import traceback
 
 from . import __version__
+from . import artifacts as art
 from .errors import EXIT_CODES, EXIT_OK, EXIT_SOFTWARE, EXIT_USAGE, BigsmoothError
 
 log = logging.getLogger("bigsmooth")
@@ -116,15 +117,15 @@ def _print_result(res):
     from .stages.audit import summary_lines
 
     out = res["output"]
-    report = read_json(os.path.join(out, "_audit.json"))
+    report = read_json(os.path.join(out, art.OUTPUT_AUDIT))
     if res["already_complete"]:
         print(f"run {res['run_id']} was already complete; nothing done.")
     else:
         for line in summary_lines(report):
             print(line)
     print(f"output:    {out}")
-    print(f"audit:     {os.path.join(out, '_audit.json')}")
-    print(f"report:    {os.path.join(out, '_report.html')}")
+    print(f"audit:     {os.path.join(out, art.OUTPUT_AUDIT)}")
+    print(f"report:    {os.path.join(out, art.OUTPUT_REPORT)}")
     print(f"run dir:   {res['run_dir']}")
 
 
@@ -145,7 +146,7 @@ def cmd_demo(args):
         raise BigsmoothError("--rows must be at least 100")
     base = os.path.abspath(args.dir)
     data = os.path.join(base, "data", "applicants")
-    made = os.path.join(base, "data", ".demo.json")
+    made = os.path.join(base, "data", art.DEMO_RECORD)
     if not os.path.isdir(data) or not os.listdir(data):
         log.info("generating %d synthetic applicants under %s", rows, data)
         demo.write_demo_table(data, rows, seed=seed)
@@ -185,12 +186,11 @@ def cmd_tune(args):
     res = run_job(args.config, tune={"lams": lams, "budget": budget, "holdout": args.holdout})
     for line in table_lines(res["tune"]):
         print(line)
-    print(f"saved: {os.path.join(res['run_dir'], 'tune', 'tune.json')} and tradeoff.png")
+    print(f"saved: {art.TUNE_INFO.path(res['run_dir'])} and {art.TUNE_PLOT.path(res['run_dir'])}")
     return EXIT_OK
 
 
 def cmd_report(args):
-    from . import atomic
     from .config import load_config
     from .errors import InputMissingError
     from .rundir import RunDir
@@ -199,18 +199,18 @@ def cmd_report(args):
     rd = RunDir(args.run_dir)
     if not rd.exists():
         raise InputMissingError(f"{args.run_dir} is not a run directory (no manifest.json)")
-    if not os.path.exists(rd.file("audit", "audit.json")):
+    if not art.AUDIT_REPORT_JSON.exists(rd):
         raise InputMissingError(f"{args.run_dir} has no audit yet (the audit stage has not finished); run the job first")
     cfg = load_config(args.config or rd.load()["config_path"])
-    report.write(rd, cfg, atomic.read_json(rd.file("audit", "audit.json")))
-    print(f"report: {rd.file('audit', 'report.html')}")
+    report.write(rd, cfg, art.AUDIT_REPORT_JSON.load(rd))
+    print(f"report: {art.AUDIT_REPORT_HTML.path(rd)}")
     return EXIT_OK
 
 
 def cmd_status(args):
     from .atomic import read_json
 
-    path = os.path.join(args.run_dir, "manifest.json")
+    path = os.path.join(args.run_dir, art.MANIFEST)
     if not os.path.exists(path):
         from .errors import InputMissingError
         raise InputMissingError(f"{args.run_dir} is not a run directory (no manifest.json)")
@@ -228,10 +228,8 @@ def cmd_status(args):
         secs = f"{st['seconds']:.1f}" if "seconds" in st else "-"
         print(f"{name:<9} {st['state']:<8} {secs:>9}" + (f"  {st['error']}" if st.get("error") else "")
               + (f"  (reused from run {st['reused_from']})" if st.get("reused_from") else ""))
-    sol = os.path.join(args.run_dir, "solve", "solve.json")
-    ck = os.path.join(args.run_dir, "checkpoint", "solver.npz")
-    if os.path.exists(sol):
-        s = read_json(sol)
+    if art.SOLVE_INFO.exists(args.run_dir):
+        s = art.SOLVE_INFO.load(args.run_dir)
         print(f"solver: {s['method']} ({s['laplacian']}, lam={s['lam']:g}) {s['status']} after {s['sweeps']} "
               f"sweeps; final relative residual {s['final_residual']:.3e}")
         res = s["residuals"]
@@ -241,9 +239,8 @@ def cmd_status(args):
             print(f"  sweep {i:>5}  {what} {res[i]:.3e}")
         for sweep, true in s.get("true_residual_checks", []):
             print(f"  sweep {int(sweep):>5}  true relative residual ||Cy - Af|| / ||Cy|| {true:.3e}")
-    elif os.path.exists(ck):
-        from .stages.solve import load_checkpoint
-        c = load_checkpoint(ck)
+    elif art.SOLVE_CHECKPOINT.exists(args.run_dir):
+        c = art.SOLVE_CHECKPOINT.load(args.run_dir)
         print(f"solver: in progress; checkpoint after sweep {c['sweep']}, residual {c['residuals'][-1]:.3e}")
     return EXIT_OK
 

@@ -4,6 +4,7 @@ import os
 import shutil
 import time
 
+from . import artifacts
 from . import config as config_mod
 from .atomic import read_json
 from .errors import DataError, GateError, InputMissingError, OutputError
@@ -51,7 +52,7 @@ def _unfinished_with_other_input(run_root, chash, input_hash):
     if not os.path.isdir(run_root):
         return out
     for name in sorted(os.listdir(run_root)):
-        path = os.path.join(run_root, name, "manifest.json")
+        path = os.path.join(run_root, name, artifacts.MANIFEST)
         try:
             m = read_json(path)
         except (OSError, ValueError):
@@ -77,7 +78,7 @@ def _handle_input_change(cfg, chash, fp, rid):
         log.warning("the unfinished run %s was started on other input files; not resuming it, starting a "
                     "fresh run. %d files differ:\n  %s", path, len(lines), listing)
         with hold_lock(path, f"run {path}"):
-            m = read_json(os.path.join(path, "manifest.json"))
+            m = read_json(os.path.join(path, artifacts.MANIFEST))
             m["superseded_by"] = rid
             RunDir(path).save(m)
 
@@ -85,14 +86,14 @@ def _handle_input_change(cfg, chash, fp, rid):
 def _check_gates(rd, cfg, before_publish):
     """Raise GateError if an audit gate failed: before publishing when gates.on_fail = "hold" (nothing
     is published; last night's output stays current), after it when "publish"."""
-    failed = [g for g in read_json(rd.file("audit", "audit.json")).get("gates", []) if g["state"] == "failed"]
+    failed = [g for g in artifacts.AUDIT_REPORT_JSON.load(rd).get("gates", []) if g["state"] == "failed"]
     if not failed or (before_publish and cfg["gates"]["on_fail"] == "publish"):
         return
     lines = "\n  ".join(g["line"] for g in failed)
     what = ("nothing was published; the output's current version is unchanged" if before_publish
             else "the output was published anyway (gates.on_fail = \"publish\")")
     raise GateError(f"{len(failed)} audit gate(s) failed:\n  {lines}\n{what}. The audit is in "
-                    f"{rd.file('audit', 'audit.json')} and {rd.file('audit', 'report.html')}; lower solve.lam "
+                    f"{artifacts.AUDIT_REPORT_JSON.path(rd)} and {artifacts.AUDIT_REPORT_HTML.path(rd)}; lower solve.lam "
                     "(see `bigsmooth tune`) or change the [gates] thresholds.")
 
 
@@ -115,7 +116,7 @@ def _reading(name, fp, call):
                                 f"{lines}\nReplace or remove them and run again.") from exc
 
 
-KEEP_ON_FRESH = (".lock", "tune")     # the lock we hold; tuning results (the graph is rebuilt the same)
+KEEP_ON_FRESH = (artifacts.LOCK, os.path.dirname(artifacts.TUNE_INFO.rel))     # the lock we hold; tuning results (the graph is rebuilt the same)
 
 
 def _discard(rd):
@@ -124,7 +125,7 @@ def _discard(rd):
     then the set-aside folder is deleted."""
     aside = os.path.join(rd.path, f".discard-{os.getpid()}-{int(time.time() * 1e6)}")
     os.makedirs(aside)
-    os.rename(rd.manifest_path, os.path.join(aside, "manifest.json"))
+    os.rename(rd.manifest_path, os.path.join(aside, artifacts.MANIFEST))
     for name in os.listdir(rd.path):
         if name not in KEEP_ON_FRESH and not name.startswith(".discard-"):
             os.rename(os.path.join(rd.path, name), os.path.join(aside, name))

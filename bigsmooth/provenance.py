@@ -6,22 +6,19 @@ directory (publish/pending.json), so the audit, the report and the published fil
 same version folder, also after an interruption.
 """
 import hashlib
-import os
 import time
 
-from . import __version__, atomic
+from . import __version__, artifacts
 
 PARQUET_KEY = b"bigsmooth.provenance"
 
 
 def version_name(rundir, run_id):
     """The output version folder of this run: chosen on first call, then read back."""
-    pending = rundir.file("publish", "pending.json")
-    if os.path.exists(pending):
-        return atomic.read_json(pending)["version"]
+    if artifacts.PUBLISH_PENDING.exists(rundir):
+        return artifacts.PUBLISH_PENDING.load(rundir)["version"]
     version = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime()) + "-" + run_id[:8]
-    rundir.stage_dir("publish")
-    atomic.write_json(pending, {"version": version})
+    artifacts.PUBLISH_PENDING.save(rundir, {"version": version})
     return version
 
 

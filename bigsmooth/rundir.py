@@ -18,7 +18,7 @@ import shutil
 import socket
 import time
 
-from . import atomic, faults
+from . import artifacts, atomic, faults
 from .errors import LockHeldError, OutputError
 
 log = logging.getLogger("bigsmooth.run")
@@ -33,15 +33,7 @@ def run_id(cfg_hash, input_hash):
 class RunDir:
     def __init__(self, path):
         self.path = os.fspath(path)
-        self.manifest_path = os.path.join(self.path, "manifest.json")
-
-    def stage_dir(self, stage):
-        d = os.path.join(self.path, stage)
-        os.makedirs(d, exist_ok=True)
-        return d
-
-    def file(self, stage, name):
-        return os.path.join(self.path, stage, name)
+        self.manifest_path = os.path.join(self.path, artifacts.MANIFEST)
 
     def exists(self):
         return os.path.exists(self.manifest_path)
@@ -108,7 +100,7 @@ class RunDir:
         into place, then the stage is marked done with ``reused_from``. Finished stage files are never
         written again (every write replaces a file), so a link shares exactly the finished content.
         Returns False, leaving nothing behind, if the source's files cannot be read."""
-        src_manifest = atomic.read_json(os.path.join(source, "manifest.json"))
+        src_manifest = atomic.read_json(os.path.join(source, artifacts.MANIFEST))
         src_dir = os.path.join(source, name)
         dst_dir = os.path.join(self.path, name)
         tmp = os.path.join(self.path, f".adopt-{name}")
@@ -141,7 +133,7 @@ def hold_lock(folder, what):
     another process has it."""
     try:
         os.makedirs(folder, exist_ok=True)
-        fd = os.open(os.path.join(folder, ".lock"), os.O_RDWR | os.O_CREAT, 0o644)
+        fd = os.open(os.path.join(folder, artifacts.LOCK), os.O_RDWR | os.O_CREAT, 0o644)
     except OSError as exc:
         raise OutputError(f"cannot create the lock file in {folder}: {exc.strerror}") from None
     try:
@@ -179,7 +171,7 @@ def find_stage(run_root, name, identity, exclude):
         if path == exclude:
             continue
         try:
-            st = atomic.read_json(os.path.join(path, "manifest.json"))["stages"].get(name, {})
+            st = atomic.read_json(os.path.join(path, artifacts.MANIFEST))["stages"].get(name, {})
         except (OSError, ValueError, KeyError):
             continue
         if st.get("state") == "done" and st.get("identity") == identity and os.path.isdir(os.path.join(path, name)):

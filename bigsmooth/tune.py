@@ -15,10 +15,10 @@ draws the report again with the trade-off in it ("applied lam X; recommended lam
 has already finished, ``bigsmooth report RUN_DIR`` draws it again.
 """
 import logging
-import os
 
 import numpy as np
 
+from . import artifacts as art
 from . import atomic
 from .errors import ConfigError
 from .kernels import laplacian, metrics, sweepcg
@@ -35,16 +35,14 @@ def recommend(path, budget):
 
 
 def tune_run(rd, cfg, lams, budget, holdout):
-    from .stages.order import load_split
-
     inp, s = cfg["input"], cfg["solve"]
     if not inp["label"]:
         raise ConfigError("tuning needs labelled rows: set input.label to a 0/1 outcome column (null where unknown)")
-    Y = np.load(rd.file("embed", "scores.npy"))
-    labels = np.load(rd.file("embed", "label.npy"))
-    nb = np.load(rd.file("graph", "neighbours.npy"), mmap_mode="r")
-    perm = np.load(rd.file("order", "order.npy"))
-    split = load_split(rd)
+    Y = art.EMBED_SCORES.load(rd)
+    labels = art.EMBED_LABEL.load(rd)
+    nb = art.GRAPH_NEIGHBOURS.load(rd, mmap=True)
+    perm = art.ORDER_PERM.load(rd)
+    split = art.load_split(rd)
     n = len(Y)
     deg = np.empty(n)
     deg[perm] = split.degree
@@ -100,9 +98,8 @@ def tune_run(rd, cfg, lams, budget, holdout):
            "applied_lam": s["lam"], "warnings": warnings}
     for w in warnings:
         log.warning("tune: %s", w)
-    d = rd.stage_dir("tune")
-    atomic.write_json(os.path.join(d, "tune.json"), out)
-    _plot(out, os.path.join(d, "tradeoff.png"))
+    art.TUNE_INFO.save(rd, out)
+    _plot(out, art.TUNE_PLOT.path(rd))
     return out
 
 

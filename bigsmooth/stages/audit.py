@@ -8,10 +8,10 @@ import logging
 
 import numpy as np
 
-from .. import atomic, provenance
+from .. import artifacts as art
+from .. import provenance
 from ..kernels import influence, laplacian, metrics
 from ..table import ids_at_rows
-from .graph import load_graph
 
 log = logging.getLogger("bigsmooth.audit")
 
@@ -25,8 +25,7 @@ CHUNK = 1_000_000
 
 
 def _knn(rundir):
-    return (np.load(rundir.file("graph", "neighbours.npy"), mmap_mode="r"),
-            np.load(rundir.file("graph", "distances.npy"), mmap_mode="r"))
+    return art.GRAPH_NEIGHBOURS.load(rundir, mmap=True), art.GRAPH_DISTANCES.load(rundir, mmap=True)
 
 
 def chunked_consistency(decisions, nb):
@@ -335,15 +334,15 @@ def _sample(n, size, rng):
 
 def run(rundir, cfg, fp):
     inp, a = cfg["input"], cfg["audit"]
-    W = load_graph(rundir)
-    Y = np.load(rundir.file("embed", "scores.npy"))
-    F = np.load(rundir.file("solve", "adjusted.npy"))
-    E = np.load(rundir.file("embed", "embedding.npy"), mmap_mode="r")
-    codes = np.load(rundir.file("embed", "protected.npy"))
-    labels = np.load(rundir.file("embed", "label.npy")) if inp["label"] else None
-    scan = atomic.read_json(rundir.file("scan", "scan.json"))
-    embed = atomic.read_json(rundir.file("embed", "embed.json"))
-    solve = atomic.read_json(rundir.file("solve", "solve.json"))
+    W = art.GRAPH_WEIGHTS.load(rundir, mmap=True)
+    Y = art.EMBED_SCORES.load(rundir)
+    F = art.SOLVE_ADJUSTED.load(rundir)
+    E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
+    codes = art.EMBED_PROTECTED.load(rundir)
+    labels = art.EMBED_LABEL.load(rundir) if inp["label"] else None
+    scan = art.SCAN_INFO.load(rundir)
+    embed = art.EMBED_INFO.load(rundir)
+    solve = art.SOLVE_INFO.load(rundir)
     rate, min_rows = a["select_rate"], a["min_group_rows"]
     lo, hi = inp["score_range"]
     nb, dist = _knn(rundir)
@@ -363,7 +362,7 @@ def run(rundir, cfg, fp):
     sel_before = y >= metrics.quantile_cutoff(y, rate)
     sel_after = f >= metrics.quantile_cutoff(f, rate)
     compare = {}
-    other = np.load(rundir.file("embed", "compare.npy"))
+    other = art.EMBED_COMPARE.load(rundir)
     counterfactual = None
     if inp["counterfactual_score"]:
         rows = _sample(n, a["counterfactual_rows"], np.random.default_rng(cfg["run"]["seed"] + 6))
@@ -501,7 +500,7 @@ def run(rundir, cfg, fp):
     manifest = rundir.load()
     version = provenance.version_name(rundir, manifest["run_id"])
     report["provenance"] = provenance.record(manifest, cfg, fp, version, report["gates"])
-    atomic.write_json(rundir.file("audit", "audit.json"), report)
+    art.AUDIT_REPORT_JSON.save(rundir, report)
     from . import report as html_report
 
     html_report.write(rundir, cfg, report)

@@ -14,6 +14,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import scipy.sparse as sp
 
+from .. import artifacts as art
 from .. import atomic, faults
 from ..errors import DataError
 from ..kernels import fairspace
@@ -93,19 +94,19 @@ class _Outputs:
 
 def run(rundir, cfg, fp):
     inp, ecfg = cfg["input"], cfg["embed"]
-    scan = atomic.read_json(rundir.file("scan", "scan.json"))
+    scan = art.SCAN_INFO.load(rundir)
     levels = scan["levels"]
     n = scan["rows"]
     names = feature_names(inp, levels)
     p = len(names)
     prot_levels = {c: [v for v, _ in levels[c]] for c in inp["protected"]}
     m = sum(len(v) for v in prot_levels.values())
-    d = rundir.stage_dir("embed")
+    art.EMBED_SCORES.folder(rundir)
     out = _Outputs()
-    Y = out.open(os.path.join(d, "scores.npy"), (n, len(inp["scores"])), np.float64)
-    label = out.open(os.path.join(d, "label.npy"), (n,), np.float64, fill=np.nan) if inp["label"] else None
-    codes = out.open(os.path.join(d, "protected.npy"), (n, len(inp["protected"])), np.int32)
-    other = out.open(os.path.join(d, "compare.npy"), (n, len(other_columns(inp))), np.float64)
+    Y = out.open(art.EMBED_SCORES.path(rundir), (n, len(inp["scores"])), np.float64)
+    label = out.open(art.EMBED_LABEL.path(rundir), (n,), np.float64, fill=np.nan) if inp["label"] else None
+    codes = out.open(art.EMBED_PROTECTED.path(rundir), (n, len(inp["protected"])), np.int32)
+    other = out.open(art.EMBED_COMPARE.path(rundir), (n, len(other_columns(inp))), np.float64)
 
     con = connect_budget(cfg["run"]["memory_mb"])
     src = Source(con, fp)
@@ -161,7 +162,7 @@ def run(rundir, cfg, fp):
                         "the protected attributes, so every row would look the same. Check that the feature "
                         "columns carry values (all rows identical?) and that input.numeric_features / "
                         "categorical_features name the right columns.")
-    E = out.open(os.path.join(d, "embedding.npy"), (n, dim), np.float32)
+    E = out.open(art.EMBED_EMBEDDING.path(rundir), (n, dim), np.float32)
 
     rng = np.random.default_rng(cfg["run"]["seed"])
     sample = np.sort(rng.choice(n, size=min(n, ecfg["probe_rows"]), replace=False))
@@ -202,6 +203,6 @@ def run(rundir, cfg, fp):
     info = {"features": names, "dim": dim, "removed_dimensions": fs.removed,
             "constant_features": list(np.array(names)[fs.constant]), "leakage": leakage,
             "probe_rows": len(sample), "mean": fs.mean, "scale": fs.scale, "transform": fs.transform}
-    atomic.write_json(os.path.join(d, "embed.json"), info)
+    art.EMBED_INFO.save(rundir, info)
     return {"rows": n, "features": p, "dim": dim, "removed_dimensions": fs.removed,
             "max_leakage_auc": {c: v["max_fair_space_auc"] for c, v in leakage.items()}}

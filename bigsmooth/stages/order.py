@@ -17,15 +17,14 @@ into blocks of ``solve.block_rows``.
 """
 import contextlib
 import logging
-import os
 
 import numpy as np
 from scipy.cluster.vq import kmeans2
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
+from .. import artifacts as art
 from .. import atomic
 from ..kernels import sweepcg
-from .graph import load_graph
 
 log = logging.getLogger("bigsmooth.order")
 
@@ -87,39 +86,25 @@ def local_order(W, labels):
     return rcm[np.argsort(labels[rcm], kind="stable")]
 
 
-def load_split(rundir):
-    """The order stage's :class:`~bigsmooth.kernels.sweepcg.SplitGraph` (arrays memory-mapped)."""
-    d = rundir.file("order", "split")
-
-    def arr(name):
-        return np.load(os.path.join(d, f"{name}.npy"), mmap_mode="r")
-
-    bounds = np.load(rundir.file("order", "groups.npy"))
-    parts = [tuple(arr(f"{x}-{k}") for k in ("indptr", "indices", "weight")) for x in "LUO"]
-    return sweepcg.SplitGraph(arr("degree"), bounds, *parts)
-
-
 def run(rundir, cfg):
-    E = np.load(rundir.file("embed", "embedding.npy"), mmap_mode="r")
+    E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
     labels, groups = cluster_labels(E, cfg["solve"]["groups"], cfg["run"]["seed"] + 2)
     bounds = np.concatenate([[0], np.cumsum(np.bincount(labels, minlength=groups))]).astype(np.int64)
-    W = load_graph(rundir)
+    W = art.GRAPH_WEIGHTS.load(rundir, mmap=True)
     share = inside_share(W, labels)
     sizes = np.diff(bounds)
     log.info("block groups: %d (rows per group %d-%d); %.1f%% of edge weight inside groups",
              groups, sizes.min(), sizes.max(), 100 * share)
     perm = local_order(W, labels)
-    d = rundir.stage_dir("order")
-    split_dir = os.path.join(d, "split")
-    os.makedirs(split_dir, exist_ok=True)
+    art.ORDER_SPLIT.folder(rundir)
     with contextlib.ExitStack() as files:
         def alloc(name, size, dtype):
-            return files.enter_context(atomic.open_memmap(os.path.join(split_dir, f"{name}.npy"), dtype, (size,)))
+            return files.enter_context(atomic.open_memmap(art.ORDER_SPLIT.path(rundir, name), dtype, (size,)))
 
         split = sweepcg.split_graph(W, perm, bounds, alloc)
         between = int(split.O[0][-1])
-    atomic.save_npy(os.path.join(d, "order.npy"), perm)
-    atomic.save_npy(os.path.join(d, "groups.npy"), bounds)
+    art.ORDER_PERM.save(rundir, perm)
+    art.ORDER_GROUPS.save(rundir, bounds)
     log.info("graph split for the solver: %d couplings inside groups, %d between groups",
              W.nnz - between, between)
     return {"method": "kmeans+rcm", "groups": int(groups), "largest_group": int(sizes.max()),

@@ -23,6 +23,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .. import artifacts as art
 from .. import atomic, faults, provenance
 from ..errors import DataError, OutputError
 from ..table import batch_rows_for, connect_budget, id_digests, verify_unchanged
@@ -77,13 +78,13 @@ def _clear_leftovers(root):
 def _move_pointers(root, version, run_id, rows):
     faults.point("publish:before-pointer")
     pointer = {"version": version, "run_id": run_id, "rows": rows, "published": version[:16]}
-    atomic.write_bytes(os.path.join(root, "CURRENT"), (json.dumps(pointer, indent=2) + "\n").encode())
+    atomic.write_bytes(os.path.join(root, art.OUTPUT_POINTER), (json.dumps(pointer, indent=2) + "\n").encode())
     faults.point("publish:before-link")
     link_tmp = os.path.join(root, f".current-{version}")
     with contextlib.suppress(FileNotFoundError):
         os.unlink(link_tmp)
     os.symlink(version, link_tmp)
-    os.replace(link_tmp, os.path.join(root, "current"))
+    os.replace(link_tmp, os.path.join(root, art.OUTPUT_LINK))
     atomic.fsync_dir(root)
 
 
@@ -92,7 +93,7 @@ def _verify_input(rundir, cfg, fp):
     the same order as the scan saw them (an order-sensitive digest). Otherwise rows would get other
     rows' adjusted scores."""
     verify_unchanged(fp, "while publishing")
-    want = atomic.read_json(rundir.file("scan", "scan.json")).get("id_digests")
+    want = art.SCAN_INFO.load(rundir).get("id_digests")
     if want is None:
         return
     got = id_digests(connect_budget(cfg["run"]["memory_mb"]), fp, cfg["input"]["id"])
@@ -109,9 +110,9 @@ def _refresh_audit(rundir, cfg, fp, version):
     the audit). Returns the provenance record."""
     from . import report as html_report
 
-    audit = atomic.read_json(rundir.file("audit", "audit.json"))
+    audit = art.AUDIT_REPORT_JSON.load(rundir)
     audit["provenance"] = provenance.record(rundir.load(), cfg, fp, version, audit["gates"])
-    atomic.write_json(rundir.file("audit", "audit.json"), audit)
+    art.AUDIT_REPORT_JSON.save(rundir, audit)
     html_report.write(rundir, cfg, audit)
     return audit["provenance"]
 
@@ -131,8 +132,8 @@ def run(rundir, cfg, fp, run_id):
             return {"version": version, "path": final, "rows": fp["rows"], "files": len(fp["files"])}
     except OSError as exc:
         raise OutputError(f"cannot write the output under {root}: {exc}") from None
-    Y = np.load(rundir.file("embed", "scores.npy"), mmap_mode="r")
-    F = np.load(rundir.file("solve", "adjusted.npy"), mmap_mode="r")
+    Y = art.EMBED_SCORES.load(rundir, mmap=True)
+    F = art.SOLVE_ADJUSTED.load(rundir, mmap=True)
     lo, hi = inp["score_range"]
     cols = output_columns(inp, out)
     meta = {provenance.PARQUET_KEY: json.dumps(_refresh_audit(rundir, cfg, fp, version), sort_keys=True).encode()}
@@ -154,8 +155,8 @@ def run(rundir, cfg, fp, run_id):
             faults.point(f"publish:file:{i}")
         if written != fp["rows"]:
             raise RuntimeError(f"wrote {written} rows; the input has {fp['rows']}")
-        shutil.copyfile(rundir.file("audit", "audit.json"), os.path.join(staging, "_audit.json"))
-        shutil.copyfile(rundir.file("audit", "report.html"), os.path.join(staging, "_report.html"))
+        shutil.copyfile(art.AUDIT_REPORT_JSON.path(rundir), os.path.join(staging, art.OUTPUT_AUDIT))
+        shutil.copyfile(art.AUDIT_REPORT_HTML.path(rundir), os.path.join(staging, art.OUTPUT_REPORT))
         for dirpath, _, files in os.walk(staging):
             for f in files:
                 with open(os.path.join(dirpath, f), "rb") as fh:

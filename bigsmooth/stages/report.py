@@ -14,11 +14,11 @@ the Agg backend (no display needed). :func:`write` reads what it needs from the 
 import base64
 import html
 import io
-import os
 
 import numpy as np
 
-from .. import atomic, provenance
+from .. import artifacts as art
+from .. import provenance
 
 # (key, label, definition, which direction is better)
 FIGURES = (
@@ -342,18 +342,15 @@ def render(report, plots, tune=None, applied_lam=None):
 
 def write(rundir, cfg, report):
     """Draw the page for ``report`` from the arrays of the run directory and write audit/report.html."""
-    Y = np.load(rundir.file("embed", "scores.npy"), mmap_mode="r")
-    F = np.load(rundir.file("solve", "adjusted.npy"), mmap_mode="r")
-    codes = np.load(rundir.file("embed", "protected.npy"), mmap_mode="r")
-    scan = atomic.read_json(rundir.file("scan", "scan.json"))
+    Y = art.EMBED_SCORES.load(rundir, mmap=True)
+    F = art.SOLVE_ADJUSTED.load(rundir, mmap=True)
+    codes = art.EMBED_PROTECTED.load(rundir, mmap=True)
+    scan = art.SCAN_INFO.load(rundir)
     protected = cfg["input"]["protected"]
     levels = {c: [v for v, _ in scan["levels"][c]] for c in protected}
-    tune_path = rundir.file("tune", "tune.json")
-    tune = atomic.read_json(tune_path) if os.path.exists(tune_path) else None
+    tune = art.TUNE_INFO.load(rundir) if art.TUNE_INFO.exists(rundir) else None
     plots = _plots(report, np.asarray(Y), np.asarray(F), np.asarray(codes), levels, protected)
-    png = rundir.file("tune", "tradeoff.png")
-    if tune and os.path.exists(png):
-        with open(png, "rb") as fh:      # drawn by bigsmooth.tune
-            plots["tradeoff"] = "data:image/png;base64," + base64.b64encode(fh.read()).decode()
+    if tune and art.TUNE_PLOT.exists(rundir):      # drawn by bigsmooth.tune
+        plots["tradeoff"] = "data:image/png;base64," + base64.b64encode(art.TUNE_PLOT.load(rundir)).decode()
     page = render({**report, "note": cfg["audit"]["report_note"]}, plots, tune, applied_lam=cfg["solve"]["lam"])
-    atomic.write_bytes(rundir.file("audit", "report.html"), page.encode())
+    art.AUDIT_REPORT_HTML.save(rundir, page.encode())

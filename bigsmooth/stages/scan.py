@@ -9,7 +9,7 @@ import difflib
 import logging
 import os
 
-from .. import atomic
+from .. import artifacts as art
 from ..errors import ConfigError, DataError, InputMissingError, examples
 from ..table import RESERVED_COLUMNS, Source, connect_budget, id_digests, quote
 
@@ -210,6 +210,6 @@ def run(rundir, cfg, fp):
                         + "\nFix the rows (or the config) and run again; nothing was written to the output.")
     digests = id_digests(con, fp, inp["id"])
     info = {"rows": total, "files": len(fp["files"]), "columns": cols, "levels": levels, "id_digests": digests}
-    atomic.write_json(rundir.file("scan", "scan.json"), info)
+    art.SCAN_INFO.save(rundir, info)
     log.info("scanned %d rows in %d files: all checks passed", total, len(fp["files"]))
     return {"rows": total, "files": len(fp["files"])}

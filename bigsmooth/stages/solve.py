@@ -18,9 +18,9 @@ import os
 
 import numpy as np
 
+from .. import artifacts as art
 from .. import atomic, faults
 from ..kernels import laplacian, solver, sweepcg
-from .graph import load_graph
 
 log = logging.getLogger("bigsmooth.solve")
 
@@ -58,7 +58,7 @@ def previous_scores(rundir, cfg, Y):
     from ..table import ROW, Source, connect_budget, quote
 
     inp, out = cfg["input"], cfg["output"]
-    pointer = os.path.join(out["path"], "CURRENT")
+    pointer = os.path.join(out["path"], art.OUTPUT_POINTER)
     if not os.path.exists(pointer):
         log.info("warm start: nothing published in %s yet; starting from the raw scores", out["path"])
         return Y, {"used": False, "reason": "nothing published yet"}
@@ -108,23 +108,19 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
     """The default solver on the order stage's split graph. The scaled system is written to
     memory-mapped files in solve/system (its pages are the kernel's to evict), so the process holds
     only O(n) vectors plus the pages the sweeps are reading."""
-    from .order import load_split
-
     n, c = b.shape
-    d = rundir.stage_dir("solve")
-    split = load_split(rundir)
-    sysdir = os.path.join(d, "system")
-    os.makedirs(sysdir, exist_ok=True)
+    split = art.load_split(rundir)
+    art.SOLVE_SYSTEM.folder(rundir)
 
     def alloc(name, size, dtype):
-        return atomic.new_memmap(os.path.join(sysdir, f"{name}.npy"), dtype, (size,))
+        return atomic.new_memmap(art.SOLVE_SYSTEM.path(rundir, name), dtype, (size,))
 
     system = sweepcg.scale_split(split, s["lam"], cvec[perm], alloc=alloc)
     bounds = split.bounds
     with contextlib.ExitStack() as stack:
         if s["backend"] == "processes":
             # process workers map the solver's vectors as files too
-            work = stack.enter_context(work_files(n, c, _shm_key(rundir.path), os.path.join(d, "work")))
+            work = stack.enter_context(work_files(n, c, _shm_key(rundir.path), art.SOLVE_WORK.path(rundir)))
         else:
             work = sweepcg.Work.allocate(n, c)
         return _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
@@ -166,7 +162,7 @@ def work_files(n, c, key, fallback):
     os.makedirs(folder, exist_ok=True)
     try:
         yield sweepcg.Work.allocate(n, c, lambda name, shape: atomic.new_memmap(
-            os.path.join(folder, f"{name}.npy"), np.float64, shape))
+            art.member_file(folder, name), np.float64, shape))
     finally:
         if folder != fallback:
             shutil.rmtree(folder, ignore_errors=True)
@@ -246,25 +242,24 @@ def _blocks(rundir, s, A, b, Y, perm, ck_path, X0):
 
 def run(rundir, cfg):
     s = cfg["solve"]
-    Y = np.load(rundir.file("embed", "scores.npy"))
+    Y = art.EMBED_SCORES.load(rundir)
     n, c = Y.shape
     if s["method"] == "sweep-cg":
         # degrees from the split graph (permuted) so that W itself is never loaded
-        from .order import load_split
-
-        perm = np.load(rundir.file("order", "order.npy"))
+        perm = art.ORDER_PERM.load(rundir)
         deg = np.empty(n)
-        deg[perm] = load_split(rundir).degree
+        deg[perm] = art.load_split(rundir).degree
         W = None
         edges = int(np.count_nonzero(deg))
     else:
-        W = load_graph(rundir, mmap=False)
+        W = art.GRAPH_WEIGHTS.load(rundir)
         deg = laplacian.degrees(W)
         edges = W.nnz
     cvec = laplacian.row_weights_from_degrees(deg, s["laplacian"])
     b = cvec[:, None] * Y
     info = {"method": s["method"], "laplacian": s["laplacian"], "lam": s["lam"], "rows": n, "columns": c}
-    ck_path = os.path.join(rundir.stage_dir("checkpoint"), "solver.npz")
+    ck_path = art.SOLVE_CHECKPOINT.path(rundir)
+    art.SOLVE_CHECKPOINT.folder(rundir)
     if s["lam"] == 0 or edges == 0:
         F = Y.copy()
         info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[0.0], final_residual=0.0,
@@ -275,19 +270,17 @@ def run(rundir, cfg):
         res = solver.relative_residual(A, b, F)
         info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[res], final_residual=res)
     else:
-        perm = np.load(rundir.file("order", "order.npy"))
+        perm = art.ORDER_PERM.load(rundir)
         X0 = Y
         if s["warm_start"]:
             # kept in the run directory so that a resumed run starts from the same iterate even if
             # another job has published since
-            x0_path = rundir.file("solve", "x0.npy")
-            if os.path.exists(x0_path):
-                X0, info["warm_start"] = np.load(x0_path), atomic.read_json(x0_path + ".json")
+            if art.SOLVE_X0.exists(rundir) and art.SOLVE_X0_INFO.exists(rundir):
+                X0, info["warm_start"] = art.SOLVE_X0.load(rundir), art.SOLVE_X0_INFO.load(rundir)
             else:
                 X0, info["warm_start"] = previous_scores(rundir, cfg, Y)
-                rundir.stage_dir("solve")
-                atomic.save_npy(x0_path, X0)
-                atomic.write_json(x0_path + ".json", info["warm_start"])
+                art.SOLVE_X0.save(rundir, X0)
+                art.SOLVE_X0_INFO.save(rundir, info["warm_start"])
         if s["method"] == "sweep-cg":
             # decided from the warm-start record, not from X0's identity: a resumed run reads X0
             # back from solve/x0.npy
@@ -303,8 +296,8 @@ def run(rundir, cfg):
             log.warning("the solver stopped after %d sweeps at relative residual %.3e without reaching tol %.1e "
                         "(status %s); raise solve.max_sweeps or lower solve.lam", info["sweeps"],
                         info["final_residual"], s["tol"], info["status"])
-    atomic.save_npy(os.path.join(rundir.stage_dir("solve"), "adjusted.npy"), F)
-    atomic.write_json(rundir.file("solve", "solve.json"), info)
+    art.SOLVE_ADJUSTED.save(rundir, F)
+    art.SOLVE_INFO.save(rundir, info)
     log.info("solve: %s after %d sweeps, relative residual %.3e", info["status"], info["sweeps"],
              info["final_residual"])
     return {k: v for k, v in info.items() if k not in ("residuals", "true_residual_checks")}
