@@ -117,14 +117,14 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
     Each contender runs ``repeat`` times in turn and keeps its best time (the usual way to time on
     a noisy machine, as ``timeit`` does). With the 'processes' backend (joblib's loky workers), as in
     the job, the scaled system is written to memory-mapped files beside the run (counted in its
-    setup) and the solver's vectors go to :func:`bigsmooth.stages.solve.work_files`."""
+    setup) and the solver's vectors go to :func:`bigsmooth.parallel.work_files`."""
     import tempfile
 
     import scipy.sparse as sp
     import scipy.sparse.linalg as spla
     from .kernels import laplacian, sweepcg
     from .rundir import RunDir
-    from .stages.solve import work_files
+    from .parallel import make_executor, work_files
 
     rd = RunDir(rundir)
     W = art.GRAPH_WEIGHTS.load(rd)
@@ -176,7 +176,7 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
                     alloc = work = None
                     if backend == "processes":
                         # as in the job: the scaled system in files beside the run, the vectors in
-                        # shared memory where there is room (bigsmooth.stages.solve.work_files)
+                        # shared memory where there is room (bigsmooth.parallel.work_files)
                         def alloc(name, size, dtype):
                             return np.lib.format.open_memmap(os.path.join(tmp, f"{name}.npy"), mode="w+",
                                                              dtype=dtype, shape=(size,))
@@ -185,11 +185,11 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
                         # one pool of worker processes for the whole race, started untimed; a new
                         # worker's first solve is slower (the best of the repeats counts)
                         if pool is None:
-                            pool = sweepcg.make_executor(w, backend)
+                            pool = make_executor(w, backend)
                             list(pool.map(_warm_worker, [0.2] * w))
                         executor = pool
                     else:
-                        executor = sweepcg.make_executor(w, backend)
+                        executor = make_executor(w, backend)
                     # ours: scale the split graph for this lam, then sweep
                     t0 = time.perf_counter()
                     system = sweepcg.scale_split(split, lam, c[perm], alloc=alloc)

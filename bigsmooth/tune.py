@@ -19,7 +19,7 @@ import logging
 import numpy as np
 
 from . import artifacts as art
-from . import atomic
+from . import atomic, streams
 from .errors import ConfigError
 from .kernels import laplacian, metrics, sweepcg
 
@@ -51,7 +51,7 @@ def tune_run(rd, cfg, lams, budget, holdout):
     known = np.flatnonzero(np.isfinite(labels))
     if len(known) < 20:
         raise ConfigError(f"tuning needs labelled rows; only {len(known)} rows have a label")
-    rng = np.random.default_rng(cfg["run"]["seed"] + 5)
+    rng = streams.rng(cfg["run"]["seed"], "tune.holdout")
     held = np.zeros(n, dtype=bool)
     if holdout > 0:
         held[rng.choice(known, size=int(round(holdout * len(known))), replace=False)] = True

@@ -5,6 +5,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.sparse.csgraph import laplacian as csgraph_laplacian
 
+from bigsmooth import parallel
 from bigsmooth.kernels import laplacian, sweepcg
 from conftest import random_graph
 
@@ -90,7 +91,7 @@ def test_bit_identical_for_one_and_two_workers(rng, tmp_path, backend):
         return np.lib.format.open_memmap(str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape)
 
     shared = _mapped(system, tmp_path / "sys")
-    two = sweepcg.sweep_cg(shared, b, x0=Y, tol=1e-10, executor=sweepcg.make_executor(2, backend),
+    two = sweepcg.sweep_cg(shared, b, x0=Y, tol=1e-10, executor=parallel.make_executor(2, backend),
                            work=sweepcg.Work.allocate(2000, 2, mm))
     assert two.sweeps == serial.sweeps
     assert np.array_equal(two.x, serial.x)
@@ -100,7 +101,7 @@ def test_process_workers_follow_files_replaced_under_the_same_name(rng, tmp_path
     # the workers keep files mapped between tasks; a system written again to the same file names
     # (in place, same size: np.save truncates the same file; or removed and written with another
     # size) must be read afresh: each solve agrees with spsolve and with the serial solve, bit for bit
-    pool = sweepcg.make_executor(2, "processes")
+    pool = parallel.make_executor(2, "processes")
     try:
         for n, lam in ((800, 4.0), (800, 9.0), (1100, 4.0)):
             W = random_graph(n, 0.01, rng)
@@ -125,7 +126,7 @@ def test_process_workers_follow_files_replaced_under_the_same_name(rng, tmp_path
 def test_process_pool_deals_groups_by_size():
     # one task per worker, groups dealt largest first to the least loaded worker: the longest-
     # processing-time rule of list scheduling (R. L. Graham, 1969; cited from memory)
-    class Fake(sweepcg.ProcessPool):
+    class Fake(parallel.ProcessPool):
         def __init__(self):
             self.workers = 2
             self.sent = []
@@ -308,14 +309,12 @@ def test_scaled_start_is_no_farther_than_zero_and_converges(rng):
 
 
 def test_process_work_vectors_go_to_shared_memory_and_are_removed(tmp_path, monkeypatch):
-    from bigsmooth.stages import solve
-
     shm = tmp_path / "shm"
     shm.mkdir()
-    monkeypatch.setattr(solve, "SHM", str(shm))
+    monkeypatch.setattr(parallel, "SHM", str(shm))
     (shm / "bigsmooth-k").mkdir()                           # left by a killed run
     (shm / "bigsmooth-k" / "x.npy").write_bytes(b"stale")
-    with solve.work_files(100, 2, "k", str(tmp_path / "fallback")) as work:
+    with parallel.work_files(100, 2, "k", str(tmp_path / "fallback")) as work:
         assert work.x.shape == (100, 2) and isinstance(work.x, np.memmap)
         assert work.x.filename.startswith(str(shm / "bigsmooth-k")) and not work.x.any()
     assert not (shm / "bigsmooth-k").exists()               # removed afterwards
@@ -323,7 +322,7 @@ def test_process_work_vectors_go_to_shared_memory_and_are_removed(tmp_path, monk
     class Full:
         f_bavail, f_frsize = 1, 4096
 
-    monkeypatch.setattr(solve.os, "statvfs", lambda path: Full())
-    with solve.work_files(100, 2, "k", str(tmp_path / "fallback")) as work:
+    monkeypatch.setattr(parallel.os, "statvfs", lambda path: Full())
+    with parallel.work_files(100, 2, "k", str(tmp_path / "fallback")) as work:
         assert work.x.filename.startswith(str(tmp_path / "fallback"))
     assert (tmp_path / "fallback" / "x.npy").exists() and not (shm / "bigsmooth-k").exists()

@@ -32,7 +32,6 @@ The stopping rule uses the true relative residual ||b - A x|| / ||b||, checked w
 estimate ||r_k|| / ||r_0|| * (||b - A x0|| / ||b||) falls below the tolerance (for x0 = 0 that is
 ||r_k|| / ||E^-1 bs||); a failed check lowers the estimate's target.
 """
-import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -264,138 +263,13 @@ def _phase3(kern, x, r, t, ap, alpha, start, stop):
 
 
 def _map(executor, fn, calls, order=None, sizes=None):
-    """Run fn over the group calls: in order here, or on an Executor. Results come back in the
-    order of ``calls`` either way; ``order`` (a permutation of the calls) is the order in which
-    they are handed to the executor, largest groups first, so that workers finish together.
-    A :class:`ProcessPool` gets one task per worker (the groups dealt by the same rule, using
-    ``sizes``), because every task costs a round trip between processes."""
+    """Run fn over the group calls, here in order or on an executor of :mod:`bigsmooth.parallel`
+    (anything with ``map_calls(fn, calls, order, sizes)``). Results come back in the order of
+    ``calls`` either way; ``order`` is the order in which they are handed out (largest groups
+    first) and ``sizes`` their work, for executors that batch calls."""
     if executor is None:
         return [fn(*c) for c in calls]
-    if isinstance(executor, ProcessPool) and sizes is not None:
-        return executor.map_batched(fn, calls, order or list(range(len(calls))), sizes)
-    if order is None:
-        return list(executor.map(fn, *zip(*calls)))
-    done = list(executor.map(fn, *zip(*[calls[j] for j in order])))
-    out = [None] * len(calls)
-    for j, res in zip(order, done):
-        out[j] = res
-    return out
-
-
-@dataclass(frozen=True)
-class MapHandle:
-    """A whole-file np.memmap as its file's identity, so a process worker can keep it mapped."""
-
-    path: str
-    inode: int
-    size: int
-    offset: int
-    shape: tuple
-    dtype: str
-    mode: str
-
-
-def _handle(a):
-    """``a`` as a :class:`MapHandle` if it is an np.memmap over a whole file (the .npy data after
-    its header), tuples element-wise, anything else as it is."""
-    if isinstance(a, tuple):
-        return tuple(_handle(x) for x in a)
-    if isinstance(a, np.memmap) and a.filename and a.flags.c_contiguous:
-        try:
-            st = os.stat(a.filename)
-        except OSError:
-            return a
-        if a.offset + a.nbytes == st.st_size:
-            return MapHandle(a.filename, st.st_ino, st.st_size, int(a.offset), tuple(a.shape), a.dtype.str,
-                             "r" if a.mode in ("r", "c") else "r+")
-    return a
-
-
-_MAPPED = {}          # in each worker process: MapHandle -> the open np.memmap
-_MAPPED_MAX = 64
-
-
-def _resolve(a):
-    """The worker's side of :func:`_handle`: open a file once per process and keep it mapped, so
-    that a task does not map (and page-fault through) the whole system again."""
-    if isinstance(a, tuple):
-        return tuple(_resolve(x) for x in a)
-    if not isinstance(a, MapHandle):
-        return a
-    m = _MAPPED.get(a)
-    if m is None:
-        # drop files that were replaced or removed (so their pages can go)
-        for old in [h for h in _MAPPED if h.path == a.path or not os.path.exists(h.path)]:
-            del _MAPPED[old]
-        if len(_MAPPED) >= _MAPPED_MAX:
-            del _MAPPED[next(iter(_MAPPED))]
-        m = _MAPPED[a] = np.memmap(a.path, dtype=np.dtype(a.dtype), mode=a.mode, offset=a.offset, shape=a.shape)
-    return m
-
-
-def _call_mapped(fn, args):
-    return fn(*_resolve(args))
-
-
-def _call_many(fn, calls):
-    return [fn(*c) for c in _resolve(calls)]
-
-
-class ProcessPool:
-    """joblib's loky executor (with its memmap reducers) for the group sweeps. Whole-file memmap
-    arguments travel as :class:`MapHandle`: each worker maps a file once and keeps it mapped across
-    tasks. (Mapping the system afresh for every task, as the reducers do, cost about 3x the sweep
-    itself at 1M rows, measured: 100 ms per sweep against 33 ms with threads.)"""
-
-    def __init__(self, workers):
-        from joblib.executor import get_memmapping_executor
-
-        self.workers = workers
-        self._ex = get_memmapping_executor(workers)
-
-    def map(self, fn, *iterables):
-        calls = [_handle(tuple(args)) for args in zip(*iterables)]
-        return self._ex.map(_call_mapped, [fn] * len(calls), calls)
-
-    def map_batched(self, fn, calls, order, sizes):
-        """fn over the calls in one task per worker: calls dealt in ``order``, each to the worker
-        with the least work so far (by ``sizes``); results in the order of ``calls``."""
-        bins = [[] for _ in range(self.workers)]
-        load = [0] * self.workers
-        for j in order:
-            k = load.index(min(load))
-            bins[k].append(j)
-            load[k] += sizes[j]
-        bins = [b for b in bins if b]
-        done = self._ex.map(_call_many, [fn] * len(bins), [_handle(tuple(calls[j] for j in b)) for b in bins])
-        out = [None] * len(calls)
-        for b, res in zip(bins, done):
-            for j, r in zip(b, res):
-                out[j] = r
-        return out
-
-    def shutdown(self, wait=True):
-        self._ex.shutdown(wait=wait)
-
-
-def make_executor(workers, backend):
-    """A ``concurrent.futures``-style executor for the group sweeps, or None for one worker.
-
-    ``threads``: a thread pool (the compiled kernels release the GIL). ``processes``: joblib's loky
-    executor (:class:`ProcessPool`): arrays that are np.memmap travel as file references, each
-    worker keeps the files mapped, and the workers' writes land in the same files. (joblib.Parallel itself costs about 10 ms per call
-    here, measured, against 0.1 ms for a thread pool and 2-4 ms for the loky executor; a sweep makes
-    three calls.)
-    """
-    if workers <= 1:
-        return None
-    if backend == "threads":
-        from concurrent.futures import ThreadPoolExecutor
-
-        return ThreadPoolExecutor(max_workers=workers, thread_name_prefix="bigsmooth-sweep")
-    if backend == "processes":
-        return ProcessPool(workers)
-    raise ValueError(f"backend must be 'threads' or 'processes'; got {backend!r}")
+    return executor.map_calls(fn, calls, order, sizes)
 
 
 @dataclass
@@ -445,7 +319,7 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
     system : :class:`Grouped` from :func:`prepare` (its arrays may be memmaps)
     b : ndarray (n, c), the right-hand side of the unscaled system
     x0 : ndarray (n, c), optional initial iterate (warm start; default zeros)
-    executor : from :func:`make_executor`, or None (serial); with process workers every array must be a memmap
+    executor : from :func:`bigsmooth.parallel.make_executor`, or None (serial); with process workers every array must be a memmap
     kernels : dict of the three kernels (default compiled; :data:`PY_KERNELS` are the references)
     work : :class:`Work`, optional preallocated vectors (memmaps for process workers)
     state : dict, optional resume state from ``on_sweep`` (``sweep``, ``rho``, ``beta``, ``nbhat``,

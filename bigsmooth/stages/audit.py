@@ -9,7 +9,7 @@ import logging
 import numpy as np
 
 from .. import artifacts as art
-from .. import provenance
+from .. import provenance, streams
 from ..kernels import influence, laplacian, metrics
 from ..table import ids_at_rows
 
@@ -346,7 +346,7 @@ def run(rundir, cfg, fp):
     rate, min_rows = a["select_rate"], a["min_group_rows"]
     lo, hi = inp["score_range"]
     nb, dist = _knn(rundir)
-    rng = np.random.default_rng(cfg["run"]["seed"] + 3)
+    rng = streams.rng(cfg["run"]["seed"], "audit.pairs")
     pairs = random_pairs(E, a["pair_sample"], rng)
     y, f = Y[:, 0], F[:, 0]
     constant = a["lipschitz"] or auto_lipschitz(y, nb, dist, rng)
@@ -365,7 +365,7 @@ def run(rundir, cfg, fp):
     other = art.EMBED_COMPARE.load(rundir)
     counterfactual = None
     if inp["counterfactual_score"]:
-        rows = _sample(n, a["counterfactual_rows"], np.random.default_rng(cfg["run"]["seed"] + 6))
+        rows = _sample(n, a["counterfactual_rows"], streams.rng(cfg["run"]["seed"], "audit.counterfactual"))
         counterfactual = counterfactual_figures(W, y, f, other[:, -1], cfg["solve"], rate, rows,
                                                 tol=a["counterfactual_tol"])
     pairs_fig = pair_figures(rundir, cfg, y, f, rate) if inp["pairs"] else None
@@ -383,7 +383,7 @@ def run(rundir, cfg, fp):
         shrunk = y.mean() + (y - y.mean()) * (sd_f / sd_y if sd_y > 0 else 1.0)
         s = cfg["solve"]
         rnd, rec = random_graph_control(W, y, s["lam"], s["laplacian"], s["tol"],
-                                        np.random.default_rng(cfg["run"]["seed"] + 4), target_sd=sd_f)
+                                        streams.rng(cfg["run"]["seed"], "audit.random_graph"), target_sd=sd_f)
         control_notes = {"shrink_to_mean": {"sd": float(shrunk.std()), "matched": True},
                          "random_graph": rec}
         for name, v in (("shrink_to_mean", shrunk), ("random_graph", rnd)):
@@ -392,7 +392,7 @@ def run(rundir, cfg, fp):
                                   for j, col in enumerate(inp["protected"])}
             fig["spread_matched"] = control_notes[name]["matched"]
             controls[name] = fig
-    probe_rows = _sample(n, cfg["embed"]["probe_rows"], np.random.default_rng(cfg["run"]["seed"] + 7))
+    probe_rows = _sample(n, cfg["embed"]["probe_rows"], streams.rng(cfg["run"]["seed"], "audit.vote_sample"))
     vote = neighbour_vote_leakage(codes, levels, inp["protected"], nb, probe_rows)
     warn_auc = cfg["embed"]["leakage_warn_auc"]
     groups = {}

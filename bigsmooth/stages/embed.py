@@ -15,7 +15,7 @@ import pyarrow.compute as pc
 import scipy.sparse as sp
 
 from .. import artifacts as art
-from .. import atomic, faults
+from .. import atomic, faults, streams
 from ..errors import DataError
 from ..kernels import fairspace
 from ..kernels.metrics import roc_auc
@@ -164,7 +164,7 @@ def run(rundir, cfg, fp):
                         "categorical_features name the right columns.")
     E = out.open(art.EMBED_EMBEDDING.path(rundir), (n, dim), np.float32)
 
-    rng = np.random.default_rng(cfg["run"]["seed"])
+    rng = streams.rng(cfg["run"]["seed"], "embed.probe_sample")
     sample = np.sort(rng.choice(n, size=min(n, ecfg["probe_rows"]), replace=False))
     raw_sample = np.zeros((len(sample), p))
     seen = 0
@@ -191,8 +191,8 @@ def run(rundir, cfg, fp):
         per_level = {}
         for li, lv in enumerate(prot_levels[c]):
             t = (code_sample[:, j] == li).astype(float)
-            before = fairspace.linear_probe_auc(raw_sample, t, np.random.default_rng(cfg["run"]["seed"] + 1), roc_auc)
-            after = fairspace.linear_probe_auc(fair_sample, t, np.random.default_rng(cfg["run"]["seed"] + 1), roc_auc)
+            before = fairspace.linear_probe_auc(raw_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc)
+            after = fairspace.linear_probe_auc(fair_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc)
             per_level[lv] = {"features_auc": before, "fair_space_auc": after}
         worst = max((v["fair_space_auc"] for v in per_level.values() if np.isfinite(v["fair_space_auc"])), default=float("nan"))
         leakage[c] = {"levels": per_level, "max_fair_space_auc": worst}

@@ -4,6 +4,7 @@ import logging
 import numpy as np
 
 from .. import artifacts as art
+from .. import streams
 from ..kernels import graph as gk
 
 log = logging.getLogger("bigsmooth.graph")
@@ -21,7 +22,7 @@ def run(rundir, cfg):
         ind, dist = gk.exact_knn(np.asarray(E), k)
     else:
         search = g["search_neighbours"] or int(np.ceil(1.5 * k))
-        ind, dist = gk.approx_knn(np.asarray(E), k, seed=cfg["run"]["seed"], n_trees=g["index_trees"],
+        ind, dist = gk.approx_knn(np.asarray(E), k, seed=streams.seed_of(cfg["run"]["seed"], "graph.index"), n_trees=g["index_trees"],
                                   search=max(search, k), threads=g["index_threads"])
     sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"])
     W = gk.heat_kernel_graph(ind, dist, sigma)

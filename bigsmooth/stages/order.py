@@ -23,7 +23,7 @@ from scipy.cluster.vq import kmeans2
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from .. import artifacts as art
-from .. import atomic
+from .. import atomic, streams
 from ..kernels import sweepcg
 
 log = logging.getLogger("bigsmooth.order")
@@ -88,7 +88,7 @@ def local_order(W, labels):
 
 def run(rundir, cfg):
     E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
-    labels, groups = cluster_labels(E, cfg["solve"]["groups"], cfg["run"]["seed"] + 2)
+    labels, groups = cluster_labels(E, cfg["solve"]["groups"], streams.seed_of(cfg["run"]["seed"], "order.kmeans"))
     bounds = np.concatenate([[0], np.cumsum(np.bincount(labels, minlength=groups))]).astype(np.int64)
     W = art.GRAPH_WEIGHTS.load(rundir, mmap=True)
     share = inside_share(W, labels)

@@ -19,7 +19,7 @@ import os
 import numpy as np
 
 from .. import artifacts as art
-from .. import atomic, faults
+from .. import atomic, faults, parallel
 from ..kernels import laplacian, solver, sweepcg
 
 log = logging.getLogger("bigsmooth.solve")
@@ -120,52 +120,11 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
     with contextlib.ExitStack() as stack:
         if s["backend"] == "processes":
             # process workers map the solver's vectors as files too
-            work = stack.enter_context(work_files(n, c, _shm_key(rundir.path), art.SOLVE_WORK.path(rundir)))
+            work = stack.enter_context(parallel.work_files(n, c, parallel.shm_key(rundir.path),
+                                                               art.SOLVE_WORK.path(rundir)))
         else:
             work = sweepcg.Work.allocate(n, c)
         return _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
-
-
-SHM = "/dev/shm"
-
-
-def _shm_key(path):
-    """The run directory's name and a hash of its full path (two run roots may hold the same run id)."""
-    import hashlib
-
-    path = os.path.abspath(path)
-    return f"{os.path.basename(path)}-{hashlib.sha256(path.encode()).hexdigest()[:8]}"
-
-
-@contextlib.contextmanager
-def work_files(n, c, key, fallback):
-    """The solver's vectors as memory-mapped files for process workers: in shared memory
-    (``/dev/shm/bigsmooth-<key>``) when it has room for them twice over, else in ``fallback``.
-    New pages of a file on disk cost a block allocation at their first write (measured here on
-    ext4 at 1M rows: about 95 ms for the first sweep's four vectors, against 21 ms for the sweep),
-    and the vectors are scratch (the checkpoint is written separately), so shared memory is the
-    place for them. The shared-memory folder is removed afterwards (and, if a killed run left
-    one, before)."""
-    import dataclasses
-    import shutil
-
-    need = len(dataclasses.fields(sweepcg.Work)) * n * c * 8
-    folder = fallback
-    try:
-        st = os.statvfs(SHM)
-        if st.f_bavail * st.f_frsize >= 2 * need:
-            folder = os.path.join(SHM, f"bigsmooth-{key}")
-    except OSError:
-        pass
-    if folder != fallback:
-        shutil.rmtree(folder, ignore_errors=True)
-    os.makedirs(folder, exist_ok=True)
-    try:
-        yield sweepcg.Work.allocate(n, c, lambda name, shape: atomic.new_memmap(
-            art.member_file(folder, name), np.float64, shape))
-    finally:
-        if folder != fallback:
-            shutil.rmtree(folder, ignore_errors=True)
 
 
 def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work):
@@ -192,7 +151,7 @@ def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
             log.info("sweep %d: preconditioned residual %.3e", st["sweep"], st["residuals"][-1])
 
     nw = workers_for(s)
-    executor = sweepcg.make_executor(nw, s["backend"])
+    executor = parallel.make_executor(nw, s["backend"])
     try:
         # a cold start (the raw scores) is scaled to the multiple closest to the solution; a warm
         # start (last night's adjusted scores) is taken as it is
