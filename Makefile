@@ -4,7 +4,7 @@ PYTHON ?= python3
 VENV ?= .venv
 BIN := $(VENV)/bin
 
-.PHONY: demo test test-slow install clean
+.PHONY: demo test test-slow lint install clean
 
 $(VENV)/.installed: pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -17,8 +17,12 @@ install: $(VENV)/.installed
 demo: $(VENV)/.installed
 	$(BIN)/bigsmooth demo $(DEMO_ARGS)
 
-# two test processes (pytest-xdist): the suite is mostly command-line runs in subprocesses
-test: $(VENV)/.installed
+lint: $(VENV)/.installed
+	$(BIN)/ruff check bigsmooth tests
+	$(BIN)/ruff format --check bigsmooth tests
+
+# lint first; two test processes (pytest-xdist): the suite is mostly command-line runs in subprocesses
+test: lint
 	$(BIN)/python -m pytest -q -n 2 $(TEST_ARGS)
 
 test-slow: $(VENV)/.installed

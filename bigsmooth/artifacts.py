@@ -9,6 +9,7 @@ Kinds: ``npy`` (one array; loaded memory-mapped on request), ``json``, ``csr`` (
 .npy files indptr / indices / data, loaded as scipy CSR), ``npz``, ``dir`` (a folder of .npy files
 named by member), ``png`` and ``html`` (bytes).
 """
+
 import os
 from dataclasses import dataclass
 
@@ -39,8 +40,8 @@ def _root(rundir):
 @dataclass(frozen=True)
 class Artifact:
     key: str
-    stage: str      # the stage (or command) that writes it
-    rel: str        # path relative to the run directory
+    stage: str  # the stage (or command) that writes it
+    rel: str  # path relative to the run directory
     kind: str
     doc: str
 
@@ -68,7 +69,9 @@ class Artifact:
         if self.kind == "csr":
             import scipy.sparse as sp
 
-            indptr, indices, data = (np.load(self.path(rundir, m), mmap_mode="r" if mmap else None) for m in CSR_PARTS)
+            indptr, indices, data = (
+                np.load(self.path(rundir, m), mmap_mode="r" if mmap else None) for m in CSR_PARTS
+            )
             n = len(indptr) - 1
             return sp.csr_matrix((data, indices, indptr), shape=(n, n))
         if self.kind == "npz":
@@ -100,34 +103,78 @@ def _a(key, stage, rel, kind, doc):
     return art
 
 
-SCAN_INFO = _a("scan.info", "scan", "scan/scan.json", "json",
-               "rows, files, column types, levels of categorical and protected columns, per-file id digests")
-EMBED_SCORES = _a("embed.scores", "embed", "embed/scores.npy", "npy", "raw scores (n, score columns), float64")
+SCAN_INFO = _a(
+    "scan.info",
+    "scan",
+    "scan/scan.json",
+    "json",
+    "rows, files, column types, levels of categorical and protected columns, per-file id digests",
+)
+EMBED_SCORES = _a(
+    "embed.scores", "embed", "embed/scores.npy", "npy", "raw scores (n, score columns), float64"
+)
 EMBED_LABEL = _a("embed.label", "embed", "embed/label.npy", "npy", "labels (n,), NaN where unknown")
-EMBED_PROTECTED = _a("embed.protected", "embed", "embed/protected.npy", "npy", "protected level codes (n, attributes)")
-EMBED_COMPARE = _a("embed.compare", "embed", "embed/compare.npy", "npy",
-                   "compare_scores then the counterfactual score (n, columns)")
-EMBED_EMBEDDING = _a("embed.embedding", "embed", "embed/embedding.npy", "npy", "fair-space embedding (n, dim), float32")
-EMBED_INFO = _a("embed.info", "embed", "embed/embed.json", "json", "features, fair space transform, leakage probe")
-GRAPH_NEIGHBOURS = _a("graph.neighbours", "graph", "graph/neighbours.npy", "npy", "k nearest neighbours (n, k)")
-GRAPH_DISTANCES = _a("graph.distances", "graph", "graph/distances.npy", "npy", "their fair-space distances (n, k)")
+EMBED_PROTECTED = _a(
+    "embed.protected", "embed", "embed/protected.npy", "npy", "protected level codes (n, attributes)"
+)
+EMBED_COMPARE = _a(
+    "embed.compare",
+    "embed",
+    "embed/compare.npy",
+    "npy",
+    "compare_scores then the counterfactual score (n, columns)",
+)
+EMBED_EMBEDDING = _a(
+    "embed.embedding", "embed", "embed/embedding.npy", "npy", "fair-space embedding (n, dim), float32"
+)
+EMBED_INFO = _a(
+    "embed.info", "embed", "embed/embed.json", "json", "features, fair space transform, leakage probe"
+)
+GRAPH_NEIGHBOURS = _a(
+    "graph.neighbours", "graph", "graph/neighbours.npy", "npy", "k nearest neighbours (n, k)"
+)
+GRAPH_DISTANCES = _a(
+    "graph.distances", "graph", "graph/distances.npy", "npy", "their fair-space distances (n, k)"
+)
 GRAPH_WEIGHTS = _a("graph.weights", "graph", "graph", "csr", "symmetric heat-kernel weight matrix W")
 GRAPH_INFO = _a("graph.info", "graph", "graph/graph.json", "json", "edges, degrees, sigma, isolated rows")
 ORDER_PERM = _a("order.perm", "order", "order/order.npy", "npy", "solver row order: position -> input row")
-ORDER_GROUPS = _a("order.groups", "order", "order/groups.npy", "npy", "block group boundaries in solver order")
-ORDER_SPLIT = _a("order.split", "order", "order/split", "dir",
-                 "the permuted graph split into couplings inside / between groups (memory-mapped)")
-SOLVE_SYSTEM = _a("solve.system", "solve", "solve/system", "dir", "the split graph scaled for lam (memory-mapped)")
-SOLVE_WORK = _a("solve.work", "solve", "solve/work", "dir", "process workers' vectors when /dev/shm has no room")
+ORDER_GROUPS = _a(
+    "order.groups", "order", "order/groups.npy", "npy", "block group boundaries in solver order"
+)
+ORDER_SPLIT = _a(
+    "order.split",
+    "order",
+    "order/split",
+    "dir",
+    "the permuted graph split into couplings inside / between groups (memory-mapped)",
+)
+SOLVE_SYSTEM = _a(
+    "solve.system", "solve", "solve/system", "dir", "the split graph scaled for lam (memory-mapped)"
+)
+SOLVE_WORK = _a(
+    "solve.work", "solve", "solve/work", "dir", "process workers' vectors when /dev/shm has no room"
+)
 SOLVE_X0 = _a("solve.x0", "solve", "solve/x0.npy", "npy", "warm start: the starting iterate")
 SOLVE_X0_INFO = _a("solve.x0_info", "solve", "solve/x0.npy.json", "json", "warm start: rows matched and new")
-SOLVE_CHECKPOINT = _a("solve.checkpoint", "solve", "checkpoint/solver.npz", "npz", "solver state after the last sweep")
-SOLVE_ADJUSTED = _a("solve.adjusted", "solve", "solve/adjusted.npy", "npy", "adjusted scores (n, score columns)")
+SOLVE_CHECKPOINT = _a(
+    "solve.checkpoint", "solve", "checkpoint/solver.npz", "npz", "solver state after the last sweep"
+)
+SOLVE_ADJUSTED = _a(
+    "solve.adjusted", "solve", "solve/adjusted.npy", "npy", "adjusted scores (n, score columns)"
+)
 SOLVE_INFO = _a("solve.info", "solve", "solve/solve.json", "json", "convergence record")
 AUDIT_REPORT_JSON = _a("audit.json", "audit", "audit/audit.json", "json", "the audit (copied to the output)")
-AUDIT_REPORT_HTML = _a("audit.html", "audit", "audit/report.html", "html", "the report (copied to the output)")
-PUBLISH_PENDING = _a("publish.pending", "audit", "publish/pending.json", "json",
-                     "the output version's name, chosen by the audit, used by publish")
+AUDIT_REPORT_HTML = _a(
+    "audit.html", "audit", "audit/report.html", "html", "the report (copied to the output)"
+)
+PUBLISH_PENDING = _a(
+    "publish.pending",
+    "audit",
+    "publish/pending.json",
+    "json",
+    "the output version's name, chosen by the audit, used by publish",
+)
 TUNE_INFO = _a("tune.info", "tune", "tune/tune.json", "json", "lam path and recommendation (bigsmooth tune)")
 TUNE_PLOT = _a("tune.plot", "tune", "tune/tradeoff.png", "png", "trade-off plot (bigsmooth tune)")
 

@@ -4,6 +4,7 @@ Every write goes to a temporary sibling, is fsync'd, renamed into place with
 ``os.replace`` and the directory is fsync'd, so a crash never leaves a file
 that looks finished.
 """
+
 import contextlib
 import json
 import os
@@ -55,7 +56,7 @@ def atomic_path(target):
     parent = os.path.dirname(os.path.abspath(target))
     os.makedirs(parent, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(target) + ".", suffix=".tmp", dir=parent)
-    os.fchmod(fd, 0o666 & ~_UMASK)     # mkstemp makes 0600; a finished file follows the umask like any other
+    os.fchmod(fd, 0o666 & ~_UMASK)  # mkstemp makes 0600; a finished file follows the umask like any other
     os.close(fd)
     try:
         yield tmp

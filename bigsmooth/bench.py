@@ -24,6 +24,7 @@
 Prints one table and writes it as JSON. Timings are from this machine at this moment: compare
 ratios measured in the same run, not absolute seconds across machines.
 """
+
 import argparse
 import contextlib
 import glob
@@ -53,10 +54,10 @@ def exact_sample_recall(E, ind, sample_rows, rng, chunk=50_000):
     best_i = np.full((len(s), k), -1, dtype=np.int64)
     qq = np.einsum("ij,ij->i", Q, Q)
     for a in range(0, n, chunk):
-        X = np.asarray(E[a:a + chunk], dtype=np.float64)
+        X = np.asarray(E[a : a + chunk], dtype=np.float64)
         d2 = qq[:, None] + np.einsum("ij,ij->i", X, X)[None, :] - 2.0 * Q @ X.T
         inside = (s >= a) & (s < a + len(X))
-        d2[np.flatnonzero(inside), s[inside] - a] = np.inf      # a row is not its own neighbour
+        d2[np.flatnonzero(inside), s[inside] - a] = np.inf  # a row is not its own neighbour
         kk = min(k, len(X))
         part = np.argpartition(d2, kk - 1, axis=1)[:, :kk]
         cand_d = np.hstack([best_d, np.take_along_axis(d2, part, axis=1)])
@@ -71,9 +72,12 @@ def exact_sample_recall(E, ind, sample_rows, rng, chunk=50_000):
 def machine_info():
     """Cores, memory and the processor's model and cache sizes (ratios differ between processors:
     CG's scattered reads depend on how much of its vectors stay in cache)."""
-    info = {"cores": os.cpu_count(),
-            "memory_gib": round(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30, 1),
-            "python": platform.python_version(), "platform": platform.platform()}
+    info = {
+        "cores": os.cpu_count(),
+        "memory_gib": round(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30, 1),
+        "python": platform.python_version(),
+        "platform": platform.platform(),
+    }
     try:
         with open("/proc/cpuinfo") as fh:
             info["cpu"] = next(line.split(":", 1)[1].strip() for line in fh if line.startswith("model name"))
@@ -87,7 +91,7 @@ def machine_info():
             continue
         if kind != "Instruction":
             caches[f"L{level}"] = size
-    info["caches"] = caches   # as cpu0 sees them (L3 is shared)
+    info["caches"] = caches  # as cpu0 sees them (L3 is shared)
     return info
 
 
@@ -136,7 +140,9 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
     # warm the compiled kernels on a tiny system so compilation is not timed
     tiny = sp.csr_matrix(np.array([[2.0, -1.0], [-1.0, 2.0]]))
     sweepcg.sweep_cg(sweepcg.prepare(tiny, [0, 1, 2]), np.ones((2, 1)))
-    sweepcg.prepare_from_graph(sp.csr_matrix(np.array([[0.0, 1.0], [1.0, 0.0]])), 1.0, np.ones(2), [0, 1], [0, 2])
+    sweepcg.prepare_from_graph(
+        sp.csr_matrix(np.array([[0.0, 1.0], [1.0, 0.0]])), 1.0, np.ones(2), [0, 1], [0, 2]
+    )
     sweepcg.scale_split(split, 1.0, np.ones(split.n)).matvec(np.ones((split.n, 1)))
     out = []
     pool = None
@@ -158,12 +164,23 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
             x0, _ = sweepcg.scaled_start(Y, A @ Y, b)
             t_setup = time.perf_counter() - t0
             count = [0]
-            x, info = spla.cg(A, b[:, 0], x0=x0[:, 0], rtol=tol, M=M, maxiter=100000,
-                              callback=lambda xk: count.__setitem__(0, count[0] + 1))
+            x, info = spla.cg(
+                A,
+                b[:, 0],
+                x0=x0[:, 0],
+                rtol=tol,
+                M=M,
+                maxiter=100000,
+                callback=lambda xk: count.__setitem__(0, count[0] + 1),
+            )
             t_all = time.perf_counter() - t0
             if t_all < row.get("cg_seconds", np.inf):
-                row.update(cg_seconds=t_all, cg_setup_seconds=t_setup, cg_iterations=count[0],
-                           cg_residual=float(np.linalg.norm(b[:, 0] - A @ x) / np.linalg.norm(b)))
+                row.update(
+                    cg_seconds=t_all,
+                    cg_setup_seconds=t_setup,
+                    cg_iterations=count[0],
+                    cg_residual=float(np.linalg.norm(b[:, 0] - A @ x) / np.linalg.norm(b)),
+                )
             # for information: CG on the same locality order as ours (A permuted, not timed)
             Ap = A[perm][:, perm].tocsr()
             t0 = time.perf_counter()
@@ -172,16 +189,22 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
             row["cg_local_order_seconds"] = min(t_local, row.get("cg_local_order_seconds", np.inf))
             del A, M, x, x0, Ap
             for key, w, backend in _contenders(workers, backends):
-                with tempfile.TemporaryDirectory(prefix="race-", dir=rundir) as tmp, contextlib.ExitStack() as st:
+                with (
+                    tempfile.TemporaryDirectory(prefix="race-", dir=rundir) as tmp,
+                    contextlib.ExitStack() as st,
+                ):
                     alloc = work = None
                     if backend == "processes":
                         # as in the job: the scaled system in files beside the run, the vectors in
                         # shared memory where there is room (bigsmooth.parallel.work_files)
                         def alloc(name, size, dtype):
-                            return np.lib.format.open_memmap(os.path.join(tmp, f"{name}.npy"), mode="w+",
-                                                             dtype=dtype, shape=(size,))
-                        work = st.enter_context(work_files(len(perm), 1, f"race-{os.getpid()}",
-                                                           os.path.join(tmp, "work")))
+                            return np.lib.format.open_memmap(
+                                os.path.join(tmp, f"{name}.npy"), mode="w+", dtype=dtype, shape=(size,)
+                            )
+
+                        work = st.enter_context(
+                            work_files(len(perm), 1, f"race-{os.getpid()}", os.path.join(tmp, "work"))
+                        )
                         # one pool of worker processes for the whole race, started untimed; a new
                         # worker's first solve is slower (the best of the repeats counts)
                         if pool is None:
@@ -195,20 +218,36 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
                     system = sweepcg.scale_split(split, lam, c[perm], alloc=alloc)
                     t_setup = time.perf_counter() - t0
                     t1 = time.perf_counter()
-                    res = sweepcg.sweep_cg(system, b[perm], x0=Y[perm], tol=tol, executor=executor, work=work,
-                                            omega=cfg["solve"]["relaxation"], scale_start=True)
+                    res = sweepcg.sweep_cg(
+                        system,
+                        b[perm],
+                        x0=Y[perm],
+                        tol=tol,
+                        executor=executor,
+                        work=work,
+                        omega=cfg["solve"]["relaxation"],
+                        scale_start=True,
+                    )
                     t_all = t_setup + time.perf_counter() - t1
                     if executor is not None and executor is not pool:
                         executor.shutdown()
                     if t_all < row.get(f"ours_{key}_seconds", np.inf):
-                        row.update({f"ours_{key}_seconds": t_all, f"ours_{key}_setup_seconds": t_setup,
-                                    f"ours_{key}_sweeps": res.sweeps, f"ours_{key}_residual": res.final_residual})
+                        row.update(
+                            {
+                                f"ours_{key}_seconds": t_all,
+                                f"ours_{key}_setup_seconds": t_setup,
+                                f"ours_{key}_sweeps": res.sweeps,
+                                f"ours_{key}_residual": res.final_residual,
+                            }
+                        )
                     del system, res, work
         cg_iter = row["cg_seconds"] - row["cg_setup_seconds"]
         for key, _, _ in _contenders(workers, backends):
             row[f"ratio_{key}"] = row[f"ours_{key}_seconds"] / row["cg_seconds"]
             # the same without either side's setup (iterations only), for information
-            row[f"ratio_{key}_no_setup"] = (row[f"ours_{key}_seconds"] - row[f"ours_{key}_setup_seconds"]) / cg_iter
+            row[f"ratio_{key}_no_setup"] = (
+                row[f"ours_{key}_seconds"] - row[f"ours_{key}_setup_seconds"]
+            ) / cg_iter
         out.append(row)
     if pool is not None:
         pool.shutdown()
@@ -228,12 +267,16 @@ def _job(args, base):
     t_gen = time.perf_counter() - t0
     shutil.rmtree(os.path.join(base, "runs"), ignore_errors=True)
     shutil.rmtree(os.path.join(base, "output"), ignore_errors=True)
-    cfg_path = demo.write_demo_config(os.path.join(base, "bigsmooth.toml"), "data/applicants", "output", "runs")
+    cfg_path = demo.write_demo_config(
+        os.path.join(base, "bigsmooth.toml"), "data/applicants", "output", "runs"
+    )
     text = open(cfg_path).read().replace("tol = 1e-6", f"tol = 1e-6\nworkers = {args.workers}")
     with open(cfg_path, "w") as fh:
         fh.write(text)
     t0 = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-m", "bigsmooth", "-q", "run", cfg_path], capture_output=True, text=True)
+    proc = subprocess.run(
+        [sys.executable, "-m", "bigsmooth", "-q", "run", cfg_path], capture_output=True, text=True
+    )
     t_job = time.perf_counter() - t0
     if proc.returncode != 0:
         print(proc.stderr, file=sys.stderr)
@@ -248,11 +291,17 @@ def _job(args, base):
     recall = exact_sample_recall(E, ind, args.sample, np.random.default_rng(0))
     t_recall = time.perf_counter() - t0
     return {
-        "generate_seconds": t_gen, "job_seconds": t_job,
+        "generate_seconds": t_gen,
+        "job_seconds": t_job,
         "stage_seconds": {k: v.get("seconds") for k, v in m["stages"].items()},
-        "peak_rss_gb": peak_kb * 1024 / 1e9, "rss_bytes_per_row": peak_kb * 1024 / args.rows,
-        "recall_at_k": recall, "recall_sample": args.sample, "recall_seconds": t_recall,
-        "job_solver": {k: solve.get(k) for k in ("method", "status", "sweeps", "final_residual", "workers", "groups")},
+        "peak_rss_gb": peak_kb * 1024 / 1e9,
+        "rss_bytes_per_row": peak_kb * 1024 / args.rows,
+        "recall_at_k": recall,
+        "recall_sample": args.sample,
+        "recall_seconds": t_recall,
+        "job_solver": {
+            k: solve.get(k) for k in ("method", "status", "sweeps", "final_residual", "workers", "groups")
+        },
     }, rundir
 
 
@@ -260,53 +309,85 @@ def _the_run(base):
     runs = os.path.join(base, "runs")
     found = sorted(os.listdir(runs)) if os.path.isdir(runs) else []
     if len(found) != 1:
-        raise SystemExit(f"expected one finished run in {runs}, found {len(found)}; run the benchmark without "
-                         "--race-only first")
+        raise SystemExit(
+            f"expected one finished run in {runs}, found {len(found)}; run the benchmark without "
+            "--race-only first"
+        )
     return os.path.join(runs, found[0])
 
 
 def _print(table, args, out):
-    print(f"rows {table['rows']:,}  features {table['feature_columns']} columns -> {table['encoded_features']} encoded "
-          f"-> {table['fair_space_dim']} fair dims   machine {table['machine']['cores']} cores, "
-          f"{table['machine']['memory_gib']} GiB, {table['machine']['cpu']}, caches "
-          + ", ".join(f"{k} {v}" for k, v in table["machine"]["caches"].items()))
+    print(
+        f"rows {table['rows']:,}  features {table['feature_columns']} columns -> {table['encoded_features']} encoded "
+        f"-> {table['fair_space_dim']} fair dims   machine {table['machine']['cores']} cores, "
+        f"{table['machine']['memory_gib']} GiB, {table['machine']['cpu']}, caches "
+        + ", ".join(f"{k} {v}" for k, v in table["machine"]["caches"].items())
+    )
     if "job_seconds" in table:
-        print(f"job {table['job_seconds']:.1f} s (child process, incl. numba compilation); peak RSS "
-              f"{table['peak_rss_gb']:.2f} GB ({table['rss_bytes_per_row']:.0f} B/row)")
-        print("stages: " + ", ".join(f"{k} {v:.1f} s" for k, v in table["stage_seconds"].items() if v is not None))
+        print(
+            f"job {table['job_seconds']:.1f} s (child process, incl. numba compilation); peak RSS "
+            f"{table['peak_rss_gb']:.2f} GB ({table['rss_bytes_per_row']:.0f} B/row)"
+        )
+        print(
+            "stages: "
+            + ", ".join(f"{k} {v:.1f} s" for k, v in table["stage_seconds"].items() if v is not None)
+        )
         js = table["job_solver"]
-        print(f"job solver: {js['method']} {js['status']} in {js['sweeps']} sweeps, residual {js['final_residual']:.2e}, "
-              f"{js['workers']} workers, {js['groups']} groups")
+        print(
+            f"job solver: {js['method']} {js['status']} in {js['sweeps']} sweeps, residual {js['final_residual']:.2e}, "
+            f"{js['workers']} workers, {js['groups']} groups"
+        )
         print(f"neighbour recall@k vs exact on {args.sample} rows: {table['recall_at_k']:.4f}")
     for r in table.get("solver_race", []):
-        print(f"best of {r['repeat']}, lam*deg {r['lam_times_mean_degree']}: CG-Jacobi {r['cg_seconds']:.2f} s "
-              f"({r['cg_iterations']} it, setup {r['cg_setup_seconds']:.2f} s; {r['cg_local_order_seconds']:.2f} s "
-              "on our row order)")
+        print(
+            f"best of {r['repeat']}, lam*deg {r['lam_times_mean_degree']}: CG-Jacobi {r['cg_seconds']:.2f} s "
+            f"({r['cg_iterations']} it, setup {r['cg_setup_seconds']:.2f} s; {r['cg_local_order_seconds']:.2f} s "
+            "on our row order)"
+        )
         for key, w, backend in _contenders(args.workers, args.backends):
-            print(f"  ours {w} worker{'s' if w > 1 else ''}{' (' + backend + ')' if w > 1 else ''}: "
-                  f"{r[f'ours_{key}_seconds']:.2f} s ({r[f'ours_{key}_sweeps']} sweeps, setup "
-                  f"{r[f'ours_{key}_setup_seconds']:.2f} s)  ratio {r[f'ratio_{key}']:.2f} "
-                  f"({r[f'ratio_{key}_no_setup']:.2f} without setup)")
+            print(
+                f"  ours {w} worker{'s' if w > 1 else ''}{' (' + backend + ')' if w > 1 else ''}: "
+                f"{r[f'ours_{key}_seconds']:.2f} s ({r[f'ours_{key}_sweeps']} sweeps, setup "
+                f"{r[f'ours_{key}_setup_seconds']:.2f} s)  ratio {r[f'ratio_{key}']:.2f} "
+                f"({r[f'ratio_{key}_no_setup']:.2f} without setup)"
+            )
     print(f"table written to {out}")
 
 
 def main(argv=None):
-    p = argparse.ArgumentParser(prog="python -m bigsmooth.bench", description=__doc__,
-                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p = argparse.ArgumentParser(
+        prog="python -m bigsmooth.bench",
+        description=__doc__,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     p.add_argument("--rows", type=int, default=1_000_000, help="demo rows (default 1000000)")
-    p.add_argument("--workers", type=int, default=2, help="solver workers for the job and the race (default 2)")
-    p.add_argument("--dir", default="bench-out", help="work folder (default ./bench-out; reused data if present)")
+    p.add_argument(
+        "--workers", type=int, default=2, help="solver workers for the job and the race (default 2)"
+    )
+    p.add_argument(
+        "--dir", default="bench-out", help="work folder (default ./bench-out; reused data if present)"
+    )
     p.add_argument("--json", default=None, help="write the table here (default DIR/bench-<rows>.json)")
     p.add_argument("--sample", type=int, default=2000, help="rows in the recall sample (default 2000)")
     p.add_argument("--seed", type=int, default=7)
     p.add_argument("--no-race", action="store_true", help="skip the solver comparison")
-    p.add_argument("--race-only", action="store_true",
-                   help="only the solver comparison, on the finished run an earlier benchmark left in DIR")
-    p.add_argument("--backends", default="threads,processes",
-                   help="comma-separated worker backends raced with --workers workers: threads (the job's "
-                        "default) and/or processes (joblib's loky workers over memmaps); default both")
-    p.add_argument("--repeat", type=int, default=3,
-                   help="runs of each solver in the comparison; the best time counts (default 3)")
+    p.add_argument(
+        "--race-only",
+        action="store_true",
+        help="only the solver comparison, on the finished run an earlier benchmark left in DIR",
+    )
+    p.add_argument(
+        "--backends",
+        default="threads,processes",
+        help="comma-separated worker backends raced with --workers workers: threads (the job's "
+        "default) and/or processes (joblib's loky workers over memmaps); default both",
+    )
+    p.add_argument(
+        "--repeat",
+        type=int,
+        default=3,
+        help="runs of each solver in the comparison; the best time counts (default 3)",
+    )
     args = p.parse_args(argv)
     args.backends = [b.strip() for b in args.backends.split(",") if b.strip()]
     bad = sorted(set(args.backends) - {"threads", "processes"})
@@ -326,10 +407,13 @@ def main(argv=None):
     emb = art.EMBED_INFO.load(rundir)
     table = {
         "machine": machine_info(),
-        "rows": args.rows, "feature_columns": len(cfg["input"]["numeric_features"]) + len(cfg["input"]["categorical_features"]),
-        "encoded_features": len(emb["features"]), "fair_space_dim": emb["dim"],
+        "rows": args.rows,
+        "feature_columns": len(cfg["input"]["numeric_features"]) + len(cfg["input"]["categorical_features"]),
+        "encoded_features": len(emb["features"]),
+        "fair_space_dim": emb["dim"],
         **part,
-        "workers": args.workers, "backends": args.backends,
+        "workers": args.workers,
+        "backends": args.backends,
     }
     if not args.no_race:
         table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers, args.repeat, args.backends)

@@ -1,4 +1,5 @@
 """Command line: parses arguments and calls the pipeline; no work of its own."""
+
 import argparse
 import json
 import logging
@@ -23,79 +24,124 @@ class _Parser(argparse.ArgumentParser):
 
 
 def build_parser():
-    p = _Parser(prog="bigsmooth", formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
-                description="Nightly post-processing of model scores so that similar people get similar "
-                            "scores: reads a scored Parquet table, builds a neighbour graph in a fair "
-                            "feature space that ignores protected attributes, smooths the scores over the "
-                            "graph (graph-Laplacian smoothing) and publishes the adjusted scores with an "
-                            "audit.")
+    p = _Parser(
+        prog="bigsmooth",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        description="Nightly post-processing of model scores so that similar people get similar "
+        "scores: reads a scored Parquet table, builds a neighbour graph in a fair "
+        "feature space that ignores protected attributes, smooths the scores over the "
+        "graph (graph-Laplacian smoothing) and publishes the adjusted scores with an "
+        "audit.",
+    )
     p.add_argument("--version", action="version", version=f"bigsmooth {__version__}")
     p.add_argument("-q", "--quiet", action="store_true", help="log warnings and errors only")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     # the logging flag is accepted after the command as well (bigsmooth run -q CONFIG)
     common = _Parser(add_help=False)
-    common.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS,
-                        help="log warnings and errors only")
+    common.add_argument(
+        "-q", "--quiet", action="store_true", default=argparse.SUPPRESS, help="log warnings and errors only"
+    )
 
-    r = sub.add_parser("run", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
-                       help="run (or resume) the job described by a config file",
-                       description="Run the job described by CONFIG (TOML; see configs/template.toml). "
-                                   "The run directory is named by a hash of the settings and the input "
-                                   "files: the same config and input resume an interrupted run, and a "
-                                   "finished one is not redone. A run whose settings differ from an earlier "
-                                   "run's only in later stages (e.g. solve.lam) reuses the earlier run's "
-                                   "scan, embed, graph and order outputs (hard links in run.dir).")
+    r = sub.add_parser(
+        "run",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="run (or resume) the job described by a config file",
+        description="Run the job described by CONFIG (TOML; see configs/template.toml). "
+        "The run directory is named by a hash of the settings and the input "
+        "files: the same config and input resume an interrupted run, and a "
+        "finished one is not redone. A run whose settings differ from an earlier "
+        "run's only in later stages (e.g. solve.lam) reuses the earlier run's "
+        "scan, embed, graph and order outputs (hard links in run.dir).",
+    )
     r.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
-    r.add_argument("--fresh", action="store_true", help="discard any earlier state of this run and start over, "
-                                                        "computing every stage anew (no outputs reused from "
-                                                        "other runs)")
+    r.add_argument(
+        "--fresh",
+        action="store_true",
+        help="discard any earlier state of this run and start over, "
+        "computing every stage anew (no outputs reused from "
+        "other runs)",
+    )
 
-    d = sub.add_parser("demo", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
-                       help="generate the synthetic demo table and run the job on it",
-                       description="Generate a synthetic nightly tenancy pre-screen of a fictional housing "
-                                   "co-operative (hive-partitioned Parquet under DIR/data), write its config "
-                                   "to DIR/bigsmooth.toml and run the job. Prints where the output and the "
-                                   "audit are. On a DIR that already holds the demo, its table and its "
-                                   "(possibly edited) config are used as they are; --rows or --seed other than "
-                                   "the table's are refused.")
+    d = sub.add_parser(
+        "demo",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="generate the synthetic demo table and run the job on it",
+        description="Generate a synthetic nightly tenancy pre-screen of a fictional housing "
+        "co-operative (hive-partitioned Parquet under DIR/data), write its config "
+        "to DIR/bigsmooth.toml and run the job. Prints where the output and the "
+        "audit are. On a DIR that already holds the demo, its table and its "
+        "(possibly edited) config are used as they are; --rows or --seed other than "
+        "the table's are refused.",
+    )
     d.add_argument("--rows", type=int, default=None, help="applicants to generate (default 300000)")
-    d.add_argument("--dir", default="bigsmooth-demo", help="folder for the demo's data, runs and output "
-                                                          "(default ./bigsmooth-demo)")
+    d.add_argument(
+        "--dir",
+        default="bigsmooth-demo",
+        help="folder for the demo's data, runs and output (default ./bigsmooth-demo)",
+    )
     d.add_argument("--seed", type=int, default=None, help="seed of the generated data (default 7)")
 
-    t = sub.add_parser("tune", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
-                       help="solve a path of lam values and recommend one (accuracy vs consistency)",
-                       description="Run the stages of CONFIG up to the graph ordering (shared with `bigsmooth "
-                                   "run`), solve for each lam on the same graph (warm-starting each from the "
-                                   "last) and print AUC, its drop and the consistency of decisions on the "
-                                   "labelled rows; recommends the lam with the best consistency whose AUC drop "
-                                   "is within the budget. Saves tune/tune.json and tune/tradeoff.png in the run "
-                                   "directory. The next `bigsmooth run` that publishes shows the trade-off in its "
-                                   "report (applied lam, recommended lam); for a run that has already finished, "
-                                   "`bigsmooth report RUN_DIR` draws the report again. By default 20%% of the "
-                                   "labelled rows are held out of the choice and reported separately.")
+    t = sub.add_parser(
+        "tune",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="solve a path of lam values and recommend one (accuracy vs consistency)",
+        description="Run the stages of CONFIG up to the graph ordering (shared with `bigsmooth "
+        "run`), solve for each lam on the same graph (warm-starting each from the "
+        "last) and print AUC, its drop and the consistency of decisions on the "
+        "labelled rows; recommends the lam with the best consistency whose AUC drop "
+        "is within the budget. Saves tune/tune.json and tune/tradeoff.png in the run "
+        "directory. The next `bigsmooth run` that publishes shows the trade-off in its "
+        "report (applied lam, recommended lam); for a run that has already finished, "
+        "`bigsmooth report RUN_DIR` draws the report again. By default 20%% of the "
+        "labelled rows are held out of the choice and reported separately.",
+    )
     t.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
     t.add_argument("--lams", default=None, help="comma-separated lam values (default 0.1,0.3,1,3,10,30)")
-    t.add_argument("--max-auc-drop", type=float, default=None,
-                   help="AUC drop budget, relative (default gates.max_auc_drop, 0.01 = 1%%)")
-    t.add_argument("--holdout", type=float, default=0.2,
-                   help="share of labelled rows kept out of the choice and reported separately (default 0.2; "
-                        "0 uses every labelled row for the choice)")
+    t.add_argument(
+        "--max-auc-drop",
+        type=float,
+        default=None,
+        help="AUC drop budget, relative (default gates.max_auc_drop, 0.01 = 1%%)",
+    )
+    t.add_argument(
+        "--holdout",
+        type=float,
+        default=0.2,
+        help="share of labelled rows kept out of the choice and reported separately (default 0.2; "
+        "0 uses every labelled row for the choice)",
+    )
 
-    rp = sub.add_parser("report", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
-                        help="draw the HTML audit report of a run directory again (e.g. after tuning)",
-                        description="Draw RUN_DIR/audit/report.html again from the run's audit and arrays, with "
-                                    "the tuning trade-off when `bigsmooth tune` has run since. Reads the config "
-                                    "the run was made with (its path is in the manifest) unless --config is "
-                                    "given. A published version folder is never changed: its _report.html stays "
-                                    "as it was published.")
+    rp = sub.add_parser(
+        "report",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="draw the HTML audit report of a run directory again (e.g. after tuning)",
+        description="Draw RUN_DIR/audit/report.html again from the run's audit and arrays, with "
+        "the tuning trade-off when `bigsmooth tune` has run since. Reads the config "
+        "the run was made with (its path is in the manifest) unless --config is "
+        "given. A published version folder is never changed: its _report.html stays "
+        "as it was published.",
+    )
     rp.add_argument("run_dir", metavar="RUN_DIR")
     rp.add_argument("--config", default=None, help="config file to read instead of the one in the manifest")
 
-    s = sub.add_parser("status", parents=[common], formatter_class=argparse.RawDescriptionHelpFormatter, epilog=EPILOG,
-                       help="show the stages, timings and solver record of a run directory",
-                       description="Print each stage's state and timing and the solver's convergence "
-                                   "record for RUN_DIR (a folder under run.dir holding manifest.json).")
+    s = sub.add_parser(
+        "status",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="show the stages, timings and solver record of a run directory",
+        description="Print each stage's state and timing and the solver's convergence "
+        "record for RUN_DIR (a folder under run.dir holding manifest.json).",
+    )
     s.add_argument("run_dir", metavar="RUN_DIR")
     s.add_argument("--json", action="store_true", help="print the manifest as JSON instead")
     return p
@@ -156,9 +202,11 @@ def cmd_demo(args):
         asked = {k: v for k, v in (("rows", args.rows), ("seed", args.seed)) if v is not None}
         if asked and (have is None or any(have.get(k) != v for k, v in asked.items())):
             was = f"--rows {have['rows']} --seed {have['seed']}" if have else "other settings"
-            raise BigsmoothError(f"the demo table under {data} was generated with {was}; to use "
-                                 + " ".join(f"--{k} {v}" for k, v in asked.items())
-                                 + " give another --dir or delete that folder")
+            raise BigsmoothError(
+                f"the demo table under {data} was generated with {was}; to use "
+                + " ".join(f"--{k} {v}" for k, v in asked.items())
+                + " give another --dir or delete that folder"
+            )
         log.info("using the demo table already under %s (delete the folder to regenerate)", data)
     cfg_path = os.path.join(base, "bigsmooth.toml")
     text = demo.CONFIG_TEMPLATE.format(data="data/applicants", output="output", runs="runs")
@@ -182,7 +230,11 @@ def cmd_tune(args):
         raise BigsmoothError(f"--lams must be comma-separated numbers; got {args.lams!r}") from None
     if not lams or any(v <= 0 for v in lams) or not 0 <= args.holdout < 1:
         raise BigsmoothError("--lams must be positive numbers and --holdout in [0, 1)")
-    budget = args.max_auc_drop if args.max_auc_drop is not None else load_config(args.config)["gates"]["max_auc_drop"]
+    budget = (
+        args.max_auc_drop
+        if args.max_auc_drop is not None
+        else load_config(args.config)["gates"]["max_auc_drop"]
+    )
     res = run_job(args.config, tune={"lams": lams, "budget": budget, "holdout": args.holdout})
     for line in table_lines(res["tune"]):
         print(line)
@@ -200,7 +252,9 @@ def cmd_report(args):
     if not rd.exists():
         raise InputMissingError(f"{args.run_dir} is not a run directory (no manifest.json)")
     if not art.AUDIT_REPORT_JSON.exists(rd):
-        raise InputMissingError(f"{args.run_dir} has no audit yet (the audit stage has not finished); run the job first")
+        raise InputMissingError(
+            f"{args.run_dir} has no audit yet (the audit stage has not finished); run the job first"
+        )
     cfg = load_config(args.config or rd.load()["config_path"])
     report.write(rd, cfg, art.AUDIT_REPORT_JSON.load(rd))
     print(f"report: {art.AUDIT_REPORT_HTML.path(rd)}")
@@ -213,25 +267,33 @@ def cmd_status(args):
     path = os.path.join(args.run_dir, art.MANIFEST)
     if not os.path.exists(path):
         from .errors import InputMissingError
+
         raise InputMissingError(f"{args.run_dir} is not a run directory (no manifest.json)")
     m = read_json(path)
     if args.json:
         print(json.dumps(m, indent=2))
         return EXIT_OK
-    print(f"run {m['run_id']}  created {m['created']}  input {m['input']['rows']} rows in "
-          f"{len(m['input']['files'])} files")
+    print(
+        f"run {m['run_id']}  created {m['created']}  input {m['input']['rows']} rows in "
+        f"{len(m['input']['files'])} files"
+    )
     print(f"{'stage':<9} {'state':<8} {'seconds':>9}")
     from .rundir import STAGES
 
     for name in STAGES:
         st = m["stages"][name]
         secs = f"{st['seconds']:.1f}" if "seconds" in st else "-"
-        print(f"{name:<9} {st['state']:<8} {secs:>9}" + (f"  {st['error']}" if st.get("error") else "")
-              + (f"  (reused from run {st['reused_from']})" if st.get("reused_from") else ""))
+        print(
+            f"{name:<9} {st['state']:<8} {secs:>9}"
+            + (f"  {st['error']}" if st.get("error") else "")
+            + (f"  (reused from run {st['reused_from']})" if st.get("reused_from") else "")
+        )
     if art.SOLVE_INFO.exists(args.run_dir):
         s = art.SOLVE_INFO.load(args.run_dir)
-        print(f"solver: {s['method']} ({s['laplacian']}, lam={s['lam']:g}) {s['status']} after {s['sweeps']} "
-              f"sweeps; final relative residual {s['final_residual']:.3e}")
+        print(
+            f"solver: {s['method']} ({s['laplacian']}, lam={s['lam']:g}) {s['status']} after {s['sweeps']} "
+            f"sweeps; final relative residual {s['final_residual']:.3e}"
+        )
         res = s["residuals"]
         what = "preconditioned residual" if s["method"] == "sweep-cg" else "relative residual"
         step = max(1, len(res) // 20)
@@ -246,7 +308,9 @@ def cmd_status(args):
 
 
 def main(argv=None):
-    os.environ.setdefault("NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba"))
+    os.environ.setdefault(
+        "NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba")
+    )
     parser = build_parser()
     args = parser.parse_args(argv)
     if not args.command:
@@ -254,8 +318,13 @@ def main(argv=None):
         return EXIT_USAGE
     _setup_logging(args.quiet)
     try:
-        return {"run": cmd_run, "demo": cmd_demo, "tune": cmd_tune, "status": cmd_status,
-                "report": cmd_report}[args.command](args)
+        return {
+            "run": cmd_run,
+            "demo": cmd_demo,
+            "tune": cmd_tune,
+            "status": cmd_status,
+            "report": cmd_report,
+        }[args.command](args)
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)
         return exc.exit_code if exc.exit_code != EXIT_SOFTWARE else EXIT_USAGE

@@ -5,6 +5,7 @@ one-line description. :func:`load_config` reads a TOML file, fills defaults, che
 against its rule and returns a plain nested dict. Relative paths are taken relative to the
 config file's folder.
 """
+
 import difflib
 import hashlib
 import json
@@ -20,98 +21,372 @@ REQUIRED = object()
 
 @dataclass(frozen=True)
 class Rule:
-    kind: str                      # "int", "float", "str", "bool", "list[str]", "table[float]", "range"
+    kind: str  # "int", "float", "str", "bool", "list[str]", "table[float]", "range"
     default: object = REQUIRED
     lo: float | None = None
     hi: float | None = None
     choices: tuple | None = None
     doc: str = ""
-    affects_result: bool = True    # part of the run identity hash
+    affects_result: bool = True  # part of the run identity hash
     nullable: bool = False
     extra: dict = field(default_factory=dict)
 
 
 RULES = {
     "input": {
-        "path": Rule("str", doc="Parquet file, folder (searched recursively) or glob of the night's scored table"),
+        "path": Rule(
+            "str", doc="Parquet file, folder (searched recursively) or glob of the night's scored table"
+        ),
         "id": Rule("str", doc="column with a unique id per row (integer or string)"),
-        "scores": Rule("list[str]", doc="score column(s); several columns are smoothed together (e.g. one per class)"),
-        "score_range": Rule("range", default=[0.0, 1.0], doc="declared [min, max] of the scores; values outside are bad data"),
-        "numeric_features": Rule("list[str]", default=[], doc="numeric feature columns used to decide who is similar"),
-        "categorical_features": Rule("list[str]", default=[], doc="categorical feature columns (one-hot encoded)"),
-        "protected": Rule("list[str]", doc="protected-attribute columns; used only to define what the fair space ignores"),
-        "label": Rule("str", default="", doc="optional column of known outcomes (0/1, null where unknown); used by the audit only"),
-        "counterfactual_score": Rule("str", default="", doc="optional column: the model's first score for the same row with its protected attributes changed; the audit reports how often both give the same decision"),
-        "pairs": Rule("str", default="", doc="optional Parquet file of comparable pairs, columns id_a and id_b (ids of this table): the audit reports how often both rows of a pair get the same decision"),
-        "compare_scores": Rule("list[str]", default=[], doc="other score columns (e.g. a retrained model's) audited side by side with the raw and adjusted first score; not smoothed, not published"),
+        "scores": Rule(
+            "list[str]", doc="score column(s); several columns are smoothed together (e.g. one per class)"
+        ),
+        "score_range": Rule(
+            "range", default=[0.0, 1.0], doc="declared [min, max] of the scores; values outside are bad data"
+        ),
+        "numeric_features": Rule(
+            "list[str]", default=[], doc="numeric feature columns used to decide who is similar"
+        ),
+        "categorical_features": Rule(
+            "list[str]", default=[], doc="categorical feature columns (one-hot encoded)"
+        ),
+        "protected": Rule(
+            "list[str]", doc="protected-attribute columns; used only to define what the fair space ignores"
+        ),
+        "label": Rule(
+            "str",
+            default="",
+            doc="optional column of known outcomes (0/1, null where unknown); used by the audit only",
+        ),
+        "counterfactual_score": Rule(
+            "str",
+            default="",
+            doc="optional column: the model's first score for the same row with its protected attributes changed; the audit reports how often both give the same decision",
+        ),
+        "pairs": Rule(
+            "str",
+            default="",
+            doc="optional Parquet file of comparable pairs, columns id_a and id_b (ids of this table): the audit reports how often both rows of a pair get the same decision",
+        ),
+        "compare_scores": Rule(
+            "list[str]",
+            default=[],
+            doc="other score columns (e.g. a retrained model's) audited side by side with the raw and adjusted first score; not smoothed, not published",
+        ),
     },
     "embed": {
-        "remove_sensitive": Rule("bool", default=True, doc="project out the feature directions that predict each protected attribute"),
-        "components": Rule("int", default=0, lo=0, hi=1000, doc="keep this many principal components of the fair space (0 = keep all)"),
-        "feature_weights": Rule("table[float]", default={}, lo=0.0, hi=1e6, doc="per-feature multipliers applied after standardising (missing = 1)"),
-        "leakage_warn_auc": Rule("float", default=0.65, lo=0.5, hi=1.0, doc="warn when the fair space still predicts a protected attribute with AUC above this: a linear probe (embed) or the vote of each row's fair-space neighbours (audit)"),
-        "probe_rows": Rule("int", default=50000, lo=100, hi=10_000_000, doc="rows sampled for the leakage probe"),
-        "batch_rows": Rule("int", default=0, lo=0, hi=10_000_000, doc="rows per streamed chunk, a multiple of 8192 (0 = derived from run.memory_mb)", affects_result=False),
+        "remove_sensitive": Rule(
+            "bool",
+            default=True,
+            doc="project out the feature directions that predict each protected attribute",
+        ),
+        "components": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=1000,
+            doc="keep this many principal components of the fair space (0 = keep all)",
+        ),
+        "feature_weights": Rule(
+            "table[float]",
+            default={},
+            lo=0.0,
+            hi=1e6,
+            doc="per-feature multipliers applied after standardising (missing = 1)",
+        ),
+        "leakage_warn_auc": Rule(
+            "float",
+            default=0.65,
+            lo=0.5,
+            hi=1.0,
+            doc="warn when the fair space still predicts a protected attribute with AUC above this: a linear probe (embed) or the vote of each row's fair-space neighbours (audit)",
+        ),
+        "probe_rows": Rule(
+            "int", default=50000, lo=100, hi=10_000_000, doc="rows sampled for the leakage probe"
+        ),
+        "batch_rows": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=10_000_000,
+            doc="rows per streamed chunk, a multiple of 8192 (0 = derived from run.memory_mb)",
+            affects_result=False,
+        ),
     },
     "graph": {
-        "neighbours": Rule("int", default=10, lo=1, hi=200, doc="nearest neighbours per row before symmetrising"),
-        "exact_below": Rule("int", default=20000, lo=0, hi=1_000_000, doc="use exact brute-force neighbours when the table has fewer rows than this"),
-        "kernel_scale": Rule("str", default="global", choices=("global", "local"), doc="heat-kernel scale: 'global' sigma = median neighbour distance; 'local' sigma_i = distance to the row's min(7,k)-th neighbour"),
-        "scale_factor": Rule("float", default=1.0, lo=1e-6, hi=1e6, doc="multiplies the heat-kernel scale (larger = flatter weights)"),
-        "index_trees": Rule("int", default=0, lo=0, hi=64, doc="random-projection trees for the approximate index (0 = pynndescent's default)"),
-        "search_neighbours": Rule("int", default=0, lo=0, hi=400, doc="neighbours the approximate index searches for before the nearest k are kept (0 = ceil(1.5 k))"),
-        "index_threads": Rule("int", default=2, lo=1, hi=256, doc="threads of the approximate index; its result depends on this number, so it is fixed by the config, not by the machine"),
+        "neighbours": Rule(
+            "int", default=10, lo=1, hi=200, doc="nearest neighbours per row before symmetrising"
+        ),
+        "exact_below": Rule(
+            "int",
+            default=20000,
+            lo=0,
+            hi=1_000_000,
+            doc="use exact brute-force neighbours when the table has fewer rows than this",
+        ),
+        "kernel_scale": Rule(
+            "str",
+            default="global",
+            choices=("global", "local"),
+            doc="heat-kernel scale: 'global' sigma = median neighbour distance; 'local' sigma_i = distance to the row's min(7,k)-th neighbour",
+        ),
+        "scale_factor": Rule(
+            "float",
+            default=1.0,
+            lo=1e-6,
+            hi=1e6,
+            doc="multiplies the heat-kernel scale (larger = flatter weights)",
+        ),
+        "index_trees": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=64,
+            doc="random-projection trees for the approximate index (0 = pynndescent's default)",
+        ),
+        "search_neighbours": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=400,
+            doc="neighbours the approximate index searches for before the nearest k are kept (0 = ceil(1.5 k))",
+        ),
+        "index_threads": Rule(
+            "int",
+            default=2,
+            lo=1,
+            hi=256,
+            doc="threads of the approximate index; its result depends on this number, so it is fixed by the config, not by the machine",
+        ),
     },
     "solve": {
-        "laplacian": Rule("str", default="unnormalised", choices=("unnormalised", "random_walk"), doc="C = I (unnormalised) or C = D (random-walk normalised)"),
-        "lam": Rule("float", default=1.0, lo=0.0, hi=1e9, doc="smoothing strength lambda (0 changes nothing)"),
-        "method": Rule("str", default="sweep-cg", choices=("sweep-cg", "blocks", "direct"), doc="'sweep-cg' = conjugate gradients preconditioned by symmetric Gauss-Seidel sweeps over block groups; 'blocks' = plain blocked coordinate descent; 'direct' = sparse direct solve (small tables, reference)"),
-        "groups": Rule("int", default=4, lo=1, hi=4096, doc="block groups: rows are clustered into this many groups (k-means on the fair space) that workers sweep independently; at most this many workers are busy, and more groups weaken the preconditioner (on the 1M-row demo graph 4 groups solved 5-10% faster than 8, measured), so set it to about the number of workers"),
-        "relaxation": Rule("float", default=1.3, lo=0.05, hi=1.95, doc="'sweep-cg': relaxation factor omega of the symmetric sweeps (1 = symmetric Gauss-Seidel, other values = SSOR); 1.3 took 5-7% fewer sweeps than 1 on the 1M-row demo graph (measured)"),
-        "workers": Rule("int", default=0, lo=0, hi=1024, doc="worker processes or threads for the group sweeps (0 = one per core, at most groups); results do not depend on it", affects_result=False),
-        "backend": Rule("str", default="threads", choices=("threads", "processes"), doc="run group sweeps in threads (compiled kernels release the GIL) or loky worker processes over memmaps", affects_result=False),
-        "checkpoint_every": Rule("int", default=1, lo=1, hi=1_000_000, doc="write the solver checkpoint after every this many sweeps", affects_result=False),
-        "block_rows": Rule("int", default=4096, lo=1, hi=10_000_000, doc="rows per block of the 'blocks' solver"),
-        "block_solve": Rule("str", default="exact", choices=("exact", "sweeps"), doc="'blocks' solver: solve each block exactly (sparse LU) or by inner Gauss-Seidel sweeps"),
-        "inner_sweeps": Rule("int", default=2, lo=1, hi=1000, doc="'blocks' solver: inner Gauss-Seidel sweeps per block when block_solve = 'sweeps'"),
-        "warm_start": Rule("bool", default=False, doc="start the solver from the adjusted scores currently published in output.path, for ids present in both (new ids start from their raw score); converges to the same answer within tol, in fewer sweeps"),
-        "tol": Rule("float", default=1e-6, lo=1e-15, hi=1.0, doc="stop when ||C y - A f|| / ||C y|| falls below this"),
-        "max_sweeps": Rule("int", default=500, lo=1, hi=1_000_000, doc="cap on outer sweeps; hitting it warns and is recorded"),
+        "laplacian": Rule(
+            "str",
+            default="unnormalised",
+            choices=("unnormalised", "random_walk"),
+            doc="C = I (unnormalised) or C = D (random-walk normalised)",
+        ),
+        "lam": Rule(
+            "float", default=1.0, lo=0.0, hi=1e9, doc="smoothing strength lambda (0 changes nothing)"
+        ),
+        "method": Rule(
+            "str",
+            default="sweep-cg",
+            choices=("sweep-cg", "blocks", "direct"),
+            doc="'sweep-cg' = conjugate gradients preconditioned by symmetric Gauss-Seidel sweeps over block groups; 'blocks' = plain blocked coordinate descent; 'direct' = sparse direct solve (small tables, reference)",
+        ),
+        "groups": Rule(
+            "int",
+            default=4,
+            lo=1,
+            hi=4096,
+            doc="block groups: rows are clustered into this many groups (k-means on the fair space) that workers sweep independently; at most this many workers are busy, and more groups weaken the preconditioner (on the 1M-row demo graph 4 groups solved 5-10% faster than 8, measured), so set it to about the number of workers",
+        ),
+        "relaxation": Rule(
+            "float",
+            default=1.3,
+            lo=0.05,
+            hi=1.95,
+            doc="'sweep-cg': relaxation factor omega of the symmetric sweeps (1 = symmetric Gauss-Seidel, other values = SSOR); 1.3 took 5-7% fewer sweeps than 1 on the 1M-row demo graph (measured)",
+        ),
+        "workers": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=1024,
+            doc="worker processes or threads for the group sweeps (0 = one per core, at most groups); results do not depend on it",
+            affects_result=False,
+        ),
+        "backend": Rule(
+            "str",
+            default="threads",
+            choices=("threads", "processes"),
+            doc="run group sweeps in threads (compiled kernels release the GIL) or loky worker processes over memmaps",
+            affects_result=False,
+        ),
+        "checkpoint_every": Rule(
+            "int",
+            default=1,
+            lo=1,
+            hi=1_000_000,
+            doc="write the solver checkpoint after every this many sweeps",
+            affects_result=False,
+        ),
+        "block_rows": Rule(
+            "int", default=4096, lo=1, hi=10_000_000, doc="rows per block of the 'blocks' solver"
+        ),
+        "block_solve": Rule(
+            "str",
+            default="exact",
+            choices=("exact", "sweeps"),
+            doc="'blocks' solver: solve each block exactly (sparse LU) or by inner Gauss-Seidel sweeps",
+        ),
+        "inner_sweeps": Rule(
+            "int",
+            default=2,
+            lo=1,
+            hi=1000,
+            doc="'blocks' solver: inner Gauss-Seidel sweeps per block when block_solve = 'sweeps'",
+        ),
+        "warm_start": Rule(
+            "bool",
+            default=False,
+            doc="start the solver from the adjusted scores currently published in output.path, for ids present in both (new ids start from their raw score); converges to the same answer within tol, in fewer sweeps",
+        ),
+        "tol": Rule(
+            "float", default=1e-6, lo=1e-15, hi=1.0, doc="stop when ||C y - A f|| / ||C y|| falls below this"
+        ),
+        "max_sweeps": Rule(
+            "int",
+            default=500,
+            lo=1,
+            hi=1_000_000,
+            doc="cap on outer sweeps; hitting it warns and is recorded",
+        ),
     },
     "output": {
-        "path": Rule("str", doc="output folder; each run writes a new version folder inside it and then moves the 'current' pointer"),
-        "include_protected": Rule("bool", default=False, doc="copy the protected-attribute columns into the output"),
-        "suffix": Rule("str", default="_adjusted", doc="suffix of the adjusted score columns (the change column ends in '_change')"),
+        "path": Rule(
+            "str",
+            doc="output folder; each run writes a new version folder inside it and then moves the 'current' pointer",
+        ),
+        "include_protected": Rule(
+            "bool", default=False, doc="copy the protected-attribute columns into the output"
+        ),
+        "suffix": Rule(
+            "str",
+            default="_adjusted",
+            doc="suffix of the adjusted score columns (the change column ends in '_change')",
+        ),
     },
     "audit": {
-        "select_rate": Rule("float", default=0.3, lo=1e-6, hi=1.0, doc="share of rows selected (highest scores) at the quantile cutoff used for decisions"),
-        "min_group_rows": Rule("int", default=10, lo=1, hi=1_000_000, doc="groups smaller than this are suppressed in the audit"),
-        "top_changes": Rule("int", default=10, lo=0, hi=10000, doc="list this many largest changes (ids) in the audit"),
-        "lipschitz": Rule("float", default=0.0, lo=0.0, hi=1e9, doc="Lipschitz constant L for the violation rates |f_i - f_j| > L d_ij (0 = the 90th percentile of |y_i - y_j| / d_ij over the raw scores' neighbour pairs)"),
-        "pair_sample": Rule("int", default=200000, lo=100, hi=100_000_000, doc="random pairs of rows sampled for the global Lipschitz rate"),
-        "controls": Rule("bool", default=True, doc="compute the two controls: shrinkage toward the mean with the same spread reduction, and smoothing on a random graph of the same degree with its strength chosen for the same spread reduction"),
-        "report_note": Rule("str", default="", doc="a line shown under the status banner of the report (e.g. which model and population this is)", affects_result=False),
-        "counterfactual_rows": Rule("int", default=1000, lo=1, hi=100_000_000, doc="rows sampled for the exact counterfactual figure after smoothing (each needs a local solve; all rows when the table is smaller)"),
-        "counterfactual_tol": Rule("float", default=1e-4, lo=1e-12, hi=0.1, doc="the local solves for the counterfactual figure stop when one more hop changes a row's self-influence G_ii by less than this"),
+        "select_rate": Rule(
+            "float",
+            default=0.3,
+            lo=1e-6,
+            hi=1.0,
+            doc="share of rows selected (highest scores) at the quantile cutoff used for decisions",
+        ),
+        "min_group_rows": Rule(
+            "int", default=10, lo=1, hi=1_000_000, doc="groups smaller than this are suppressed in the audit"
+        ),
+        "top_changes": Rule(
+            "int", default=10, lo=0, hi=10000, doc="list this many largest changes (ids) in the audit"
+        ),
+        "lipschitz": Rule(
+            "float",
+            default=0.0,
+            lo=0.0,
+            hi=1e9,
+            doc="Lipschitz constant L for the violation rates |f_i - f_j| > L d_ij (0 = the 90th percentile of |y_i - y_j| / d_ij over the raw scores' neighbour pairs)",
+        ),
+        "pair_sample": Rule(
+            "int",
+            default=200000,
+            lo=100,
+            hi=100_000_000,
+            doc="random pairs of rows sampled for the global Lipschitz rate",
+        ),
+        "controls": Rule(
+            "bool",
+            default=True,
+            doc="compute the two controls: shrinkage toward the mean with the same spread reduction, and smoothing on a random graph of the same degree with its strength chosen for the same spread reduction",
+        ),
+        "report_note": Rule(
+            "str",
+            default="",
+            doc="a line shown under the status banner of the report (e.g. which model and population this is)",
+            affects_result=False,
+        ),
+        "counterfactual_rows": Rule(
+            "int",
+            default=1000,
+            lo=1,
+            hi=100_000_000,
+            doc="rows sampled for the exact counterfactual figure after smoothing (each needs a local solve; all rows when the table is smaller)",
+        ),
+        "counterfactual_tol": Rule(
+            "float",
+            default=1e-4,
+            lo=1e-12,
+            hi=0.1,
+            doc="the local solves for the counterfactual figure stop when one more hop changes a row's self-influence G_ii by less than this",
+        ),
     },
     "gates": {
-        "max_auc_drop": Rule("float", default=0.01, lo=0.0, hi=1.0, doc="fail when the AUC on labelled rows drops by more than this share of its value (0.01 = 1% relative; common practice; 1 = off; off as well when no labelled rows hold both outcomes)"),
-        "min_neighbour_consistency": Rule("float", default=0.0, lo=0.0, hi=1.0, doc="fail when the neighbour consistency of decisions in the fair space after smoothing is below this (0 = off)"),
-        "max_decision_change_rate": Rule("float", default=1.0, lo=0.0, hi=1.0, doc="fail when more than this share of decisions changes (1 = off)"),
-        "max_selection_ratio_drop": Rule("float", default=1.0, lo=0.0, hi=1.0, doc="fail when any group's selection-rate ratio to the highest group (the four-fifths ratio, 29 CFR 1607.4(D)) falls by more than this after smoothing, e.g. 0.02 (1 = off)"),
-        "on_fail": Rule("str", default="hold", choices=("hold", "publish"), doc="'hold': a failed gate publishes nothing and last night's output stays current; 'publish': publish anyway (the exit code still says the gate failed)", affects_result=False),
+        "max_auc_drop": Rule(
+            "float",
+            default=0.01,
+            lo=0.0,
+            hi=1.0,
+            doc="fail when the AUC on labelled rows drops by more than this share of its value (0.01 = 1% relative; common practice; 1 = off; off as well when no labelled rows hold both outcomes)",
+        ),
+        "min_neighbour_consistency": Rule(
+            "float",
+            default=0.0,
+            lo=0.0,
+            hi=1.0,
+            doc="fail when the neighbour consistency of decisions in the fair space after smoothing is below this (0 = off)",
+        ),
+        "max_decision_change_rate": Rule(
+            "float",
+            default=1.0,
+            lo=0.0,
+            hi=1.0,
+            doc="fail when more than this share of decisions changes (1 = off)",
+        ),
+        "max_selection_ratio_drop": Rule(
+            "float",
+            default=1.0,
+            lo=0.0,
+            hi=1.0,
+            doc="fail when any group's selection-rate ratio to the highest group (the four-fifths ratio, 29 CFR 1607.4(D)) falls by more than this after smoothing, e.g. 0.02 (1 = off)",
+        ),
+        "on_fail": Rule(
+            "str",
+            default="hold",
+            choices=("hold", "publish"),
+            doc="'hold': a failed gate publishes nothing and last night's output stays current; 'publish': publish anyway (the exit code still says the gate failed)",
+            affects_result=False,
+        ),
     },
     "run": {
-        "dir": Rule("str", default="runs", doc="folder holding one run directory per (config, input) pair", affects_result=False),
-        "seed": Rule("int", default=0, lo=0, hi=2**32 - 1, doc="seed of every random choice (neighbour index, probe sample)"),
-        "memory_mb": Rule("int", default=4096, lo=256, hi=100_000_000, doc="memory budget in MiB for streaming: sets rows per chunk and DuckDB's memory_limit (a quarter each)", affects_result=False),
-        "on_input_change": Rule("str", default="fresh", choices=("fresh", "refuse"), doc="when an unfinished run with the same settings exists but the input files changed: 'fresh' starts a new run (and says which files changed), 'refuse' stops with exit code 65", affects_result=False),
+        "dir": Rule(
+            "str",
+            default="runs",
+            doc="folder holding one run directory per (config, input) pair",
+            affects_result=False,
+        ),
+        "seed": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=2**32 - 1,
+            doc="seed of every random choice (neighbour index, probe sample)",
+        ),
+        "memory_mb": Rule(
+            "int",
+            default=4096,
+            lo=256,
+            hi=100_000_000,
+            doc="memory budget in MiB for streaming: sets rows per chunk and DuckDB's memory_limit (a quarter each)",
+            affects_result=False,
+        ),
+        "on_input_change": Rule(
+            "str",
+            default="fresh",
+            choices=("fresh", "refuse"),
+            doc="when an unfinished run with the same settings exists but the input files changed: 'fresh' starts a new run (and says which files changed), 'refuse' stops with exit code 65",
+            affects_result=False,
+        ),
     },
 }
 
 PATH_KEYS = {("input", "path"), ("output", "path"), ("run", "dir"), ("input", "pairs")}
-REQUIRED_PATHS = {("input", "path"): "Parquet file, folder or glob", ("output", "path"): "folder for the output",
-                  ("run", "dir"): "folder for the run directories"}
+REQUIRED_PATHS = {
+    ("input", "path"): "Parquet file, folder or glob",
+    ("output", "path"): "folder for the output",
+    ("run", "dir"): "folder for the run directories",
+}
 ADJUSTED_SUFFIX_RESERVED = ("", "_change")
 
 
@@ -136,8 +411,12 @@ def _check(section, key, rule, value):
             fail(f"an integer in [{rule.lo}, {rule.hi}]")
         return value
     if k == "float":
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) \
-                or not (rule.lo <= value <= rule.hi):
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, (int, float))
+            or not math.isfinite(value)
+            or not (rule.lo <= value <= rule.hi)
+        ):
             fail(f"a number in [{rule.lo:g}, {rule.hi:g}]")
         return float(value)
     if k == "str":
@@ -155,9 +434,14 @@ def _check(section, key, rule, value):
             fail("a list without repeats")
         return list(value)
     if k == "range":
-        if (not isinstance(value, list) or len(value) != 2
-                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in value)
-                or not value[0] < value[1]):
+        if (
+            not isinstance(value, list)
+            or len(value) != 2
+            or not all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in value
+            )
+            or not value[0] < value[1]
+        ):
             fail("[min, max] with min < max")
         return [float(value[0]), float(value[1])]
     if k == "table[float]":
@@ -178,8 +462,10 @@ def validate(raw, base_dir="."):
         raise ConfigError("the config must be a TOML table")
     for section in raw:
         if section not in RULES:
-            raise ConfigError(f"unknown config section [{section}]{_suggest(section, RULES)}; "
-                              f"known sections: {', '.join(RULES)}")
+            raise ConfigError(
+                f"unknown config section [{section}]{_suggest(section, RULES)}; "
+                f"known sections: {', '.join(RULES)}"
+            )
     cfg = {}
     for section, rules in RULES.items():
         given = raw.get(section, {})
@@ -187,24 +473,34 @@ def validate(raw, base_dir="."):
             raise ConfigError(f"[{section}] must be a table")
         for key in given:
             if key not in rules:
-                raise ConfigError(f"unknown key {section}.{key}{_suggest(key, rules)}; "
-                                  f"known keys in [{section}]: {', '.join(rules)}")
+                raise ConfigError(
+                    f"unknown key {section}.{key}{_suggest(key, rules)}; "
+                    f"known keys in [{section}]: {', '.join(rules)}"
+                )
         out = {}
         for key, rule in rules.items():
             if key in given:
                 value = _check(section, key, rule, given[key])
                 if (section, key) in PATH_KEYS and isinstance(value, str) and "://" in value:
-                    raise ConfigError(f"{section}.{key} = {value!r} names an object store or URL; object stores "
-                                      "are not supported yet: use a local or mounted file system path")
+                    raise ConfigError(
+                        f"{section}.{key} = {value!r} names an object store or URL; object stores "
+                        "are not supported yet: use a local or mounted file system path"
+                    )
                 if (section, key) in REQUIRED_PATHS and not value.strip():
-                    raise ConfigError(f"{section}.{key} is empty; it must name a {REQUIRED_PATHS[(section, key)]}")
+                    raise ConfigError(
+                        f"{section}.{key} is empty; it must name a {REQUIRED_PATHS[(section, key)]}"
+                    )
             elif rule.default is REQUIRED:
                 raise ConfigError(f"{section}.{key} is required ({rule.doc})")
             else:
                 value = json.loads(json.dumps(rule.default))
             if (section, key) in PATH_KEYS and not value:
-                pass                    # an optional path left empty
-            elif (section, key) in PATH_KEYS and not any(c in value for c in "*?[") and not os.path.isabs(value):
+                pass  # an optional path left empty
+            elif (
+                (section, key) in PATH_KEYS
+                and not any(c in value for c in "*?[")
+                and not os.path.isabs(value)
+            ):
                 value = os.path.normpath(os.path.join(base_dir, value))
             elif (section, key) in PATH_KEYS and not os.path.isabs(value):
                 value = os.path.join(os.path.abspath(base_dir), value)
@@ -218,35 +514,53 @@ def _cross_checks(cfg):
     inp = cfg["input"]
     feats = inp["numeric_features"] + inp["categorical_features"]
     if not feats:
-        raise ConfigError("input.numeric_features and input.categorical_features are both empty; "
-                          "at least one feature column is needed to decide who is similar")
-    roles = [("id", [inp["id"]]), ("scores", inp["scores"]), ("numeric_features", inp["numeric_features"]),
-             ("categorical_features", inp["categorical_features"]), ("protected", inp["protected"]),
-             ("label", [inp["label"]] if inp["label"] else []), ("compare_scores", inp["compare_scores"]),
-             ("counterfactual_score", [inp["counterfactual_score"]] if inp["counterfactual_score"] else [])]
+        raise ConfigError(
+            "input.numeric_features and input.categorical_features are both empty; "
+            "at least one feature column is needed to decide who is similar"
+        )
+    roles = [
+        ("id", [inp["id"]]),
+        ("scores", inp["scores"]),
+        ("numeric_features", inp["numeric_features"]),
+        ("categorical_features", inp["categorical_features"]),
+        ("protected", inp["protected"]),
+        ("label", [inp["label"]] if inp["label"] else []),
+        ("compare_scores", inp["compare_scores"]),
+        ("counterfactual_score", [inp["counterfactual_score"]] if inp["counterfactual_score"] else []),
+    ]
     seen = {}
     for role, cols in roles:
         for c in cols:
             if c in seen:
-                raise ConfigError(f"column {c!r} is given as both input.{seen[c]} and input.{role}; "
-                                  "each column has one role (protected attributes must not be features)")
+                raise ConfigError(
+                    f"column {c!r} is given as both input.{seen[c]} and input.{role}; "
+                    "each column has one role (protected attributes must not be features)"
+                )
             seen[c] = role
     if cfg["embed"]["batch_rows"] % 8192:
-        raise ConfigError(f"embed.batch_rows must be 0 or a multiple of 8192; got {cfg['embed']['batch_rows']}")
+        raise ConfigError(
+            f"embed.batch_rows must be 0 or a multiple of 8192; got {cfg['embed']['batch_rows']}"
+        )
     for f in cfg["embed"]["feature_weights"]:
         if f not in feats:
-            raise ConfigError(f"embed.feature_weights names {f!r}, which is not a feature{_suggest(f, feats)}")
+            raise ConfigError(
+                f"embed.feature_weights names {f!r}, which is not a feature{_suggest(f, feats)}"
+            )
     _check_output_apart(cfg)
     suffix = cfg["output"]["suffix"]
     if suffix in ADJUSTED_SUFFIX_RESERVED or not suffix.strip():
-        raise ConfigError(f"output.suffix must be a non-empty suffix other than '_change' (the change column "
-                          f"ends in '_change'); got {suffix!r}")
+        raise ConfigError(
+            f"output.suffix must be a non-empty suffix other than '_change' (the change column "
+            f"ends in '_change'); got {suffix!r}"
+        )
     out_cols = [inp["id"]] + inp["scores"] + inp["protected"]
     for c in inp["scores"]:
         for made in (c + suffix, c + "_change"):
             if made in out_cols:
-                raise ConfigError(f"output.suffix {suffix!r} makes the output column {made!r}, which is also an "
-                                  "input column of the output; choose another suffix")
+                raise ConfigError(
+                    f"output.suffix {suffix!r} makes the output column {made!r}, which is also an "
+                    "input column of the output; choose another suffix"
+                )
 
 
 def _inside(child, parent):
@@ -263,8 +577,10 @@ def _check_output_apart(cfg):
     in_real, out_real = os.path.realpath(base), os.path.realpath(out_path)
     bad = out_real == in_real if os.path.isfile(in_real) else _inside(out_real, in_real)
     if bad or os.path.abspath(out_path) == os.path.abspath(inp_path):
-        raise ConfigError(f"output.path {out_path} is the input folder, inside it or a link to it (input.path "
-                          f"{inp_path}); the next run would read this output as input. Put the output elsewhere.")
+        raise ConfigError(
+            f"output.path {out_path} is the input folder, inside it or a link to it (input.path "
+            f"{inp_path}); the next run would read this output as input. Put the output elsewhere."
+        )
 
 
 def load_config(path):
@@ -279,14 +595,16 @@ def load_config(path):
         raise ConfigError(f"config path {path} is a directory; give the path of a TOML file") from None
     except OSError as exc:
         raise ConfigError(f"config file {path} cannot be read: {exc.strerror}") from None
-    if data.startswith(b"\xef\xbb\xbf"):       # a byte-order mark, as some editors write: not part of TOML
+    if data.startswith(b"\xef\xbb\xbf"):  # a byte-order mark, as some editors write: not part of TOML
         data = data[3:]
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
-        line = data[:exc.start].count(b"\n") + 1
-        raise ConfigError(f"config file {path} is not UTF-8 text (TOML must be UTF-8): byte 0x{data[exc.start]:02x} "
-                          f"on line {line}; save it as UTF-8") from None
+        line = data[: exc.start].count(b"\n") + 1
+        raise ConfigError(
+            f"config file {path} is not UTF-8 text (TOML must be UTF-8): byte 0x{data[exc.start]:02x} "
+            f"on line {line}; save it as UTF-8"
+        ) from None
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

@@ -7,6 +7,7 @@ attributes but learned them anyway through proxies (the applicant's current post
 different scores depending on their origin group and age band. All names and numbers here are
 invented by this module; nothing is real data.
 """
+
 import os
 
 import numpy as np
@@ -22,9 +23,18 @@ HOUSEHOLD = ("single", "couple", "family", "shared")
 ORIGIN = ("group_a", "group_b", "group_c")
 AGE_BAND = ("18-29", "30-49", "50+")
 
-NUMERIC = ("monthly_income", "income_months_stable", "rent_to_income", "prior_tenancies",
-           "arrears_months", "household_size", "references", "years_at_address", "savings_months",
-           "debt_to_income")
+NUMERIC = (
+    "monthly_income",
+    "income_months_stable",
+    "rent_to_income",
+    "prior_tenancies",
+    "arrears_months",
+    "household_size",
+    "references",
+    "years_at_address",
+    "savings_months",
+    "debt_to_income",
+)
 CATEGORICAL = ("employment", "household", "postcode_sector")
 PROTECTED = ("origin_group", "age_band")
 
@@ -37,11 +47,13 @@ def generate(n_rows, seed=0):
     age = rng.choice(3, size=n, p=[0.3, 0.45, 0.25])
     district = rng.choice(len(DISTRICTS), size=n)
     # postcode sector: a proxy for origin group (groups b and c concentrated in a few sectors)
-    sector_p = np.array([
-        np.r_[np.full(8, 0.11), np.full(4, 0.03)],
-        np.r_[np.full(8, 0.02), np.full(4, 0.21)],
-        np.r_[np.full(8, 0.03), np.full(4, 0.19)],
-    ])
+    sector_p = np.array(
+        [
+            np.r_[np.full(8, 0.11), np.full(4, 0.03)],
+            np.r_[np.full(8, 0.02), np.full(4, 0.21)],
+            np.r_[np.full(8, 0.03), np.full(4, 0.19)],
+        ]
+    )
     sector_p /= sector_p.sum(axis=1, keepdims=True)
     cum = np.cumsum(sector_p[origin], axis=1)
     sector = (rng.random(n)[:, None] > cum).sum(axis=1).clip(0, len(SECTORS) - 1)
@@ -52,15 +64,27 @@ def generate(n_rows, seed=0):
     rent_ratio = np.clip(rng.normal(0.33, 0.08, n), 0.1, 0.8)
     prior = rng.poisson(1.2 + age, n).astype(np.float64)
     arrears = rng.poisson(0.4, n).astype(np.float64)
-    hh_size = np.where(household == 2, 2 + rng.poisson(1.4, n), np.where(household == 1, 2, 1 + (household == 3) * rng.poisson(1.5, n))).astype(np.float64)
+    hh_size = np.where(
+        household == 2,
+        2 + rng.poisson(1.4, n),
+        np.where(household == 1, 2, 1 + (household == 3) * rng.poisson(1.5, n)),
+    ).astype(np.float64)
     refs = rng.integers(0, 4, n).astype(np.float64)
     # years at address: a proxy for age band
     years_addr = np.round(rng.gamma(1.5 + 1.5 * age, 1.6, n), 1)
     savings = np.round(rng.exponential(1.5, n), 2)
     dti = np.clip(rng.normal(0.25, 0.12, n), 0.0, 1.5)
 
-    legit = (0.9 * (np.log(income) - 7.6) + 0.02 * (stable - 28) - 4.0 * (rent_ratio - 0.33)
-             - 0.7 * arrears + 0.25 * refs + 0.15 * savings - 1.2 * (dti - 0.25) + 0.1 * prior)
+    legit = (
+        0.9 * (np.log(income) - 7.6)
+        + 0.02 * (stable - 28)
+        - 4.0 * (rent_ratio - 0.33)
+        - 0.7 * arrears
+        + 0.25 * refs
+        + 0.15 * savings
+        - 1.2 * (dti - 0.25)
+        + 0.1 * prior
+    )
     # the true outcome depends on the legitimate factors only
     p_true = 1 / (1 + np.exp(-(0.6 + legit)))
     outcome = (rng.random(n) < p_true).astype(np.int8)

@@ -5,29 +5,38 @@ The codes follow the BSD ``sysexits.h`` conventions so that a scheduler can tell
 """
 
 EXIT_OK = 0
-EXIT_GATE = 3        # a quality gate of the audit failed (ours; outside the sysexits range)
-EXIT_USAGE = 64      # EX_USAGE: bad command line
-EXIT_DATA = 65       # EX_DATAERR: the input table is unusable
-EXIT_NOINPUT = 66    # EX_NOINPUT: input path missing or unreadable
-EXIT_SOFTWARE = 70   # EX_SOFTWARE: internal error (a bug; please report)
+EXIT_GATE = 3  # a quality gate of the audit failed (ours; outside the sysexits range)
+EXIT_USAGE = 64  # EX_USAGE: bad command line
+EXIT_DATA = 65  # EX_DATAERR: the input table is unusable
+EXIT_NOINPUT = 66  # EX_NOINPUT: input path missing or unreadable
+EXIT_SOFTWARE = 70  # EX_SOFTWARE: internal error (a bug; please report)
 EXIT_CANTCREAT = 73  # EX_CANTCREAT: cannot write the run directory or output
-EXIT_TEMPFAIL = 75   # EX_TEMPFAIL: another run holds the lock; retry later
-EXIT_CONFIG = 78     # EX_CONFIG: the config file is wrong
+EXIT_TEMPFAIL = 75  # EX_TEMPFAIL: another run holds the lock; retry later
+EXIT_CONFIG = 78  # EX_CONFIG: the config file is wrong
 
 # code: (meaning, what to do). The one source of the exit-code table: the CLI's --help, the README
 # and jobs/nightly.sh are generated from it (python -m bigsmooth.errors; tests/test_exit_codes.py).
 EXIT_TABLE = {
     EXIT_OK: ("success (or nothing to do: the run was already complete)", "nothing"),
-    EXIT_GATE: ("an audit gate failed (output held back unless gates.on_fail = \"publish\")",
-                "read the report; nothing was published unless gates.on_fail = \"publish\"; alert"),
+    EXIT_GATE: (
+        'an audit gate failed (output held back unless gates.on_fail = "publish")',
+        'read the report; nothing was published unless gates.on_fail = "publish"; alert',
+    ),
     EXIT_USAGE: ("bad command line", "fix the call; alert"),
-    EXIT_DATA: ("bad input data (columns, types, nulls, duplicate ids, ranges, schemas), or input files that "
-                "changed while the job ran", "fix the data; the message has counts and example ids; alert"),
-    EXIT_NOINPUT: ("input path missing, unreadable or not Parquet (also corrupt data pages)",
-                   "check the path, permissions and files"),
+    EXIT_DATA: (
+        "bad input data (columns, types, nulls, duplicate ids, ranges, schemas), or input files that "
+        "changed while the job ran",
+        "fix the data; the message has counts and example ids; alert",
+    ),
+    EXIT_NOINPUT: (
+        "input path missing, unreadable or not Parquet (also corrupt data pages)",
+        "check the path, permissions and files",
+    ),
     EXIT_SOFTWARE: ("internal error", "report it (a bug); the run resumes after a fix"),
-    EXIT_CANTCREAT: ("cannot write the run directory or the output (also a full disk)",
-                     "free space or fix permissions, then run again: it resumes"),
+    EXIT_CANTCREAT: (
+        "cannot write the run directory or the output (also a full disk)",
+        "free space or fix permissions, then run again: it resumes",
+    ),
     EXIT_TEMPFAIL: ("another run holds the lock; retry later", "retry later"),
     EXIT_CONFIG: ("bad configuration", "fix the config; alert"),
 }

@@ -18,14 +18,24 @@ symlink not yet).
 SIGKILL is what the OOM killer and a hard reboot do: no handler, no cleanup, no flush. Unset (the
 normal case), every point costs one dictionary lookup.
 """
+
 import errno
 import os
 import signal
 
 ENV = "BIGSMOOTH_FAULT"
 
-POINTS = ("stage:<name>:start", "stage:<name>:done", "embed:chunk:<i>", "solve:sweep:<i>", "checkpoint:write",
-          "publish:file:<i>", "publish:before-rename", "publish:before-pointer", "publish:before-link")
+POINTS = (
+    "stage:<name>:start",
+    "stage:<name>:done",
+    "embed:chunk:<i>",
+    "solve:sweep:<i>",
+    "checkpoint:write",
+    "publish:file:<i>",
+    "publish:before-rename",
+    "publish:before-pointer",
+    "publish:before-link",
+)
 
 
 def _armed():

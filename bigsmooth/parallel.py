@@ -13,6 +13,7 @@ artifact keys and row ranges, never arrays in memory or host-bound handles (whic
 
 Also here: where the process workers' scratch vectors live (:func:`work_files`).
 """
+
 import contextlib
 import os
 from dataclasses import dataclass
@@ -78,12 +79,19 @@ def _handle(a):
         except OSError:
             return a
         if a.offset + a.nbytes == st.st_size:
-            return MapHandle(a.filename, st.st_ino, st.st_size, int(a.offset), tuple(a.shape), a.dtype.str,
-                             "r" if a.mode in ("r", "c") else "r+")
+            return MapHandle(
+                a.filename,
+                st.st_ino,
+                st.st_size,
+                int(a.offset),
+                tuple(a.shape),
+                a.dtype.str,
+                "r" if a.mode in ("r", "c") else "r+",
+            )
     return a
 
 
-_MAPPED = {}          # in each worker process: MapHandle -> the open np.memmap
+_MAPPED = {}  # in each worker process: MapHandle -> the open np.memmap
 _MAPPED_MAX = 64
 
 
@@ -101,7 +109,9 @@ def _resolve(a):
             del _MAPPED[old]
         if len(_MAPPED) >= _MAPPED_MAX:
             del _MAPPED[next(iter(_MAPPED))]
-        m = _MAPPED[a] = np.memmap(a.path, dtype=np.dtype(a.dtype), mode=a.mode, offset=a.offset, shape=a.shape)
+        m = _MAPPED[a] = np.memmap(
+            a.path, dtype=np.dtype(a.dtype), mode=a.mode, offset=a.offset, shape=a.shape
+        )
     return m
 
 
@@ -158,8 +168,6 @@ class ProcessPool:
         self._ex.shutdown(wait=wait)
 
 
-
-
 EXECUTORS = {"threads": Threads, "processes": ProcessPool}
 
 
@@ -177,7 +185,9 @@ def make_executor(workers, backend):
     try:
         return EXECUTORS[backend](workers)
     except KeyError:
-        raise ValueError(f"backend must be one of {', '.join(map(repr, EXECUTORS))}; got {backend!r}") from None
+        raise ValueError(
+            f"backend must be one of {', '.join(map(repr, EXECUTORS))}; got {backend!r}"
+        ) from None
 
 
 def shm_key(path):
@@ -214,8 +224,11 @@ def work_files(n, c, key, fallback):
         shutil.rmtree(folder, ignore_errors=True)
     os.makedirs(folder, exist_ok=True)
     try:
-        yield Work.allocate(n, c, lambda name, shape: atomic.new_memmap(
-            artifacts.member_file(folder, name), np.float64, shape))
+        yield Work.allocate(
+            n,
+            c,
+            lambda name, shape: atomic.new_memmap(artifacts.member_file(folder, name), np.float64, shape),
+        )
     finally:
         if folder != fallback:
             shutil.rmtree(folder, ignore_errors=True)

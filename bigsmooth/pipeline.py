@@ -1,4 +1,5 @@
 """The nightly job: create or resume a run and take it through every stage in order."""
+
 import logging
 import os
 import shutil
@@ -71,12 +72,19 @@ def _handle_input_change(cfg, chash, fp, rid):
         lines = changed_files(m["input"], fp)
         listing = "\n  ".join(lines[:10]) + (f"\n  ... and {len(lines) - 10} more" if len(lines) > 10 else "")
         if cfg["run"]["on_input_change"] == "refuse":
-            raise DataError(f"the unfinished run {path} was started on other input files; {len(lines)} "
-                            f"files differ:\n  {listing}\nrun.on_input_change = \"refuse\": nothing was "
-                            "done. Restore the input to resume that run, or set run.on_input_change = "
-                            "\"fresh\" to start a new run on the current files.")
-        log.warning("the unfinished run %s was started on other input files; not resuming it, starting a "
-                    "fresh run. %d files differ:\n  %s", path, len(lines), listing)
+            raise DataError(
+                f"the unfinished run {path} was started on other input files; {len(lines)} "
+                f'files differ:\n  {listing}\nrun.on_input_change = "refuse": nothing was '
+                "done. Restore the input to resume that run, or set run.on_input_change = "
+                '"fresh" to start a new run on the current files.'
+            )
+        log.warning(
+            "the unfinished run %s was started on other input files; not resuming it, starting a "
+            "fresh run. %d files differ:\n  %s",
+            path,
+            len(lines),
+            listing,
+        )
         with hold_lock(path, f"run {path}"):
             m = read_json(os.path.join(path, artifacts.MANIFEST))
             m["superseded_by"] = rid
@@ -90,11 +98,16 @@ def _check_gates(rd, cfg, before_publish):
     if not failed or (before_publish and cfg["gates"]["on_fail"] == "publish"):
         return
     lines = "\n  ".join(g["line"] for g in failed)
-    what = ("nothing was published; the output's current version is unchanged" if before_publish
-            else "the output was published anyway (gates.on_fail = \"publish\")")
-    raise GateError(f"{len(failed)} audit gate(s) failed:\n  {lines}\n{what}. The audit is in "
-                    f"{artifacts.AUDIT_REPORT_JSON.path(rd)} and {artifacts.AUDIT_REPORT_HTML.path(rd)}; lower solve.lam "
-                    "(see `bigsmooth tune`) or change the [gates] thresholds.")
+    what = (
+        "nothing was published; the output's current version is unchanged"
+        if before_publish
+        else 'the output was published anyway (gates.on_fail = "publish")'
+    )
+    raise GateError(
+        f"{len(failed)} audit gate(s) failed:\n  {lines}\n{what}. The audit is in "
+        f"{artifacts.AUDIT_REPORT_JSON.path(rd)} and {artifacts.AUDIT_REPORT_HTML.path(rd)}; lower solve.lam "
+        "(see `bigsmooth tune`) or change the [gates] thresholds."
+    )
 
 
 def _reading(name, fp, call):
@@ -112,11 +125,16 @@ def _reading(name, fp, call):
         if not bad:
             raise
         lines = "\n  ".join(f"{p}: {why}" for p, why in bad)
-        raise InputMissingError(f"{len(bad)} input file(s) cannot be read (corrupt data pages?) in stage {name}:\n  "
-                                f"{lines}\nReplace or remove them and run again.") from exc
+        raise InputMissingError(
+            f"{len(bad)} input file(s) cannot be read (corrupt data pages?) in stage {name}:\n  "
+            f"{lines}\nReplace or remove them and run again."
+        ) from exc
 
 
-KEEP_ON_FRESH = (artifacts.LOCK, os.path.dirname(artifacts.TUNE_INFO.rel))     # the lock we hold; tuning results (the graph is rebuilt the same)
+KEEP_ON_FRESH = (
+    artifacts.LOCK,
+    os.path.dirname(artifacts.TUNE_INFO.rel),
+)  # the lock we hold; tuning results (the graph is rebuilt the same)
 
 
 def _discard(rd):
@@ -141,7 +159,9 @@ def _clear_stale(rd):
     for name in os.listdir(rd.path):
         p = os.path.join(rd.path, name)
         if name.startswith((".discard-", ".adopt-")) or (not rd.exists() and name not in KEEP_ON_FRESH):
-            shutil.rmtree(p, ignore_errors=True) if os.path.isdir(p) and not os.path.islink(p) else os.unlink(p)
+            shutil.rmtree(p, ignore_errors=True) if os.path.isdir(p) and not os.path.islink(p) else os.unlink(
+                p
+            )
 
 
 def _stage_calls(rd, cfg, fp, rid):
@@ -184,16 +204,30 @@ def run_job(config_path, fresh=False, tune=None):
             if rd.all_done() and tune is None:
                 out = m["stages"]["publish"]["summary"]["path"]
                 if os.path.isdir(out):
-                    log.info("run %s is already complete (same config and input); nothing to do. Output: %s", rid, out)
+                    log.info(
+                        "run %s is already complete (same config and input); nothing to do. Output: %s",
+                        rid,
+                        out,
+                    )
                     return {"run_dir": rd.path, "run_id": rid, "already_complete": True, "output": out}
-                log.warning("run %s is complete but its published version folder %s is gone; publishing it again",
-                            rid, out)
+                log.warning(
+                    "run %s is complete but its published version folder %s is gone; publishing it again",
+                    rid,
+                    out,
+                )
                 m["stages"]["publish"] = {"state": "pending"}
                 rd.save(m)
             log.info("resuming run %s", rid)
         else:
-            rd.create({"run_id": rid, "config_hash": chash, "config_path": os.path.abspath(config_path),
-                       "settings": config_mod.result_settings(cfg), "input": fp})
+            rd.create(
+                {
+                    "run_id": rid,
+                    "config_hash": chash,
+                    "config_path": os.path.abspath(config_path),
+                    "settings": config_mod.result_settings(cfg),
+                    "input": fp,
+                }
+            )
             log.info("new run %s: %d rows in %d files", rid, fp["rows"], len(fp["files"]))
         _check_writable(cfg["output"]["path"])
         calls = _stage_calls(rd, cfg, fp, rid)
@@ -213,8 +247,12 @@ def run_job(config_path, fresh=False, tune=None):
                 if stage_base.shareable(name, cfg) and not fresh:
                     source = find_stage(cfg["run"]["dir"], name, ids[name], exclude=rd.path)
                     if source and rd.adopt(name, source, ids[name]):
-                        log.info("stage %s: reusing the outputs of run %s (same input and %s settings)", name,
-                                 os.path.basename(source), name)
+                        log.info(
+                            "stage %s: reusing the outputs of run %s (same input and %s settings)",
+                            name,
+                            os.path.basename(source),
+                            name,
+                        )
                         continue
                 log.info("stage %s", name)
                 with rd.stage(name, ids[name]) as record:
@@ -224,9 +262,11 @@ def run_job(config_path, fresh=False, tune=None):
                         record.update(_reading(name, fp, calls[name]))
                     except OSError as exc:
                         # a failed write (disk full, permissions): earlier outputs and checkpoints stay
-                        raise OutputError(f"stage {name} could not write in {rd.path}: {exc}. Earlier "
-                                          "stages and the last solver checkpoint are kept; free space or "
-                                          "fix permissions and run again to resume.") from None
+                        raise OutputError(
+                            f"stage {name} could not write in {rd.path}: {exc}. Earlier "
+                            "stages and the last solver checkpoint are kept; free space or "
+                            "fix permissions and run again to resume."
+                        ) from None
         out = rd.summary("publish")["path"]
         _check_gates(rd, cfg, before_publish=False)
         return {"run_dir": rd.path, "run_id": rid, "already_complete": False, "output": out}

@@ -1,4 +1,5 @@
 """Progress of long stages as log lines, at most one every few seconds (plus the last)."""
+
 import time
 
 
@@ -13,6 +14,12 @@ class Progress:
         now = time.monotonic()
         if now - self.last >= self.every or self.done >= self.total:
             rate = self.done / max(now - self.t0, 1e-9)
-            self.log.info("%s: %d / %d rows (%.0f%%, %.0f rows/s)", self.what, self.done, self.total,
-                          100.0 * self.done / max(self.total, 1), rate)
+            self.log.info(
+                "%s: %d / %d rows (%.0f%%, %.0f rows/s)",
+                self.what,
+                self.done,
+                self.total,
+                100.0 * self.done / max(self.total, 1),
+                rate,
+            )
             self.last = now

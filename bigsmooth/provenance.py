@@ -5,6 +5,7 @@ The output version's name is chosen once per run, before the audit is written, a
 directory (publish/pending.json), so the audit, the report and the published files all name the
 same version folder, also after an interruption.
 """
+
 import hashlib
 import time
 
@@ -68,6 +69,8 @@ def banner(prov):
     if prov["status"] == "held":
         return f"HELD: gate(s) {', '.join(prov['failed_gates'])} failed; nothing was published"
     if prov["failed_gates"]:
-        return (f"PUBLISHED as {prov['output_version']} although gate(s) {', '.join(prov['failed_gates'])} "
-                "failed (gates.on_fail = \"publish\")")
+        return (
+            f"PUBLISHED as {prov['output_version']} although gate(s) {', '.join(prov['failed_gates'])} "
+            'failed (gates.on_fail = "publish")'
+        )
     return f"PUBLISHED as {prov['output_version']}"

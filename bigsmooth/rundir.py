@@ -8,6 +8,7 @@
 The run id is the first 16 hex digits of sha256(config hash + input hash): the same config and
 input give the same run directory, so a second run resumes or (when complete) does nothing.
 """
+
 import contextlib
 import errno
 import fcntl
@@ -83,14 +84,22 @@ class RunDir:
             faults.point(f"stage:{name}:done")
         except BaseException as exc:
             m = self.load()
-            m["stages"][name].update(state="failed", seconds=round(time.monotonic() - t0, 3),
-                                     error=f"{type(exc).__name__}: {exc}"[:2000])
+            m["stages"][name].update(
+                state="failed",
+                seconds=round(time.monotonic() - t0, 3),
+                error=f"{type(exc).__name__}: {exc}"[:2000],
+            )
             with contextlib.suppress(Exception):
                 self.save(m)
             raise
         m = self.load()
-        m["stages"][name].update(state="done", finished=_now(), seconds=round(time.monotonic() - t0, 3),
-                                 summary=record, **({"identity": identity} if identity else {}))
+        m["stages"][name].update(
+            state="done",
+            finished=_now(),
+            seconds=round(time.monotonic() - t0, 3),
+            summary=record,
+            **({"identity": identity} if identity else {}),
+        )
         self.save(m)
         log.info("stage %s done in %.1f s", name, time.monotonic() - t0)
 
@@ -115,9 +124,14 @@ class RunDir:
         os.rename(tmp, dst_dir)
         atomic.fsync_dir(self.path)
         m = self.load()
-        m["stages"][name] = {"state": "done", "finished": _now(), "seconds": 0.0, "identity": identity,
-                             "reused_from": src_manifest["run_id"],
-                             "summary": src_manifest["stages"][name].get("summary", {})}
+        m["stages"][name] = {
+            "state": "done",
+            "finished": _now(),
+            "seconds": 0.0,
+            "identity": identity,
+            "reused_from": src_manifest["run_id"],
+            "summary": src_manifest["stages"][name].get("summary", {}),
+        }
         self.save(m)
         return True
 
@@ -143,8 +157,9 @@ def hold_lock(folder, what):
             if exc.errno not in (errno.EAGAIN, errno.EACCES):
                 raise
             holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
-            raise LockHeldError(f"{what} is in use by another bigsmooth process ({holder}); "
-                                "retry later") from None
+            raise LockHeldError(
+                f"{what} is in use by another bigsmooth process ({holder}); retry later"
+            ) from None
         os.ftruncate(fd, 0)
         os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {_now()}\n".encode(), 0)
         yield
@@ -174,7 +189,11 @@ def find_stage(run_root, name, identity, exclude):
             st = atomic.read_json(os.path.join(path, artifacts.MANIFEST))["stages"].get(name, {})
         except (OSError, ValueError, KeyError):
             continue
-        if st.get("state") == "done" and st.get("identity") == identity and os.path.isdir(os.path.join(path, name)):
+        if (
+            st.get("state") == "done"
+            and st.get("identity") == identity
+            and os.path.isdir(os.path.join(path, name))
+        ):
             found.append((st.get("finished", ""), path))
     return max(found)[1] if found else None
 

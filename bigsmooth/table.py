@@ -5,6 +5,7 @@ rows are numbered by their position in the file (DuckDB's ``file_row_number``), 
 is the file's offset (from the Parquet footers) plus that position. Every identifier that goes into
 SQL is quoted; every value (paths, lists) is passed as a parameter.
 """
+
 import glob
 import hashlib
 import json
@@ -20,8 +21,8 @@ from .errors import DataError, InputMissingError
 log = logging.getLogger("bigsmooth.table")
 
 ROW = "__bigsmooth_row"
-FILE_COL = "__bigsmooth_file"     # DuckDB's file name column, under a name no input column takes
-RESERVED_COLUMNS = ("file_row_number", ROW, FILE_COL)   # DuckDB's row-number option cannot be renamed
+FILE_COL = "__bigsmooth_file"  # DuckDB's file name column, under a name no input column takes
+RESERVED_COLUMNS = ("file_row_number", ROW, FILE_COL)  # DuckDB's row-number option cannot be renamed
 
 
 def quote(name):
@@ -37,13 +38,18 @@ def _walk_parquet(root):
         st = os.stat(dirpath)
         key = (st.st_dev, st.st_ino)
         if key in seen:
-            raise InputMissingError(f"input folder {root}: the folder {seen[key]} is reached again as {dirpath} "
-                                    "(a symbolic link loop or a second link to it); remove the link so that "
-                                    "every file is read once")
+            raise InputMissingError(
+                f"input folder {root}: the folder {seen[key]} is reached again as {dirpath} "
+                "(a symbolic link loop or a second link to it); remove the link so that "
+                "every file is read once"
+            )
         seen[key] = dirpath
         dirnames[:] = sorted(d for d in dirnames if not d.startswith((".", "_")))
-        files += [os.path.join(dirpath, f) for f in filenames
-                  if f.lower().endswith(".parquet") and not f.startswith((".", "_"))]
+        files += [
+            os.path.join(dirpath, f)
+            for f in filenames
+            if f.lower().endswith(".parquet") and not f.startswith((".", "_"))
+        ]
     return [os.path.abspath(f) for f in files if os.path.isfile(f)]
 
 
@@ -65,8 +71,10 @@ def resolve_files(path):
     for f in files:
         r = os.path.realpath(f)
         if r in real:
-            raise InputMissingError(f"the input file {r} is reached twice, as {real[r]} and as {f} (a symbolic "
-                                    "link?); every file must be read once")
+            raise InputMissingError(
+                f"the input file {r} is reached twice, as {real[r]} and as {f} (a symbolic "
+                "link?); every file must be read once"
+            )
         real[r] = f
     for f in files:
         if not os.access(f, os.R_OK):
@@ -78,8 +86,11 @@ def input_root(path, files):
     """The folder that output paths mirror: the input folder, or the files' common folder."""
     if os.path.isdir(path) and not any(c in path for c in "*?["):
         return os.path.abspath(path)
-    return os.path.dirname(os.path.commonpath(files)) if len(files) == 1 else os.path.commonpath(
-        [os.path.dirname(f) for f in files])
+    return (
+        os.path.dirname(os.path.commonpath(files))
+        if len(files) == 1
+        else os.path.commonpath([os.path.dirname(f) for f in files])
+    )
 
 
 def footer_hash(path):
@@ -100,16 +111,23 @@ def verify_unchanged(fp, when):
     for e in fp["files"]:
         try:
             st = os.stat(e["path"])
-            same = st.st_size == e["size"] and st.st_mtime_ns == e["mtime_ns"] and footer_hash(e["path"]) == e["footer"]
+            same = (
+                st.st_size == e["size"]
+                and st.st_mtime_ns == e["mtime_ns"]
+                and footer_hash(e["path"]) == e["footer"]
+            )
         except (OSError, ValueError):
             lines.append(f"removed or unreadable: {e['path']}")
             continue
         if not same:
             lines.append(f"changed: {e['path']}")
     if lines:
-        raise DataError(f"{len(lines)} input file(s) changed while the job was running ({when}):\n  "
-                        + "\n  ".join(lines[:10]) + "\nNothing was published. Run the job again once the input "
-                        "is complete; it starts a fresh run on the new files.")
+        raise DataError(
+            f"{len(lines)} input file(s) changed while the job was running ({when}):\n  "
+            + "\n  ".join(lines[:10])
+            + "\nNothing was published. Run the job again once the input "
+            "is complete; it starts a fresh run on the new files."
+        )
 
 
 def unreadable_files(fp, limit=5):
@@ -137,10 +155,12 @@ def id_digests(con, fp, id_col):
     """{path: order-sensitive digest of the file's ids}: the xor over rows of a hash of the text
     "id:row number in the file" (one string, so that swapping two ids changes it; a hash of the two
     values as separate arguments combined them so that the xor over rows lost the order)."""
-    rows = con.execute(f"SELECT {FILE_COL}, bit_xor(hash(CAST({quote(id_col)} AS VARCHAR) || ':' || CAST(file_row_number AS VARCHAR))) FROM read_parquet("
-                       f"$files, hive_partitioning = true, union_by_name = true, filename = '{FILE_COL}', "
-                       f"file_row_number = true) GROUP BY {FILE_COL}",
-                       {"files": [e["path"] for e in fp["files"]]}).fetchall()
+    rows = con.execute(
+        f"SELECT {FILE_COL}, bit_xor(hash(CAST({quote(id_col)} AS VARCHAR) || ':' || CAST(file_row_number AS VARCHAR))) FROM read_parquet("
+        f"$files, hive_partitioning = true, union_by_name = true, filename = '{FILE_COL}', "
+        f"file_row_number = true) GROUP BY {FILE_COL}",
+        {"files": [e["path"] for e in fp["files"]]},
+    ).fetchall()
     return {path: str(d) for path, d in rows}
 
 
@@ -170,15 +190,26 @@ def fingerprint(path):
             bad.append((f, str(exc).splitlines()[0] if str(exc) else type(exc).__name__))
             continue
         st = os.stat(f)
-        entries.append({"path": f, "size": st.st_size, "mtime_ns": st.st_mtime_ns, "footer": footer_hash(f),
-                        "rows": rows, "offset": offset})
+        entries.append(
+            {
+                "path": f,
+                "size": st.st_size,
+                "mtime_ns": st.st_mtime_ns,
+                "footer": footer_hash(f),
+                "rows": rows,
+                "offset": offset,
+            }
+        )
         offset += rows
     if bad:
         lines = "\n".join(f"  {f}: {why}" for f, why in bad[:5])
-        raise InputMissingError(f"{len(bad)} of {len(files)} input files are not readable Parquet "
-                        f"(truncated or corrupt?):\n{lines}\nReplace or remove them and run again.")
-    digest = hashlib.sha256(json.dumps([(e["path"], e["size"], e["mtime_ns"], e["footer"], e["rows"])
-                                        for e in entries]).encode()).hexdigest()
+        raise InputMissingError(
+            f"{len(bad)} of {len(files)} input files are not readable Parquet "
+            f"(truncated or corrupt?):\n{lines}\nReplace or remove them and run again."
+        )
+    digest = hashlib.sha256(
+        json.dumps([(e["path"], e["size"], e["mtime_ns"], e["footer"], e["rows"]) for e in entries]).encode()
+    ).hexdigest()
     return {"root": input_root(path, files), "files": entries, "rows": offset, "hash": digest}
 
 
@@ -230,15 +261,21 @@ class Source:
 
     def __init__(self, con, fp):
         self.files = fp["files"]
-        offsets = pa.table({FILE_COL: [e["path"] for e in fp["files"]],
-                            "__offset": pa.array([e["offset"] for e in fp["files"]], pa.int64())})
+        offsets = pa.table(
+            {
+                FILE_COL: [e["path"] for e in fp["files"]],
+                "__offset": pa.array([e["offset"] for e in fp["files"]], pa.int64()),
+            }
+        )
         con.register("__bigsmooth_offsets", offsets)
         self.params = {"files": [e["path"] for e in fp["files"]]}
-        self.sql = (f"(SELECT o.__offset + t.file_row_number AS {ROW}, "
-                    f"t.* EXCLUDE ({FILE_COL}, file_row_number) "
-                    f"FROM read_parquet($files, hive_partitioning = true, union_by_name = true, "
-                    f"filename = '{FILE_COL}', file_row_number = true, can_have_nan = true) t "
-                    f"JOIN __bigsmooth_offsets o USING ({FILE_COL})) AS src")
+        self.sql = (
+            f"(SELECT o.__offset + t.file_row_number AS {ROW}, "
+            f"t.* EXCLUDE ({FILE_COL}, file_row_number) "
+            f"FROM read_parquet($files, hive_partitioning = true, union_by_name = true, "
+            f"filename = '{FILE_COL}', file_row_number = true, can_have_nan = true) t "
+            f"JOIN __bigsmooth_offsets o USING ({FILE_COL})) AS src"
+        )
 
     def fetch(self, con, sql, **params):
         """Run a query whose FROM names ``{src}``; return all result rows as tuples."""
@@ -260,11 +297,13 @@ class Source:
         """
         con.execute("SET preserve_insertion_order = true")
         for e in self.files:
-            if e["rows"] == 0:          # nothing to stream (its schema may even lack the columns)
+            if e["rows"] == 0:  # nothing to stream (its schema may even lack the columns)
                 continue
-            rel = con.sql(f"SELECT file_row_number AS {ROW}, {select} FROM read_parquet($file, "
-                          f"hive_partitioning = true, file_row_number = true, can_have_nan = true)",
-                          params={"file": e["path"]})
+            rel = con.sql(
+                f"SELECT file_row_number AS {ROW}, {select} FROM read_parquet($file, "
+                f"hive_partitioning = true, file_row_number = true, can_have_nan = true)",
+                params={"file": e["path"]},
+            )
             pending, have, expect = [], 0, 0
             for batch in rel.to_arrow_reader(batch_rows):
                 if not batch.num_rows:
@@ -289,8 +328,10 @@ def yield_check(table, entry, expect):
     """Check that a chunk's file row numbers continue the file's sequence; return the next one."""
     rows = table.column(ROW).to_numpy()
     if rows[0] != expect or (len(rows) > 1 and not np.all(np.diff(rows) == 1)):
-        raise RuntimeError(f"{entry['path']}: DuckDB returned rows out of file order near row {expect}; "
-                           "refusing to continue (row order must be deterministic)")
+        raise RuntimeError(
+            f"{entry['path']}: DuckDB returned rows out of file order near row {expect}; "
+            "refusing to continue (row order must be deterministic)"
+        )
     return expect + len(rows)
 
 

@@ -1,6 +1,8 @@
 import os
 
-os.environ.setdefault("NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba"))
+os.environ.setdefault(
+    "NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba")
+)
 
 import numpy as np  # noqa: E402
 import pytest  # noqa: E402

@@ -1,4 +1,5 @@
 """Helpers shared by the command-line tests (imported by tests/test_*.py)."""
+
 import os
 import subprocess
 import sys
@@ -15,8 +16,14 @@ ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 def cli(*args, cwd=None, env=None):
     """Run ``python -m bigsmooth ARGS`` in a subprocess (extra environment variables in ``env``)."""
     full = {**os.environ, "PYTHONPATH": ROOT, **(env or {})}
-    return subprocess.run([sys.executable, "-m", "bigsmooth", *args], capture_output=True, text=True,
-                          cwd=cwd, env=full, timeout=600)
+    return subprocess.run(
+        [sys.executable, "-m", "bigsmooth", *args],
+        capture_output=True,
+        text=True,
+        cwd=cwd,
+        env=full,
+        timeout=600,
+    )
 
 
 def read_output(out_dir):
@@ -43,5 +50,3 @@ def _assert_nothing_published(tmp_path):
     out = tmp_path / "out"
     assert not (out / "current").exists()
     assert not out.exists() or not [p for p in out.iterdir() if not p.name.startswith(".")]
-
-

@@ -1,5 +1,6 @@
 """The artifact catalogue is the only place that spells a run directory's file names, and every
 artifact the job writes is declared in it."""
+
 import os
 import re
 
@@ -20,8 +21,14 @@ def test_no_artifact_file_name_outside_the_catalogue():
     names = {os.path.basename(a.rel) for a in artifacts.CATALOGUE.values() if a.kind not in ("csr", "dir")}
     names |= {f"{m}.npy" for m in artifacts.CSR_PARTS}
     names |= {os.path.basename(a.rel) for a in artifacts.CATALOGUE.values() if a.kind == "dir"} - {"work"}
-    names |= {artifacts.MANIFEST, artifacts.LOCK, artifacts.OUTPUT_AUDIT, artifacts.OUTPUT_REPORT,
-              artifacts.OUTPUT_POINTER, artifacts.DEMO_RECORD}
+    names |= {
+        artifacts.MANIFEST,
+        artifacts.LOCK,
+        artifacts.OUTPUT_AUDIT,
+        artifacts.OUTPUT_REPORT,
+        artifacts.OUTPUT_POINTER,
+        artifacts.DEMO_RECORD,
+    }
     hits = []
     for path in _sources():
         if path.endswith(os.path.join("bigsmooth", "artifacts.py")):
@@ -49,7 +56,8 @@ def test_every_file_a_run_writes_is_declared(tmp_path):
             rel = os.path.relpath(os.path.join(root, f), run_dir)
             if rel in (artifacts.MANIFEST, artifacts.LOCK):
                 continue
-            if rel not in declared and not any(rel.startswith(a.rel + os.sep) for a in artifacts.CATALOGUE.values()
-                                               if a.kind == "dir"):
+            if rel not in declared and not any(
+                rel.startswith(a.rel + os.sep) for a in artifacts.CATALOGUE.values() if a.kind == "dir"
+            ):
                 undeclared.append(rel)
     assert not undeclared, undeclared

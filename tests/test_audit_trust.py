@@ -3,6 +3,7 @@ figures that keep identical rows apart, gates that are off saying so.
 
 Tables here are invented test input (not references); each check names what it compares with.
 """
+
 import json
 
 import numpy as np
@@ -59,9 +60,18 @@ def test_a_ring_shaped_protected_attribute_is_found_by_the_neighbour_vote(tmp_pa
     group = np.where(np.hypot(x[:, 0], x[:, 1]) < 0.8, "inner", "outer")
     score = np.clip(0.5 + 0.3 * (group == "inner") + rng.normal(0, 0.1, n), 0, 1)
     label = (rng.random(n) < score).astype(np.int8)
-    res = _run(tmp_path, {"id": np.arange(n), "score": score, **{f"x{j + 1}": x[:, j] for j in range(4)},
-                          "group": group, "label": label}, extra="[gates]\nmax_auc_drop = 1.0\n",
-               features=("x1", "x2", "x3", "x4"))
+    res = _run(
+        tmp_path,
+        {
+            "id": np.arange(n),
+            "score": score,
+            **{f"x{j + 1}": x[:, j] for j in range(4)},
+            "group": group,
+            "label": label,
+        },
+        extra="[gates]\nmax_auc_drop = 1.0\n",
+        features=("x1", "x2", "x3", "x4"),
+    )
     assert res.returncode == 0, res.stderr[-2000:]
     a = _audit(tmp_path)
     assert a["leakage"]["linear_probe"]["group"]["max_fair_space_auc"] < 0.65
@@ -80,14 +90,23 @@ def test_identical_rows_are_reported_apart_from_the_lipschitz_rate(tmp_path):
     x = np.repeat(base, 12, axis=0)
     n = len(x)
     score = rng.uniform(0.2, 0.8, n)
-    res = _run(tmp_path, {"id": np.arange(n), "score": score, "x1": x[:, 0], "x2": x[:, 1],
-                          "group": rng.choice(["a", "b"], n), "label": (rng.random(n) < 0.5).astype(np.int8)},
-               extra="[gates]\nmax_auc_drop = 1.0\n")
+    res = _run(
+        tmp_path,
+        {
+            "id": np.arange(n),
+            "score": score,
+            "x1": x[:, 0],
+            "x2": x[:, 1],
+            "group": rng.choice(["a", "b"], n),
+            "label": (rng.random(n) < 0.5).astype(np.int8),
+        },
+        extra="[gates]\nmax_auc_drop = 1.0\n",
+    )
     assert res.returncode == 0, res.stderr[-2000:]
     b = _audit(tmp_path)["scores"]["score"]["before"]
     assert b["zero_distance_pair_share"] == 1.0
-    assert b["lipschitz_violations_local"] == 0.0            # no pair at d > 0 to violate
-    assert b["zero_distance_pairs_differing"] == 1.0         # continuous random scores all differ
+    assert b["lipschitz_violations_local"] == 0.0  # no pair at d > 0 to violate
+    assert b["zero_distance_pairs_differing"] == 1.0  # continuous random scores all differ
     # the mean |difference| over the zero-distance neighbour pairs: the expected |u - v| of two
     # independent uniforms on an interval of length 0.6 is 0.6 / 3 (handbook), within sampling error
     assert abs(b["zero_distance_mean_abs_difference"] - 0.2) < 0.02
@@ -107,17 +126,24 @@ def test_provenance_names_the_run_and_lam_in_json_report_and_parquet(tmp_path):
     assert run_dir.name in page and ">2.5<" in page and "PUBLISHED as " + prov["output_version"] in page
     for f in cur.glob("*.parquet"):
         meta = json.loads(pq.read_schema(f).metadata[b"bigsmooth.provenance"])
-        assert meta["run_id"] == run_dir.name and meta["lam"] == 2.5 and meta["output_version"] == prov["output_version"]
+        assert (
+            meta["run_id"] == run_dir.name
+            and meta["lam"] == 2.5
+            and meta["output_version"] == prov["output_version"]
+        )
     assert res.stdout.splitlines()[0] == "PUBLISHED as " + prov["output_version"]
     # the full cautions are printed once on the page
-    assert page.count("no proof of legal compliance") == 2      # the one-line caution and the full list
+    assert page.count("no proof of legal compliance") == 2  # the one-line caution and the full list
 
 
 def test_gates_that_are_off_say_off_and_a_held_run_says_held(tmp_path):
     cfg = _write_case(tmp_path, _small_table(400, seed=12))
     res = cli("run", str(cfg))
     assert res.returncode == 0
-    assert "gate min_neighbour_consistency: off" in res.stdout and "gates: the one gate that is on passed (3 off)" in res.stdout
+    assert (
+        "gate min_neighbour_consistency: off" in res.stdout
+        and "gates: the one gate that is on passed (3 off)" in res.stdout
+    )
     assert "passed (neighbour consistency" not in res.stdout
     text = cfg.read_text() + "\n[gates]\nmax_decision_change_rate = 0.0001\n"
     cfg.write_text(text)
@@ -126,7 +152,9 @@ def test_gates_that_are_off_say_off_and_a_held_run_says_held(tmp_path):
     runs = [p for p in (tmp_path / "runs").iterdir() if (p / "audit" / "audit.json").exists()]
     held = [json.loads((p / "audit" / "audit.json").read_text())["provenance"] for p in runs]
     held = [p for p in held if p["status"] == "held"]
-    assert held and held[0]["failed_gates"] == ["max_decision_change_rate"] and held[0]["output_version"] is None
+    assert (
+        held and held[0]["failed_gates"] == ["max_decision_change_rate"] and held[0]["output_version"] is None
+    )
     page = (tmp_path / "runs" / held[0]["run_id"] / "audit" / "report.html").read_text()
     assert "HELD: gate(s) max_decision_change_rate failed" in page
 
@@ -143,10 +171,15 @@ def test_the_selection_ratio_gate_holds_a_run_whose_group_ratio_falls(tmp_path):
     # a group's four-fifths ratio (29 CFR 1607.4(D)) computed by hand from the published Parquet must
     # match the audit, and a zero-tolerance gate fails exactly when some group's ratio fell
     cfg = _write_case(tmp_path, _small_table(800, seed=14))
-    cfg.write_text(cfg.read_text() + "\n[gates]\nmax_selection_ratio_drop = 0.0\non_fail = \"publish\"\n")
+    cfg.write_text(cfg.read_text() + '\n[gates]\nmax_selection_ratio_drop = 0.0\non_fail = "publish"\n')
     res = cli("run", str(cfg))
     a = _audit(tmp_path)
-    drops = [r["ratio_drop"] for g in a["groups"].values() for r in g["ratio_change"] if r["ratio_drop"] is not None]
+    drops = [
+        r["ratio_drop"]
+        for g in a["groups"].values()
+        for r in g["ratio_change"]
+        if r["ratio_drop"] is not None
+    ]
     fell = any(d > 0 for d in drops)
     assert res.returncode == (3 if fell else 0)
     gate = [g for g in a["gates"] if g["gate"] == "max_selection_ratio_drop"][0]
@@ -169,10 +202,18 @@ def test_a_group_whose_selection_ratio_falls_is_warned_about_and_fails_the_gate(
     group = np.where(rad > 0.8, "Z", rng.choice(["A", "X"], n))
     x = np.column_stack([rad * np.cos(ang), rad * np.sin(ang), 0.3 * rng.normal(size=(n, 2))])
     score = np.clip(0.5 + 0.1 * rng.normal(size=n) + 0.25 * (group == "Z") + 0.15 * (group == "X"), 0, 1)
-    res = _run(tmp_path, {"id": np.arange(n), "score": score, **{f"x{j + 1}": x[:, j] for j in range(4)},
-                          "group": group, "label": (rng.random(n) < score).astype(np.int8)},
-               extra='[gates]\nmax_auc_drop = 1.0\nmax_selection_ratio_drop = 0.02\non_fail = "publish"\n',
-               features=("x1", "x2", "x3", "x4"))
+    res = _run(
+        tmp_path,
+        {
+            "id": np.arange(n),
+            "score": score,
+            **{f"x{j + 1}": x[:, j] for j in range(4)},
+            "group": group,
+            "label": (rng.random(n) < score).astype(np.int8),
+        },
+        extra='[gates]\nmax_auc_drop = 1.0\nmax_selection_ratio_drop = 0.02\non_fail = "publish"\n',
+        features=("x1", "x2", "x3", "x4"),
+    )
     assert res.returncode == 3, res.stderr[-2000:]
     a = _audit(tmp_path)
     x_row = [r for r in a["groups"]["group"]["ratio_change"] if r["group"] == "X"][0]

@@ -1,5 +1,6 @@
 """The benchmark's recall measure against sklearn's exact neighbours (fast; the slow benchmark run
 is in test_bench_slow.py)."""
+
 import numpy as np
 from sklearn.neighbors import NearestNeighbors
 
@@ -11,10 +12,10 @@ def test_recall_of_exact_and_of_damaged_neighbour_lists(rng):
     E = rng.normal(size=(3000, 5))
     k = 8
     _, ind = NearestNeighbors(n_neighbors=k + 1, algorithm="brute").fit(E).kneighbors(E)
-    exact = ind[:, 1:]                                    # drop the row itself
+    exact = ind[:, 1:]  # drop the row itself
     assert exact_sample_recall(E, exact, 500, np.random.default_rng(1), chunk=700) == 1.0
     damaged = exact.copy()
-    damaged[:, :2] = (damaged[:, :2] + 1500) % 3000       # two of eight replaced by far rows
+    damaged[:, :2] = (damaged[:, :2] + 1500) % 3000  # two of eight replaced by far rows
     got = exact_sample_recall(E, damaged, 3000, np.random.default_rng(1), chunk=1000)
     hits = np.mean([len(set(d) & set(e)) for d, e in zip(damaged, exact)]) / k
     assert abs(got - hits) < 1e-12 and got < 0.8

@@ -1,4 +1,5 @@
 """The job end to end through its command line, on small inputs."""
+
 import json
 import os
 import subprocess
@@ -14,6 +15,7 @@ from sklearn.neighbors import NearestNeighbors
 from bigsmooth import demo
 from bigsmooth.errors import EXIT_CONFIG, EXIT_DATA, EXIT_NOINPUT, EXIT_USAGE
 from helpers import ROOT, _assert_nothing_published, _small_table, _write_case, cli, read_output
+
 
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory):
@@ -32,7 +34,9 @@ def test_demo_publishes_every_row_once(demo_run):
     ids_in = np.sort(inp.column("applicant_id").to_numpy())
     ids_out = np.sort(out.column("applicant_id").to_numpy())
     assert np.array_equal(ids_in, ids_out) and len(np.unique(ids_out)) == 3000
-    assert {"sustain_score", "sustain_score_adjusted", "sustain_score_change", "district"} <= set(out.column_names)
+    assert {"sustain_score", "sustain_score_adjusted", "sustain_score_change", "district"} <= set(
+        out.column_names
+    )
     assert "origin_group" not in out.column_names and "age_band" not in out.column_names
     adj = out.column("sustain_score_adjusted").to_numpy()
     assert adj.min() >= 0 and adj.max() <= 1
@@ -44,8 +48,12 @@ def test_demo_reduces_disagreement_between_exact_neighbours(demo_run):
     E = np.load(run_dir / "embed" / "embedding.npy")
     # neighbours from scikit-learn on the fair space (outside reference); scores from the published Parquet,
     # matched back to row order through the input files
-    order_tbl = pa.concat_tables([pq.read_table(f, columns=["applicant_id"]) for f in
-                                  sorted(str(p) for p in (base / "data" / "applicants").rglob("*.parquet"))])
+    order_tbl = pa.concat_tables(
+        [
+            pq.read_table(f, columns=["applicant_id"])
+            for f in sorted(str(p) for p in (base / "data" / "applicants").rglob("*.parquet"))
+        ]
+    )
     out = read_output(base / "output")
     pos = {v: i for i, v in enumerate(out.column("applicant_id").to_pylist())}
     idx = np.array([pos[v] for v in order_tbl.column(0).to_pylist()])
@@ -73,7 +81,7 @@ def test_status_shows_stages_and_solver(demo_run):
     assert res.returncode == 0, res.stderr
     stages = ("scan", "embed", "graph", "order", "solve", "audit", "publish")
     listed = [line.split()[0] for line in res.stdout.splitlines()[2:9]]
-    assert listed == list(stages)           # in pipeline order, one line each
+    assert listed == list(stages)  # in pipeline order, one line each
     assert "converged" in res.stdout and "residual" in res.stdout
     m = json.loads(cli("status", str(run_dir), "--json").stdout)
     assert all(s["state"] == "done" for s in m["stages"].values())
@@ -85,14 +93,20 @@ def test_audit_has_cautions_and_four_fifths(demo_run):
     assert "no proof of legal compliance" in a["caution"]
     g = a["groups"]["origin_group"]["after"]
     assert all("below_four_fifths" in r for r in g if not r["suppressed"])
-    assert a["scores"]["sustain_score"]["after"]["neighbour_disagreement"] < \
-        a["scores"]["sustain_score"]["before"]["neighbour_disagreement"]
+    assert (
+        a["scores"]["sustain_score"]["after"]["neighbour_disagreement"]
+        < a["scores"]["sustain_score"]["before"]["neighbour_disagreement"]
+    )
 
 
 def test_help_lists_every_option():
     res = cli("--help")
     assert res.returncode == 0 and "exit codes" in res.stdout
-    for cmd, opts in {"run": ["--fresh"], "demo": ["--rows", "--dir", "--seed"], "status": ["--json"]}.items():
+    for cmd, opts in {
+        "run": ["--fresh"],
+        "demo": ["--rows", "--dir", "--seed"],
+        "status": ["--json"],
+    }.items():
         r = cli(cmd, "--help")
         assert r.returncode == 0
         for o in opts:
@@ -167,7 +181,9 @@ def test_nightly_script_passes_the_exit_code_through(demo_run, tmp_path):
     base, _ = demo_run
     env = {**os.environ, "BIGSMOOTH": os.path.join(os.path.dirname(sys.executable), "bigsmooth")}
     script = os.path.join(ROOT, "jobs", "nightly.sh")
-    ok = subprocess.run(["bash", script, str(base / "bigsmooth.toml")], capture_output=True, text=True, env=env)
+    ok = subprocess.run(
+        ["bash", script, str(base / "bigsmooth.toml")], capture_output=True, text=True, env=env
+    )
     assert ok.returncode == 0 and "already complete" in ok.stdout
     bad = tmp_path / "bad.toml"
     bad.write_text("[input]\npath = 3\n")
@@ -188,13 +204,16 @@ def test_unwritable_output_is_refused_before_any_work(tmp_path):
 
 def _variants(demo_run, tmp_path, variants, exact_below):
     base, _ = demo_run
-    text = (base / "bigsmooth.toml").read_text().replace('data/applicants', str(base / "data" / "applicants"))
+    text = (base / "bigsmooth.toml").read_text().replace("data/applicants", str(base / "data" / "applicants"))
     outs = []
     for i, (workers, backend) in enumerate(variants):
         cfg = tmp_path / f"job{i}.toml"
-        cfg.write_text(text.replace('path = "output"', f'path = "out{i}"').replace('dir = "runs"', f'dir = "runs{i}"')
-                       .replace('kernel_scale = "global"', f'kernel_scale = "global"\nexact_below = {exact_below}')
-                       .replace('tol = 1e-6', f'tol = 1e-6\nworkers = {workers}\nbackend = "{backend}"'))
+        cfg.write_text(
+            text.replace('path = "output"', f'path = "out{i}"')
+            .replace('dir = "runs"', f'dir = "runs{i}"')
+            .replace('kernel_scale = "global"', f'kernel_scale = "global"\nexact_below = {exact_below}')
+            .replace("tol = 1e-6", f'tol = 1e-6\nworkers = {workers}\nbackend = "{backend}"')
+        )
         res = cli("run", str(cfg))
         assert res.returncode == 0, res.stderr
         t = read_output(tmp_path / f"out{i}").sort_by("applicant_id")
@@ -204,7 +223,9 @@ def _variants(demo_run, tmp_path, variants, exact_below):
 
 def test_output_is_bit_identical_for_one_and_two_workers(demo_run, tmp_path):
     # the solver with 1 worker, 2 threads and 2 processes: the published adjusted scores are the same bits
-    outs = _variants(demo_run, tmp_path, [(1, "threads"), (2, "threads"), (2, "processes")], exact_below=20000)
+    outs = _variants(
+        demo_run, tmp_path, [(1, "threads"), (2, "threads"), (2, "processes")], exact_below=20000
+    )
     for o in outs[1:]:
         assert np.array_equal(o, outs[0])
 
@@ -212,8 +233,9 @@ def test_output_is_bit_identical_for_one_and_two_workers(demo_run, tmp_path):
 @pytest.mark.slow
 def test_output_is_bit_identical_on_the_approximate_path_across_workers_and_repeats(demo_run, tmp_path):
     # as above with pynndescent forced, and a repeat of the first run (same seed): same bits
-    outs = _variants(demo_run, tmp_path, [(1, "threads"), (2, "threads"), (2, "processes"), (1, "threads")],
-                     exact_below=0)
+    outs = _variants(
+        demo_run, tmp_path, [(1, "threads"), (2, "threads"), (2, "processes"), (1, "threads")], exact_below=0
+    )
     for o in outs[1:]:
         assert np.array_equal(o, outs[0])
 
@@ -225,9 +247,13 @@ def test_chunk_size_does_not_change_the_result(tmp_path):
     emb = []
     for i, rows in enumerate((8192, 16384)):
         cfg = tmp_path / f"job{i}.toml"
-        cfg.write_text(cfg0.read_text().replace('path = "out"', f'path = "out{i}"').replace('dir = "runs"', f'dir = "runs{i}"')
-                       .replace("components = 0", f"components = 0\nbatch_rows = {rows}")
-                       .replace('kernel_scale = "global"', 'kernel_scale = "global"\nexact_below = 40000'))
+        cfg.write_text(
+            cfg0.read_text()
+            .replace('path = "out"', f'path = "out{i}"')
+            .replace('dir = "runs"', f'dir = "runs{i}"')
+            .replace("components = 0", f"components = 0\nbatch_rows = {rows}")
+            .replace('kernel_scale = "global"', 'kernel_scale = "global"\nexact_below = 40000')
+        )
         res = cli("run", str(cfg))
         assert res.returncode == 0, res.stderr
         assert f"chunks of {rows} rows" in res.stderr

@@ -1,4 +1,5 @@
 """Config rules: every declared rule rejects bad values with a message naming the parameter."""
+
 import os
 import tomllib
 
@@ -34,8 +35,13 @@ def bad_values(rule):
     raise AssertionError(k)
 
 
-CASES = [(s, k, v) for s, rules in config.RULES.items() for k, r in rules.items() for v in bad_values(r)
-         if v is not None]
+CASES = [
+    (s, k, v)
+    for s, rules in config.RULES.items()
+    for k, r in rules.items()
+    for v in bad_values(r)
+    if v is not None
+]
 
 
 @pytest.mark.parametrize("section,key,value", CASES)
@@ -83,14 +89,19 @@ def test_template_documents_every_option_and_parses():
     for section, rules in config.RULES.items():
         assert f"[{section}]" in text
         for key in rules:
-            assert f"\n{key} =" in text or f"\n# {key} =" in text, f"{section}.{key} missing from the template"
+            assert f"\n{key} =" in text or f"\n# {key} =" in text, (
+                f"{section}.{key} missing from the template"
+            )
     config.validate(raw)
 
 
 def test_bundled_demo_config_matches_the_demo_command():
     text = open(os.path.join(ROOT, "configs", "demo.toml")).read()
-    assert text == demo.CONFIG_TEMPLATE.format(data="../bigsmooth-demo/data/applicants",
-                                               output="../bigsmooth-demo/output", runs="../bigsmooth-demo/runs")
+    assert text == demo.CONFIG_TEMPLATE.format(
+        data="../bigsmooth-demo/data/applicants",
+        output="../bigsmooth-demo/output",
+        runs="../bigsmooth-demo/runs",
+    )
 
 
 def test_identity_hash_ignores_operational_settings():

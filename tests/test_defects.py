@@ -1,5 +1,6 @@
 """Regression tests, through the command line, for defects found by trying the job from outside
 (issue 11, section 6). Each test is named after what broke."""
+
 import json
 import os
 import shutil
@@ -19,8 +20,13 @@ from helpers import ROOT, _assert_nothing_published, _small_table, _write_case, 
 
 def _popen(*args, env=None):
     full = {**os.environ, "PYTHONPATH": ROOT, **(env or {})}
-    return subprocess.Popen([sys.executable, "-m", "bigsmooth", *args], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, env=full)
+    return subprocess.Popen(
+        [sys.executable, "-m", "bigsmooth", *args],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=full,
+    )
 
 
 def _wait_stopped(proc, timeout=300):
@@ -82,7 +88,7 @@ def test_fresh_killed_while_discarding_leaves_a_run_that_works(tmp_path):
     (run_dir / "tune" / "tune.json").write_text("{}")
     res = cli("run", "--fresh", str(cfg))
     assert res.returncode == 0 and not [p for p in run_dir.iterdir() if p.name.startswith(".discard-")]
-    assert (run_dir / "tune" / "tune.json").exists()           # --fresh keeps the tuning results
+    assert (run_dir / "tune" / "tune.json").exists()  # --fresh keeps the tuning results
 
 
 def test_files_of_the_run_and_output_follow_the_umask(tmp_path):
@@ -95,8 +101,13 @@ def test_files_of_the_run_and_output_follow_the_umask(tmp_path):
     finally:
         os.umask(old)
     (run_dir,) = list((tmp_path / "runs").iterdir())
-    for p in (tmp_path / "out" / "CURRENT", run_dir / "manifest.json", run_dir / "audit" / "audit.json",
-              run_dir / "audit" / "report.html", tmp_path / "out" / "current" / "_audit.json"):
+    for p in (
+        tmp_path / "out" / "CURRENT",
+        run_dir / "manifest.json",
+        run_dir / "audit" / "audit.json",
+        run_dir / "audit" / "report.html",
+        tmp_path / "out" / "current" / "_audit.json",
+    ):
         assert stat.S_IMODE(os.stat(p).st_mode) == 0o644, p
 
 
@@ -105,8 +116,14 @@ def test_status_into_a_closed_pipe_is_not_an_internal_error(tmp_path):
     assert cli("run", str(cfg)).returncode == 0
     (run_dir,) = list((tmp_path / "runs").iterdir())
     env = {**os.environ, "PYTHONPATH": ROOT}
-    res = subprocess.run(f"set -o pipefail; {sys.executable} -m bigsmooth status {run_dir} | head -1",
-                         shell=True, executable="/bin/bash", capture_output=True, text=True, env=env)
+    res = subprocess.run(
+        f"set -o pipefail; {sys.executable} -m bigsmooth status {run_dir} | head -1",
+        shell=True,
+        executable="/bin/bash",
+        capture_output=True,
+        text=True,
+        env=env,
+    )
     assert res.returncode == 0 and res.stdout.startswith("run ") and "internal error" not in res.stderr
 
 
@@ -136,7 +153,9 @@ def test_a_full_disk_under_the_run_directory_is_exit_73_and_resumes(tmp_path):
         pytest.skip("mounting a small tmpfs needs root")
     mnt = tmp_path / "small"
     mnt.mkdir()
-    if subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True).returncode:
+    if subprocess.run(
+        ["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True
+    ).returncode:
         pytest.skip("cannot mount tmpfs here")
     try:
         cfg = _write_case(tmp_path, _small_table(20_000, seed=27), "\n[gates]\nmax_auc_drop = 1.0\n")

@@ -1,5 +1,6 @@
 """The exit-code table has one source (bigsmooth/errors.py); the README, jobs/nightly.sh and the
 CLI's --help carry copies generated from it, checked here so that they cannot drift."""
+
 import os
 import re
 

@@ -1,4 +1,5 @@
 """Neighbour search and graph weights against exact references."""
+
 import numpy as np
 import pytest
 from sklearn.neighbors import NearestNeighbors
@@ -8,7 +9,7 @@ from bigsmooth.kernels import graph as gk
 
 def sklearn_neighbours(X, k):
     """Exact k nearest neighbours excluding self, from scikit-learn (the reference)."""
-    nn = NearestNeighbors(n_neighbors=k + 1, algorithm="brute").fit(X)   # sklearn.neighbors
+    nn = NearestNeighbors(n_neighbors=k + 1, algorithm="brute").fit(X)  # sklearn.neighbors
     dist, ind = nn.kneighbors(X)
     return gk.drop_self(ind, dist, k)
 
@@ -23,11 +24,11 @@ def test_exact_knn_matches_sklearn(rng):
 
 
 def test_exact_knn_with_duplicate_points_excludes_only_self(rng):
-    X = np.repeat(rng.normal(size=(20, 3)), 5, axis=0)   # every point appears 5 times
+    X = np.repeat(rng.normal(size=(20, 3)), 5, axis=0)  # every point appears 5 times
     ind, dist = gk.exact_knn(X, 6)
     n = len(X)
     assert not np.any(ind == np.arange(n)[:, None])
-    assert np.all(dist[:, :4] == 0)                        # its four twins come first
+    assert np.all(dist[:, :4] == 0)  # its four twins come first
     assert np.all(dist[:, 4:] > 0)
 
 
@@ -59,10 +60,10 @@ def test_heat_kernel_graph_is_symmetric_with_unit_weight_for_duplicates(rng, rul
     W = gk.heat_kernel_graph(ind, dist, sigma)
     assert abs(W - W.T).max() == 0
     assert W.diagonal().sum() == 0
-    assert W[50, 51] == pytest.approx(1.0)           # exp(0) for a zero distance
+    assert W[50, 51] == pytest.approx(1.0)  # exp(0) for a zero distance
     # weights follow the heat-kernel formula exp(-d^2 / (sigma_i sigma_j)) on every listed edge
     i, j = 0, ind[0, 0]
-    assert W[i, j] == pytest.approx(np.exp(-dist[0, 0] ** 2 / (sigma[i] * sigma[j])))
+    assert W[i, j] == pytest.approx(np.exp(-(dist[0, 0] ** 2) / (sigma[i] * sigma[j])))
 
 
 def test_drop_self_when_self_is_not_listed():

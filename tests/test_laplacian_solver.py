@@ -1,4 +1,5 @@
 """Solvers and Laplacians against outside references and handbook facts."""
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -12,17 +13,17 @@ from conftest import random_graph
 
 def reference_solution(W, Y, lam, kind):
     """Build (C + lam L) f = C y from scipy's own Laplacian and solve it with spsolve (the reference)."""
-    L = csgraph_laplacian(W.astype(float))                       # scipy.sparse.csgraph.laplacian
+    L = csgraph_laplacian(W.astype(float))  # scipy.sparse.csgraph.laplacian
     d = np.asarray(W.sum(axis=1)).ravel()
     c = np.ones(W.shape[0]) if kind == "unnormalised" else np.where(d > 0, d, 1.0)
     A = (sp.diags(c) + lam * L).tocsc()
-    return spla.spsolve(A, c[:, None] * Y).reshape(Y.shape)       # scipy.sparse.linalg.spsolve
+    return spla.spsolve(A, c[:, None] * Y).reshape(Y.shape)  # scipy.sparse.linalg.spsolve
 
 
 def test_laplacian_matches_scipy_csgraph(rng):
     W = random_graph(60, 0.1, rng)
     ours = laplacian.laplacian(W).toarray()
-    ref = csgraph_laplacian(W).toarray()                           # scipy.sparse.csgraph.laplacian
+    ref = csgraph_laplacian(W).toarray()  # scipy.sparse.csgraph.laplacian
     np.testing.assert_allclose(ours, ref, atol=1e-14)
 
 
@@ -37,15 +38,25 @@ def test_direct_solve_matches_spsolve(rng, kind, cols):
 
 
 @pytest.mark.parametrize("kind", ["unnormalised", "random_walk"])
-@pytest.mark.parametrize("block_solve,block_rows", [("exact", 37), ("exact", 1000), ("sweeps", 50), ("sweeps", 1)])
+@pytest.mark.parametrize(
+    "block_solve,block_rows", [("exact", 37), ("exact", 1000), ("sweeps", 50), ("sweeps", 1)]
+)
 @pytest.mark.parametrize("cols", [1, 4])
 def test_block_coordinate_descent_matches_spsolve(rng, kind, block_solve, block_rows, cols):
     W = random_graph(300, 0.02, rng)
     Y = rng.random((300, cols))
     A, c = laplacian.system(W, 2.0, kind)
-    res = solver.block_coordinate_descent(A, c[:, None] * Y, x0=Y, block_rows=block_rows,
-                                          block_solve=block_solve, inner_sweeps=3, tol=1e-13,
-                                          max_sweeps=5000, gs_kernel=fast_gs)
+    res = solver.block_coordinate_descent(
+        A,
+        c[:, None] * Y,
+        x0=Y,
+        block_rows=block_rows,
+        block_solve=block_solve,
+        inner_sweeps=3,
+        tol=1e-13,
+        max_sweeps=5000,
+        gs_kernel=fast_gs,
+    )
     assert res.status == solver.STATUS_CONVERGED
     np.testing.assert_allclose(res.x, reference_solution(W, Y, 2.0, kind), atol=1e-8)
     # residuals go down (block Gauss-Seidel on an SPD matrix decreases the energy every sweep)
@@ -66,8 +77,9 @@ def test_compiled_gauss_seidel_matches_python_reference(rng):
 def test_solver_reports_max_sweeps_when_capped(rng):
     W = random_graph(300, 0.05, rng)
     A, _ = laplacian.system(W, 50.0, "unnormalised")
-    res = solver.block_coordinate_descent(A, rng.random(300), block_rows=10, block_solve="sweeps",
-                                          inner_sweeps=1, tol=1e-14, max_sweeps=3)
+    res = solver.block_coordinate_descent(
+        A, rng.random(300), block_rows=10, block_solve="sweeps", inner_sweeps=1, tol=1e-14, max_sweeps=3
+    )
     assert res.status == solver.STATUS_MAX_SWEEPS and res.sweeps == 3 and len(res.residuals) == 4
 
 
@@ -78,8 +90,12 @@ def test_checkpoint_resume_gives_identical_iterates(rng):
     kw = dict(block_rows=40, block_solve="exact", tol=1e-12, max_sweeps=200)
     full = solver.block_coordinate_descent(A, b, **kw)
     saved = {}
-    solver.block_coordinate_descent(A, b, on_sweep=lambda s, x, r: saved.update(x=x.copy(), s=s, r=list(r)) or s < 4, **kw)
-    resumed = solver.block_coordinate_descent(A, b, x0=saved["x"], start_sweep=saved["s"], residuals=saved["r"], **kw)
+    solver.block_coordinate_descent(
+        A, b, on_sweep=lambda s, x, r: saved.update(x=x.copy(), s=s, r=list(r)) or s < 4, **kw
+    )
+    resumed = solver.block_coordinate_descent(
+        A, b, x0=saved["x"], start_sweep=saved["s"], residuals=saved["r"], **kw
+    )
     assert resumed.sweeps == full.sweeps
     assert np.array_equal(resumed.x, full.x)
 
@@ -114,7 +130,7 @@ def test_path_graph_laplacian_eigenvalues():
 def test_properties_range_and_simplex(rng, kind):
     # A = C + lam L is a symmetric M-matrix with A^-1 C row-stochastic, so f is a convex combination of y.
     W = random_graph(250, 0.03, rng)
-    P = rng.dirichlet(np.ones(3), size=250)                       # probability rows
+    P = rng.dirichlet(np.ones(3), size=250)  # probability rows
     A, c = laplacian.system(W, 5.0, kind)
     F = solver.direct_solve(A, c[:, None] * P)
     assert F.min() >= P.min() - 1e-12 and F.max() <= P.max() + 1e-12

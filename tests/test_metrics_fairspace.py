@@ -1,4 +1,5 @@
 """Audit metrics against scikit-learn, and the fair space against a direct numpy computation."""
+
 import numpy as np
 import scipy.sparse as sp
 from sklearn.metrics import accuracy_score, roc_auc_score
@@ -9,14 +10,14 @@ from conftest import random_graph
 
 def test_auc_matches_sklearn_with_ties(rng):
     y = rng.integers(0, 2, 500)
-    s = np.round(rng.random(500) + 0.3 * y, 1)                 # rounding makes many ties
+    s = np.round(rng.random(500) + 0.3 * y, 1)  # rounding makes many ties
     assert metrics.roc_auc(y, s) == np.float64(roc_auc_score(y, s))  # sklearn.metrics.roc_auc_score
 
 
 def test_accuracy_matches_sklearn(rng):
     y = rng.integers(0, 2, 300)
     d = rng.integers(0, 2, 300)
-    assert metrics.accuracy(y, d) == accuracy_score(y, d)       # sklearn.metrics.accuracy_score
+    assert metrics.accuracy(y, d) == accuracy_score(y, d)  # sklearn.metrics.accuracy_score
 
 
 def test_quantile_cutoff_selects_the_rate(rng):
@@ -59,19 +60,19 @@ def test_streamed_moments_match_numpy_covariance(rng):
     mean = mom.shift + mom.sx / n
     cov = mom.sxx / n - np.outer(mom.sx / n, mom.sx / n)
     np.testing.assert_allclose(mean, X.mean(axis=0), rtol=1e-12)
-    np.testing.assert_allclose(cov, np.cov(X.T, bias=True), rtol=1e-9)   # numpy.cov reference
+    np.testing.assert_allclose(cov, np.cov(X.T, bias=True), rtol=1e-9)  # numpy.cov reference
 
 
 def test_fair_space_leaves_no_linear_correlation_with_protected(rng):
     n = 4000
     g = rng.integers(0, 3, n)
     X = rng.normal(size=(n, 5))
-    X[:, 0] += 1.5 * g                                        # a proxy of the protected attribute
+    X[:, 0] += 1.5 * g  # a proxy of the protected attribute
     X[:, 3] += 0.8 * (g == 1)
     S = np.eye(3)[g]
     fs = fairspace.fit_fair_space(_stream_moments(X, S, 3))
     E = fs.apply(X)
-    assert fs.removed == 2                                    # 3 levels -> 2 independent contrasts
+    assert fs.removed == 2  # 3 levels -> 2 independent contrasts
     # the cross-covariance of every embedding dimension with every level indicator vanishes
     cross = (E - E.mean(axis=0)).T @ (S - S.mean(axis=0)) / n
     assert np.abs(cross).max() < 1e-10
@@ -90,8 +91,9 @@ def test_fair_space_distance_is_mahalanobis(rng):
     E = fs.apply(X)
     M = np.diag(fs.scale) @ fs.transform @ fs.transform.T @ np.diag(fs.scale)
     dx = X[:50] - X[50:100]
-    np.testing.assert_allclose(np.linalg.norm(E[:50] - E[50:100], axis=1),
-                               np.sqrt(np.einsum("ij,jk,ik->i", dx, M, dx)), rtol=1e-9)
+    np.testing.assert_allclose(
+        np.linalg.norm(E[:50] - E[50:100], axis=1), np.sqrt(np.einsum("ij,jk,ik->i", dx, M, dx)), rtol=1e-9
+    )
 
 
 def test_constant_feature_is_ignored(rng):
@@ -106,7 +108,9 @@ def test_linear_probe_auc_detects_leak(rng):
     t = rng.integers(0, 2, 2000)
     E = np.column_stack([t + rng.normal(scale=0.5, size=2000), rng.normal(size=2000)])
     assert fairspace.linear_probe_auc(E, t, np.random.default_rng(0), metrics.roc_auc) > 0.9
-    assert abs(fairspace.linear_probe_auc(E[:, 1:], t, np.random.default_rng(0), metrics.roc_auc) - 0.5) < 0.06
+    assert (
+        abs(fairspace.linear_probe_auc(E[:, 1:], t, np.random.default_rng(0), metrics.roc_auc) - 0.5) < 0.06
+    )
 
 
 def test_balanced_accuracy_brier_log_loss_match_sklearn(rng):
@@ -156,11 +160,13 @@ def test_random_graph_control_matches_an_explicit_solve(rng):
     x = rng.random(300)
     assert np.allclose(R.adjacency_times(x), M @ x) and abs(M - M.T).max() == 0
     assert np.allclose(np.asarray(M.sum(axis=1)).ravel(), R.degree)
-    W = sp.csr_matrix(M)       # a "real" graph with the same shape: 6 entries of 0.5 per row
+    W = sp.csr_matrix(M)  # a "real" graph with the same shape: 6 entries of 0.5 per row
     y = rng.random(300)
     expect = spsolve((sp.identity(300) + 2.0 * cs_laplacian(M)).tocsc(), y)
     # asked for the spread of the lam = 2 solution, the control starts at lam = 2 and stops there
-    got, rec = random_graph_control(W, y, 2.0, "unnormalised", 1e-12, np.random.default_rng(1), target_sd=expect.std())
+    got, rec = random_graph_control(
+        W, y, 2.0, "unnormalised", 1e-12, np.random.default_rng(1), target_sd=expect.std()
+    )
     assert rec["strength"] == 2.0 and rec["matched"]
     assert np.allclose(got, expect, atol=1e-9)
 
@@ -176,20 +182,30 @@ def test_random_graph_control_is_matched_in_spread(rng):
     M = RandomRegularGraph(400, 4, 0.7, np.random.default_rng(2)).matrix()
     y = rng.random(400)
     for target in (0.5 * y.std(), 0.1 * y.std(), 0.9 * y.std()):
-        got, rec = random_graph_control(sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2),
-                                        target_sd=target)
+        got, rec = random_graph_control(
+            sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2), target_sd=target
+        )
         assert rec["matched"] and abs(got.std() - target) <= 0.01 * target
         expect = spsolve((sp.identity(400) + rec["strength"] * cs_laplacian(M)).tocsc(), y)
         assert np.allclose(got, expect, atol=1e-7)
     # the same through the search on a sample of 150 rows, refined on the full graph
-    got, rec = random_graph_control(sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2),
-                                    target_sd=0.5 * y.std(), search_rows=150)
+    got, rec = random_graph_control(
+        sp.csr_matrix(M),
+        y,
+        1.0,
+        "unnormalised",
+        1e-10,
+        np.random.default_rng(2),
+        target_sd=0.5 * y.std(),
+        search_rows=150,
+    )
     assert rec["matched"] and rec["sample_solves"] > 0 and abs(got.std() - 0.5 * y.std()) <= 0.005 * y.std()
     expect = spsolve((sp.identity(400) + rec["strength"] * cs_laplacian(M)).tocsc(), y)
     assert np.allclose(got, expect, atol=1e-7)
     # a spread the smoothing cannot reach (above the raw scores') is reported as not matched
-    _, rec = random_graph_control(sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2),
-                                  target_sd=2 * y.std())
+    _, rec = random_graph_control(
+        sp.csr_matrix(M), y, 1.0, "unnormalised", 1e-10, np.random.default_rng(2), target_sd=2 * y.std()
+    )
     assert not rec["matched"]
 
 
@@ -206,7 +222,7 @@ def test_self_influence_equals_the_dense_inverse_diagonal(rng):
             g, step, capped = influence.self_influence(A, c, np.arange(150), tol=1e-10)
             assert not capped.any() and np.allclose(g, expect, rtol=1e-7, atol=1e-9), (kind, lam)
             g_cap, _, capped = influence.self_influence(A, c, np.arange(150), tol=1e-10, max_ball=20)
-            assert capped.any() and np.all(g_cap <= expect + 1e-12)       # the M-matrix bound
+            assert capped.any() and np.all(g_cap <= expect + 1e-12)  # the M-matrix bound
 
 
 def test_counterfactual_after_is_the_exact_single_row_rerun(rng):

@@ -4,6 +4,7 @@ concurrent runs, and the nightly warm start. All through the command line in sub
 The reference is the same job run once without interruption; "bit-identical" compares every
 published column of every row (sorted by id) with numpy.array_equal.
 """
+
 import fcntl
 import json
 import os
@@ -59,11 +60,15 @@ def source(tmp_path_factory):
     res = cli("run", str(_config(base)))
     assert res.returncode == 0, res.stderr
     solve = json.loads(next((base / "runs").iterdir()).joinpath("solve", "solve.json").read_text())
-    assert solve["sweeps"] >= 7          # enough sweeps for the mid-solve kill points below
+    assert solve["sweeps"] >= 7  # enough sweeps for the mid-solve kill points below
     ref = _published(base)
-    ids = np.concatenate([pq.read_table(base / "in" / f"part-{i}.parquet").column("applicant_id").to_numpy()
-                          for i in range(FILES)])
-    assert np.array_equal(np.sort(ids), ref["applicant_id"])     # every input row once, no other
+    ids = np.concatenate(
+        [
+            pq.read_table(base / "in" / f"part-{i}.parquet").column("applicant_id").to_numpy()
+            for i in range(FILES)
+        ]
+    )
+    assert np.array_equal(np.sort(ids), ref["applicant_id"])  # every input row once, no other
     return base, ref
 
 
@@ -75,10 +80,26 @@ def _copy_input(source, tmp_path):
 # 20 kill points: each stage's start and end, chunks inside embed, sweeps, the checkpoint write and
 # every step of publishing (see bigsmooth.faults)
 KILL_POINTS = [
-    "stage:scan:start", "stage:embed:start", "embed:chunk:2", "embed:chunk:5", "stage:embed:done",
-    "stage:graph:start", "stage:graph:done", "stage:order:done", "stage:solve:start", "solve:sweep:1",
-    "solve:sweep:4", "solve:sweep:7", "checkpoint:write", "stage:audit:start", "stage:audit:done",
-    "publish:file:1", "publish:file:2", "publish:before-rename", "publish:before-pointer", "publish:before-link",
+    "stage:scan:start",
+    "stage:embed:start",
+    "embed:chunk:2",
+    "embed:chunk:5",
+    "stage:embed:done",
+    "stage:graph:start",
+    "stage:graph:done",
+    "stage:order:done",
+    "stage:solve:start",
+    "solve:sweep:1",
+    "solve:sweep:4",
+    "solve:sweep:7",
+    "checkpoint:write",
+    "stage:audit:start",
+    "stage:audit:done",
+    "publish:file:1",
+    "publish:file:2",
+    "publish:before-rename",
+    "publish:before-pointer",
+    "publish:before-link",
 ]
 
 
@@ -87,12 +108,12 @@ def test_sigkill_at_a_point_then_resume_is_bit_identical(source, tmp_path, point
     cfg = _copy_input(source, tmp_path)
     killed = cli("run", str(cfg), env={"BIGSMOOTH_FAULT": point})
     assert killed.returncode == -signal.SIGKILL, killed.stderr[-2000:]
-    assert not (tmp_path / "out" / "current").exists()     # nothing half-published
+    assert not (tmp_path / "out" / "current").exists()  # nothing half-published
     resumed = cli("run", str(cfg))
     assert resumed.returncode == 0, resumed.stderr[-2000:]
     assert "resuming run" in resumed.stderr
     if point.startswith("solve:sweep:"):
-        done = int(point.rsplit(":", 1)[1]) - 1          # the checkpoint of the sweep before the kill
+        done = int(point.rsplit(":", 1)[1]) - 1  # the checkpoint of the sweep before the kill
         if done:
             assert f"resuming the solver from the checkpoint after sweep {done}" in resumed.stderr
     assert _same(_published(tmp_path), source[1])
@@ -109,7 +130,7 @@ def _wait_for_stage(run_root, stage, proc, timeout=120):
                 if json.loads(m.read_text())["stages"][stage]["state"] == "running":
                     return
             except (ValueError, OSError):
-                pass                     # mid-replace: read again
+                pass  # mid-replace: read again
         time.sleep(0.005)
 
 
@@ -118,11 +139,15 @@ def test_sigkill_from_outside_then_resume_is_bit_identical(source, tmp_path, sta
     # a real SIGKILL from another process, as soon as it sees the stage running (wherever the job
     # is inside it by then: not a point the job chooses)
     cfg = _copy_input(source, tmp_path)
-    proc = subprocess.Popen([sys.executable, "-m", "bigsmooth", "run", str(cfg)], env={**os.environ, "PYTHONPATH": ROOT},
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "bigsmooth", "run", str(cfg)],
+        env={**os.environ, "PYTHONPATH": ROOT},
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     _wait_for_stage(tmp_path / "runs", stage, proc)
     proc.send_signal(signal.SIGKILL)
-    assert proc.wait() == -signal.SIGKILL        # it was still running when killed
+    assert proc.wait() == -signal.SIGKILL  # it was still running when killed
     resumed = cli("run", str(cfg))
     assert resumed.returncode == 0, resumed.stderr[-2000:]
     assert _same(_published(tmp_path), source[1])
@@ -145,7 +170,7 @@ def test_failed_checkpoint_write_keeps_the_previous_checkpoint(source, tmp_path)
     res = cli("run", str(cfg), env={"BIGSMOOTH_FAULT": "checkpoint:write=oserror"})
     assert res.returncode == EXIT_CANTCREAT, res.stderr[-2000:]
     assert "No space left on device" in res.stderr and "run again to resume" in res.stderr
-    assert ck.read_bytes() == before                     # the sweep-3 checkpoint, untouched
+    assert ck.read_bytes() == before  # the sweep-3 checkpoint, untouched
     assert not [p for p in os.listdir(ck.parent) if p.endswith(".tmp")]
     assert cli("run", str(cfg)).returncode == 0
     assert _same(_published(tmp_path), source[1])
@@ -161,10 +186,12 @@ def test_failed_output_write_keeps_last_nights_output(source, tmp_path):
     assert res.returncode == EXIT_CANTCREAT and "cannot write the output" in res.stderr
     assert os.readlink(tmp_path / "out" / "current") == night1
     assert json.loads((tmp_path / "out" / "CURRENT").read_text())["version"] == night1
-    assert _same(_published(tmp_path), source[1])        # last night's output still reads whole
+    assert _same(_published(tmp_path), source[1])  # last night's output still reads whole
     assert not [p for p in os.listdir(tmp_path / "out") if p.startswith(".staging-")]
     # killed just before the pointer moves: readers still see night 1
-    assert cli("run", str(cfg), env={"BIGSMOOTH_FAULT": "publish:before-pointer"}).returncode == -signal.SIGKILL
+    assert (
+        cli("run", str(cfg), env={"BIGSMOOTH_FAULT": "publish:before-pointer"}).returncode == -signal.SIGKILL
+    )
     assert os.readlink(tmp_path / "out" / "current") == night1
     assert cli("run", str(cfg)).returncode == 0
     assert os.readlink(tmp_path / "out" / "current") != night1
@@ -177,10 +204,12 @@ def test_changed_input_starts_a_fresh_run_and_names_the_files(source, tmp_path):
     t = pq.read_table(tmp_path / "in" / "part-1.parquet")
     scores = t.column("sustain_score").to_numpy().copy()
     scores[:5] = 0.5
-    pq.write_table(t.set_column(t.column_names.index("sustain_score"), "sustain_score", pa.array(scores)),
-                   tmp_path / "in" / "part-1.parquet")
-    refuse = cfg.read_text() + '\n'
-    cfg.write_text(refuse.replace('seed = 0', 'seed = 0\non_input_change = "refuse"'))
+    pq.write_table(
+        t.set_column(t.column_names.index("sustain_score"), "sustain_score", pa.array(scores)),
+        tmp_path / "in" / "part-1.parquet",
+    )
+    refuse = cfg.read_text() + "\n"
+    cfg.write_text(refuse.replace("seed = 0", 'seed = 0\non_input_change = "refuse"'))
     res = cli("run", str(cfg))
     assert res.returncode == EXIT_DATA and "part-1.parquet" in res.stderr and "1 files differ" in res.stderr
     cfg.write_text(refuse)
@@ -235,15 +264,23 @@ def test_warm_start_from_last_nights_output(source, tmp_path):
     results = {}
     for name, warm, out in (("warm", "true", "out"), ("cold", "false", "out-cold")):
         c = tmp_path / f"{name}.toml"
-        c.write_text(text.replace('path = "out"', f'path = "{out}"').replace(
-            "checkpoint_every = 1", f"checkpoint_every = 1\nwarm_start = {warm}"))
+        c.write_text(
+            text.replace('path = "out"', f'path = "{out}"').replace(
+                "checkpoint_every = 1", f"checkpoint_every = 1\nwarm_start = {warm}"
+            )
+        )
         res = cli("run", str(c))
         assert res.returncode == 0, res.stderr[-2000:]
         tab = read_output(tmp_path / out).sort_by("applicant_id")
-        run_dir = [p for p in (tmp_path / "runs").iterdir()
-                   if json.loads((p / "manifest.json").read_text())["config_path"] == str(c)][0]
-        results[name] = (tab.column("sustain_score_adjusted").to_numpy(),
-                         json.loads((run_dir / "solve" / "solve.json").read_text()))
+        run_dir = [
+            p
+            for p in (tmp_path / "runs").iterdir()
+            if json.loads((p / "manifest.json").read_text())["config_path"] == str(c)
+        ][0]
+        results[name] = (
+            tab.column("sustain_score_adjusted").to_numpy(),
+            json.loads((run_dir / "solve" / "solve.json").read_text()),
+        )
     (fw, sw), (fc, sc) = results["warm"], results["cold"]
     assert sw["warm_start"]["used"] and sw["warm_start"]["rows_new"] == 100
     assert sw["warm_start"]["rows_matched"] == FILES * ROWS_PER_FILE - 100

@@ -1,6 +1,7 @@
 """Stage-level reuse: a run whose settings differ from an earlier run's only in later stages takes
 the earlier run's outputs of the stages before (hard links), and publishes exactly what a run that
 computed everything itself publishes."""
+
 import hashlib
 import json
 import os
@@ -27,8 +28,12 @@ def _manifests(runs):
 
 
 def test_every_result_changing_setting_belongs_to_a_stage():
-    covered = {k for spec in base.SPECS for p in spec.settings for k in ([f"{s}.{k}" for s, k in base._keys(p)])}
-    wanted = {f"{s}.{k}" for s, rules in config_mod.RULES.items() for k, r in rules.items() if r.affects_result}
+    covered = {
+        k for spec in base.SPECS for p in spec.settings for k in ([f"{s}.{k}" for s, k in base._keys(p)])
+    }
+    wanted = {
+        f"{s}.{k}" for s, rules in config_mod.RULES.items() for k, r in rules.items() if r.affects_result
+    }
     assert wanted <= covered, wanted - covered
 
 
@@ -41,10 +46,10 @@ def test_identities_follow_the_chain_of_stages(tmp_path):
     assert [s for s in a if a[s] == b[s]] == ["scan", "embed", "graph", "order"]
     k = json.loads(json.dumps(cfg))
     k["graph"]["neighbours"] = 5
-    assert all(base.identities(k, "h")[s] != a[s] for s in a)          # scan checks k against the rows
+    assert all(base.identities(k, "h")[s] != a[s] for s in a)  # scan checks k against the rows
     assert all(base.identities(cfg, "other input")[s] != a[s] for s in a)
     note = json.loads(json.dumps(cfg))
-    note["audit"]["report_note"] = "x"                                 # not a result-changing setting
+    note["audit"]["report_note"] = "x"  # not a result-changing setting
     assert base.identities(note, "h") == a
 
 
@@ -62,11 +67,18 @@ def test_a_change_of_lam_reuses_scan_to_order_and_publishes_the_same_scores(tmp_
     (second,) = [p for p in os.listdir(runs) if p != first]
     st = _manifests(runs)[second]["stages"]
     assert {s for s in st if st[s].get("reused_from") == first} == {"scan", "embed", "graph", "order"}
-    assert _digest(runs / first) == before                              # the earlier run is untouched
-    assert os.stat(runs / second / "graph" / "indptr.npy").st_ino == os.stat(runs / first / "graph" / "indptr.npy").st_ino
+    assert _digest(runs / first) == before  # the earlier run is untouched
+    assert (
+        os.stat(runs / second / "graph" / "indptr.npy").st_ino
+        == os.stat(runs / first / "graph" / "indptr.npy").st_ino
+    )
     reused = read_output(tmp_path / "out").sort_by("applicant_id")
     # the same lam = 2 run, computed from nothing in another run folder and output folder
-    text = cfg.read_text().replace('dir = "runs"', 'dir = "runs-alone"').replace('path = "out"', 'path = "out-alone"')
+    text = (
+        cfg.read_text()
+        .replace('dir = "runs"', 'dir = "runs-alone"')
+        .replace('path = "out"', 'path = "out-alone"')
+    )
     cfg.write_text(text)
     assert cli("run", str(cfg)).returncode == 0
     alone = read_output(tmp_path / "out-alone").sort_by("applicant_id")
@@ -95,4 +107,7 @@ def test_tune_then_run_with_the_recommended_lam_does_not_rebuild_the_graph(tmp_p
     cfg.write_text(cfg.read_text().replace("lam = 1.0", f"lam = {rec}") + "\n[gates]\nmax_auc_drop = 1.0\n")
     res = cli("run", str(cfg))
     assert res.returncode == 0, res.stderr[-2000:]
-    assert "stage graph: reusing the outputs of run " + tuned in res.stderr and "stage graph done" not in res.stderr
+    assert (
+        "stage graph: reusing the outputs of run " + tuned in res.stderr
+        and "stage graph done" not in res.stderr
+    )

@@ -1,4 +1,5 @@
 """The sweep-preconditioned CG solver: exactness against scipy, determinism across workers, resume."""
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -11,7 +12,7 @@ from conftest import random_graph
 
 
 def reference(W, Y, lam, kind):
-    L = csgraph_laplacian(W)                                         # scipy.sparse.csgraph.laplacian
+    L = csgraph_laplacian(W)  # scipy.sparse.csgraph.laplacian
     d = np.asarray(W.sum(axis=1)).ravel()
     c = np.ones(W.shape[0]) if kind == "unnormalised" else np.where(d > 0, d, 1.0)
     return spla.spsolve((sp.diags(c) + lam * L).tocsc(), c[:, None] * Y).reshape(Y.shape)  # spsolve
@@ -50,7 +51,13 @@ def test_singleton_groups_are_jacobi_pcg(rng):
     _, Y, A, b = _system(rng, cols=1)
     ours = sweepcg.sweep_cg(sweepcg.prepare(A, np.arange(501)), b, tol=1e-8, max_sweeps=2000)
     count = [0]
-    spla.cg(A, b[:, 0], rtol=1e-8, M=sp.diags(1 / A.diagonal()), callback=lambda x: count.__setitem__(0, count[0] + 1))
+    spla.cg(
+        A,
+        b[:, 0],
+        rtol=1e-8,
+        M=sp.diags(1 / A.diagonal()),
+        callback=lambda x: count.__setitem__(0, count[0] + 1),
+    )
     assert abs(ours.sweeps - count[0]) <= 1
 
 
@@ -88,11 +95,19 @@ def test_bit_identical_for_one_and_two_workers(rng, tmp_path, backend):
     serial = sweepcg.sweep_cg(system, b, x0=Y, tol=1e-10)
 
     def mm(name, shape):
-        return np.lib.format.open_memmap(str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape)
+        return np.lib.format.open_memmap(
+            str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape
+        )
 
     shared = _mapped(system, tmp_path / "sys")
-    two = sweepcg.sweep_cg(shared, b, x0=Y, tol=1e-10, executor=parallel.make_executor(2, backend),
-                           work=sweepcg.Work.allocate(2000, 2, mm))
+    two = sweepcg.sweep_cg(
+        shared,
+        b,
+        x0=Y,
+        tol=1e-10,
+        executor=parallel.make_executor(2, backend),
+        work=sweepcg.Work.allocate(2000, 2, mm),
+    )
     assert two.sweeps == serial.sweeps
     assert np.array_equal(two.x, serial.x)
 
@@ -113,8 +128,13 @@ def test_process_workers_follow_files_replaced_under_the_same_name(rng, tmp_path
 
                 shutil.rmtree(tmp_path / "sys")
             shared = _mapped(system, tmp_path / "sys")
-            work = sweepcg.Work.allocate(n, 1, lambda name, shape: np.lib.format.open_memmap(
-                str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape))
+            work = sweepcg.Work.allocate(
+                n,
+                1,
+                lambda name, shape: np.lib.format.open_memmap(
+                    str(tmp_path / f"{name}.npy"), mode="w+", dtype=np.float64, shape=shape
+                ),
+            )
             two = sweepcg.sweep_cg(shared, c[:, None] * Y, tol=1e-10, executor=pool, work=work)
             serial = sweepcg.sweep_cg(system, c[:, None] * Y, tol=1e-10)
             assert np.array_equal(two.x, serial.x)
@@ -135,6 +155,7 @@ def test_process_pool_deals_groups_by_size():
                 def map(_, fn, fns, batches):
                     self.sent = [[args[0] for args in batch] for batch in batches]
                     return [[a[0] * 10 for a in batch] for batch in batches]
+
             self._ex = Ex()
 
     pool = Fake()
@@ -151,9 +172,15 @@ def test_resume_from_state_is_bit_identical(rng):
 
     def stop_at_5(state, work):
         if state["sweep"] == 5:
-            saved.update(state={k: (v.copy() if isinstance(v, np.ndarray) else (list(v) if isinstance(v, list) else v))
-                                for k, v in state.items()},
-                         x=work.x.copy(), r=work.r.copy(), p=work.p.copy())
+            saved.update(
+                state={
+                    k: (v.copy() if isinstance(v, np.ndarray) else (list(v) if isinstance(v, list) else v))
+                    for k, v in state.items()
+                },
+                x=work.x.copy(),
+                r=work.r.copy(),
+                p=work.p.copy(),
+            )
             return False
 
     sweepcg.sweep_cg(system, b, x0=Y, tol=1e-11, on_sweep=stop_at_5)
@@ -177,7 +204,7 @@ def test_warm_start_converges_to_the_same_answer_in_fewer_sweeps(rng):
 def test_reports_max_sweeps_with_the_true_residual(rng):
     _, Y, A, b = _system(rng, lam=100.0)
     res = sweepcg.sweep_cg(sweepcg.prepare(A, [0, 500]), b, tol=1e-14, max_sweeps=2)
-    assert res.status == sweepcg.STATUS_MAX_ITER and res.sweeps == 2
+    assert res.status == sweepcg.STATUS_MAX_SWEEPS and res.sweeps == 2
     true = np.linalg.norm(b - A @ res.x) / np.linalg.norm(b)
     assert res.final_residual == pytest.approx(true, rel=1e-9)
 
@@ -195,8 +222,11 @@ def test_split_reassembles_the_scaled_matrix(rng):
     S = sp.diags(system.s)
     np.testing.assert_allclose((sp.identity(500) + L + U + O).toarray(), (S @ A @ S).toarray(), atol=1e-15)
     grp = np.searchsorted([0, 100, 420, 500], np.arange(500), side="right") - 1
-    for M, ok in ((L, lambda i, j: grp[i] == grp[j] and j < i), (U, lambda i, j: grp[i] == grp[j] and j > i),
-                  (O, lambda i, j: grp[i] != grp[j])):
+    for M, ok in (
+        (L, lambda i, j: grp[i] == grp[j] and j < i),
+        (U, lambda i, j: grp[i] == grp[j] and j > i),
+        (O, lambda i, j: grp[i] != grp[j]),
+    ):
         Mc = M.tocoo()
         assert all(ok(i, j) for i, j in zip(Mc.row, Mc.col))
     x = rng.random((500, 2))
@@ -210,7 +240,7 @@ def test_direct_split_from_graph_equals_assembled_split(rng, kind):
     perm = rng.permutation(400)
     bounds = [0, 90, 250, 400]
     A, c = laplacian.system(W, 2.5, kind)
-    ref = sweepcg.prepare(A[perm][:, perm], bounds)       # assemble with scipy, permute, split
+    ref = sweepcg.prepare(A[perm][:, perm], bounds)  # assemble with scipy, permute, split
     got = sweepcg.prepare_from_graph(W, 2.5, c, perm, bounds)
     np.testing.assert_allclose(got.s, ref.s, rtol=1e-15)
     for a, b in zip(got.matrices(), ref.matrices()):
@@ -312,12 +342,13 @@ def test_process_work_vectors_go_to_shared_memory_and_are_removed(tmp_path, monk
     shm = tmp_path / "shm"
     shm.mkdir()
     monkeypatch.setattr(parallel, "SHM", str(shm))
-    (shm / "bigsmooth-k").mkdir()                           # left by a killed run
+    (shm / "bigsmooth-k").mkdir()  # left by a killed run
     (shm / "bigsmooth-k" / "x.npy").write_bytes(b"stale")
     with parallel.work_files(100, 2, "k", str(tmp_path / "fallback")) as work:
         assert work.x.shape == (100, 2) and isinstance(work.x, np.memmap)
         assert work.x.filename.startswith(str(shm / "bigsmooth-k")) and not work.x.any()
-    assert not (shm / "bigsmooth-k").exists()               # removed afterwards
+    assert not (shm / "bigsmooth-k").exists()  # removed afterwards
+
     # no room in shared memory (six vectors, twice over): the fallback folder in the run directory
     class Full:
         f_bavail, f_frsize = 1, 4096

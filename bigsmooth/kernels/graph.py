@@ -2,6 +2,7 @@
 
 Every function takes arrays and returns arrays; the graph stage owns the files.
 """
+
 import numpy as np
 import scipy.sparse as sp
 
@@ -72,15 +73,24 @@ def approx_knn(X, k, seed, n_trees=0, search=None, threads=1):
 
     search = max(k, search or k)
     if threads > numba.config.NUMBA_NUM_THREADS:
-        raise RuntimeError(f"graph.index_threads = {threads} but numba allows {numba.config.NUMBA_NUM_THREADS} "
-                           "threads in this process (set NUMBA_NUM_THREADS before start)")
+        raise RuntimeError(
+            f"graph.index_threads = {threads} but numba allows {numba.config.NUMBA_NUM_THREADS} "
+            "threads in this process (set NUMBA_NUM_THREADS before start)"
+        )
     X = np.ascontiguousarray(X, dtype=np.float32)
     kw = {"n_trees": n_trees} if n_trees else {}
     before = numba.get_num_threads()
     try:
-        index = NNDescent(X, n_neighbors=min(search + 1, X.shape[0]), metric="euclidean",
-                          random_state=np.random.RandomState(seed), low_memory=True, compressed=False,
-                          n_jobs=threads, **kw)
+        index = NNDescent(
+            X,
+            n_neighbors=min(search + 1, X.shape[0]),
+            metric="euclidean",
+            random_state=np.random.RandomState(seed),
+            low_memory=True,
+            compressed=False,
+            n_jobs=threads,
+            **kw,
+        )
         ind, dist = index.neighbor_graph
     finally:
         numba.set_num_threads(before)

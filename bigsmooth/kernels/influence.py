@@ -13,6 +13,7 @@ M-matrices B <= A entrywise implies B^-1 >= A^-1). So the estimates increase wit
 exact value once the ball holds the row's whole connected component; the ball stops growing when a
 further hop adds less than ``tol`` or when it would exceed ``max_ball`` rows.
 """
+
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
@@ -20,8 +21,11 @@ import scipy.sparse.linalg as spla
 
 def _grow(indptr, indices, members, frontier, seen):
     """Rows one hop beyond ``frontier`` that are not in ``seen`` (sorted, unique)."""
-    nxt = np.concatenate([indices[indptr[r]:indptr[r + 1]] for r in frontier]) if len(frontier) else \
-        np.empty(0, np.int64)
+    nxt = (
+        np.concatenate([indices[indptr[r] : indptr[r + 1]] for r in frontier])
+        if len(frontier)
+        else np.empty(0, np.int64)
+    )
     nxt = np.unique(nxt)
     return nxt[~seen[nxt]]
 

@@ -9,6 +9,7 @@ For a symmetric non-negative weight matrix W with degrees d = W 1:
 A row with no edges (d_i = 0) would make the random-walk system singular; such a row gets
 c_i = 1 so that it keeps its score (f_i = y_i).
 """
+
 import numpy as np
 import scipy.sparse as sp
 

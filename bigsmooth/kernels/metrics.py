@@ -4,6 +4,7 @@ Definitions follow the usual handbook forms: AUC is the Mann-Whitney probability
 positive outscores a random negative (ties count one half); the four-fifths rule compares each
 group's selection rate with the highest group's (29 CFR 1607.4(D)).
 """
+
 import numpy as np
 from scipy.stats import rankdata
 
@@ -59,8 +60,15 @@ def group_table(codes, levels, scores, selected, min_rows):
         if cnt < min_rows:
             rows.append({"group": level, "count": cnt, "suppressed": True})
             continue
-        rows.append({"group": level, "count": cnt, "suppressed": False,
-                     "mean_score": float(scores[m].mean()), "selection_rate": float(selected[m].mean())})
+        rows.append(
+            {
+                "group": level,
+                "count": cnt,
+                "suppressed": False,
+                "mean_score": float(scores[m].mean()),
+                "selection_rate": float(selected[m].mean()),
+            }
+        )
     shown = [r for r in rows if not r["suppressed"]]
     top = max((r["selection_rate"] for r in shown), default=0.0)
     for r in shown:
@@ -111,7 +119,9 @@ def consistency(decisions, neighbours, rows=None):
 def lipschitz_violations(f, a, b, dist, constant):
     """Share of pairs (a[q], b[q]) with |f_a - f_b| > constant * dist[q]."""
     f = np.asarray(f, dtype=np.float64)
-    return float(np.mean(np.abs(f[a] - f[b]) > constant * np.asarray(dist, dtype=np.float64))) if len(a) else 0.0
+    return (
+        float(np.mean(np.abs(f[a] - f[b]) > constant * np.asarray(dist, dtype=np.float64))) if len(a) else 0.0
+    )
 
 
 def same_group_share(codes, neighbours, rows=None):
@@ -122,7 +132,7 @@ def same_group_share(codes, neighbours, rows=None):
     own = codes if rows is None else codes[rows]
     same = float(np.mean(codes[neighbours] == own[:, None]))
     share = np.bincount(codes[codes >= 0]) / max(1, int((codes >= 0).sum()))
-    return same, float(np.sum(share ** 2))
+    return same, float(np.sum(share**2))
 
 
 def neighbour_vote_auc(codes, neighbours, rows, level):
@@ -145,15 +155,22 @@ def pair_differences(fi, fj, dist, constant, zero_tol=1e-9):
     diff = np.abs(np.asarray(fi, dtype=np.float64) - np.asarray(fj, dtype=np.float64))
     d = np.asarray(dist, dtype=np.float64)
     z = d == 0
-    return {"pairs": int(d.size), "positive": int(np.sum(~z)), "violations": int(np.sum(diff[~z] > constant * d[~z])),
-            "zero": int(np.sum(z)), "zero_differing": int(np.sum(diff[z] > zero_tol)),
-            "zero_abs_sum": float(np.sum(diff[z]))}
+    return {
+        "pairs": int(d.size),
+        "positive": int(np.sum(~z)),
+        "violations": int(np.sum(diff[~z] > constant * d[~z])),
+        "zero": int(np.sum(z)),
+        "zero_differing": int(np.sum(diff[z] > zero_tol)),
+        "zero_abs_sum": float(np.sum(diff[z])),
+    }
 
 
 def lipschitz_summary(counts):
     """Rates from summed :func:`pair_differences` counts."""
     zero = counts["zero"]
-    return {"rate": counts["violations"] / counts["positive"] if counts["positive"] else 0.0,
-            "zero_distance_share": zero / counts["pairs"] if counts["pairs"] else 0.0,
-            "zero_distance_differing": counts["zero_differing"] / zero if zero else 0.0,
-            "zero_distance_mean_abs_difference": counts["zero_abs_sum"] / zero if zero else 0.0}
+    return {
+        "rate": counts["violations"] / counts["positive"] if counts["positive"] else 0.0,
+        "zero_distance_share": zero / counts["pairs"] if counts["pairs"] else 0.0,
+        "zero_distance_differing": counts["zero_differing"] / zero if zero else 0.0,
+        "zero_distance_mean_abs_difference": counts["zero_abs_sum"] / zero if zero else 0.0,
+    }

@@ -10,15 +10,18 @@
 Blocks are ranges of rows of A as given: order the rows for locality (so that most edge weight falls
 inside blocks) before calling.
 """
+
 from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-STATUS_CONVERGED = "converged"
-STATUS_MAX_SWEEPS = "max_sweeps"
-STATUS_STOPPED = "stopped"
+# how a solve ended, for every solver (direct, blocks, sweep-cg); recorded in solve.json and the report
+STATUS_CONVERGED = "converged"  # the true relative residual reached tol
+STATUS_MAX_SWEEPS = "max_sweeps"  # solve.max_sweeps reached first (warned about)
+STATUS_STOPPED = "stopped"  # the caller stopped it (on_sweep returned False)
+STATUSES = (STATUS_CONVERGED, STATUS_MAX_SWEEPS, STATUS_STOPPED)
 
 
 @dataclass
@@ -96,9 +99,20 @@ class _Block:
         self.lu = spla.splu(rows[:, start:stop].tocsc()) if exact else None
 
 
-def block_coordinate_descent(A, b, x0=None, block_rows=4096, block_solve="exact", inner_sweeps=2,
-                             tol=1e-6, max_sweeps=500, start_sweep=0, residuals=None, on_sweep=None,
-                             gs_kernel=None):
+def block_coordinate_descent(
+    A,
+    b,
+    x0=None,
+    block_rows=4096,
+    block_solve="exact",
+    inner_sweeps=2,
+    tol=1e-6,
+    max_sweeps=500,
+    start_sweep=0,
+    residuals=None,
+    on_sweep=None,
+    gs_kernel=None,
+):
     """Blocked coordinate descent (block Gauss-Seidel) for SPD A.
 
     Parameters

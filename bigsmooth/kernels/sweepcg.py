@@ -32,17 +32,18 @@ The stopping rule uses the true relative residual ||b - A x|| / ||b||, checked w
 estimate ||r_k|| / ||r_0|| * (||b - A x0|| / ||b||) falls below the tolerance (for x0 = 0 that is
 ||r_k|| / ||E^-1 bs||); a failed check lowers the estimate's target.
 """
+
 from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
 
-STATUS_CONVERGED = "converged"
-STATUS_MAX_ITER = "max_sweeps"
-STATUS_STOPPED = "stopped"
+# one status vocabulary for every solver (declared in solver.py)
+from .solver import STATUS_CONVERGED, STATUS_MAX_SWEEPS, STATUS_STOPPED  # noqa: E402
 
 
 # ---- Python references of the compiled kernels in bigsmooth.kernels._fast (same signatures) ----
+
 
 def backward_sweep(Up, Ui, Ud, r, p, t, beta, omega, start, stop):
     for i in range(stop - 1, start - 1, -1):
@@ -85,8 +86,8 @@ def compiled_kernels():
 class Grouped:
     """The Jacobi-scaled system split by block groups. Triplets are (indptr, indices, data)."""
 
-    s: np.ndarray        # (n,) diag(A)^-1/2
-    bounds: np.ndarray   # (G + 1,) group boundaries
+    s: np.ndarray  # (n,) diag(A)^-1/2
+    bounds: np.ndarray  # (G + 1,) group boundaries
     L: tuple
     U: tuple
     O: tuple
@@ -166,9 +167,9 @@ class SplitGraph:
     It does not depend on lam, so the order stage builds it once and every solve scales it.
     """
 
-    degree: np.ndarray   # (n,) row sums of W in the new order
+    degree: np.ndarray  # (n,) row sums of W in the new order
     bounds: np.ndarray
-    L: tuple             # (indptr uint64, indices uint32, weights float64)
+    L: tuple  # (indptr uint64, indices uint32, weights float64)
     U: tuple
     O: tuple
 
@@ -213,8 +214,10 @@ def split_graph(W, perm, bounds, alloc=None):
     _fast.split_counts(W.indptr, W.indices, perm, pos, group, *ptrs)
     for p in ptrs:
         np.cumsum(p, out=p)
-    parts = [(p, alloc(f"{name}-indices", int(p[-1]), np.uint32), alloc(f"{name}-weight", int(p[-1]), np.float64))
-             for name, p in zip("LUO", ptrs)]
+    parts = [
+        (p, alloc(f"{name}-indices", int(p[-1]), np.uint32), alloc(f"{name}-weight", int(p[-1]), np.float64))
+        for name, p in zip("LUO", ptrs)
+    ]
     degree = alloc("degree", n, np.float64)
     _fast.split_fill(W.indptr, W.indices, W.data, perm, pos, group, *parts[0], *parts[1], *parts[2], degree)
     return SplitGraph(degree, bounds, *parts)
@@ -246,6 +249,7 @@ def prepare_from_graph(W, lam, c, perm, bounds, alloc=None):
 
 # ---- group tasks (module level so that process workers can import them) ----
 
+
 def _phase1(kern, U, r, p, t, beta, omega, start, stop):
     kern["backward"](U[0], U[1], U[2], r, p, t, beta, omega, start, stop)
 
@@ -276,8 +280,8 @@ def _map(executor, fn, calls, order=None, sizes=None):
 class Work:
     """The solver's O(n) vectors, each (n, c) float64; memmaps when workers are processes."""
 
-    x: np.ndarray   # scaled iterate xs
-    r: np.ndarray   # preconditioned residual
+    x: np.ndarray  # scaled iterate xs
+    r: np.ndarray  # preconditioned residual
     p: np.ndarray
     t: np.ndarray
     w: np.ndarray
@@ -294,8 +298,8 @@ class SweepCGResult:
     x: np.ndarray
     status: str
     sweeps: int
-    residuals: list = field(default_factory=list)   # preconditioned estimate after each iteration
-    checks: list = field(default_factory=list)      # (iteration, true relative residual)
+    residuals: list = field(default_factory=list)  # preconditioned estimate after each iteration
+    checks: list = field(default_factory=list)  # (iteration, true relative residual)
 
     @property
     def final_residual(self):
@@ -310,8 +314,20 @@ def scaled_start(x0, ax0, b):
     return x0 * a, ax0 * a
 
 
-def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernels=None, work=None,
-             state=None, on_sweep=None, omega=1.0, scale_start=False):
+def sweep_cg(
+    system,
+    b,
+    x0=None,
+    tol=1e-6,
+    max_sweeps=500,
+    executor=None,
+    kernels=None,
+    work=None,
+    state=None,
+    on_sweep=None,
+    omega=1.0,
+    scale_start=False,
+):
     """Solve A x = b (b of shape (n, c)) by sweep-preconditioned CG; see the module docstring.
 
     Parameters
@@ -365,7 +381,9 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
         """w = E^-1 v (one forward sweep with t = 0; p is scratch, ap and pap are by-products)."""
         work.t[:] = 0.0
         work.p[:] = v
-        sweep_map(_phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1) for g0, g1 in groups])
+        sweep_map(
+            _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1) for g0, g1 in groups]
+        )
         return work.w
 
     def true_residual():
@@ -388,21 +406,32 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
             res0 = float(np.linalg.norm(resid)) / nb
             work.r[:] = forward_solve(s[:, None] * resid)
             del resid
-        rho = np.sum(work.r ** 2, axis=0)
+        rho = np.sum(work.r**2, axis=0)
         # the preconditioned residual estimate is ||r_k|| / ||r_0|| times the true relative residual
         # at the start, i.e. ||r_k|| / nbhat (with x0 = 0, nbhat = ||E^-1 S b||)
         r0 = float(np.sqrt(rho.sum()))
         nbhat = r0 / res0 if res0 > 0 else 1.0
         work.p[:] = 0.0
-        state = {"sweep": 0, "rho": rho, "beta": np.zeros(c), "nbhat": nbhat,
-                 "residuals": [r0 / nbhat if res0 > 0 else 0.0], "checks": [], "target": tol}
+        state = {
+            "sweep": 0,
+            "rho": rho,
+            "beta": np.zeros(c),
+            "nbhat": nbhat,
+            "residuals": [r0 / nbhat if res0 > 0 else 0.0],
+            "checks": [],
+            "target": tol,
+        }
     else:
         nbhat = float(state["nbhat"])
-        state = {**state, "rho": np.asarray(state["rho"], dtype=np.float64),
-                 "beta": np.asarray(state["beta"], dtype=np.float64),
-                 "residuals": list(state["residuals"]), "checks": [tuple(ch) for ch in state["checks"]]}
+        state = {
+            **state,
+            "rho": np.asarray(state["rho"], dtype=np.float64),
+            "beta": np.asarray(state["beta"], dtype=np.float64),
+            "residuals": list(state["residuals"]),
+            "checks": [tuple(ch) for ch in state["checks"]],
+        }
 
-    status = STATUS_MAX_ITER
+    status = STATUS_MAX_SWEEPS
     if state["residuals"][-1] <= state["target"]:
         res = true_residual()
         state["checks"].append((state["sweep"], res))
@@ -411,12 +440,18 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
     while status != STATUS_CONVERGED and state["sweep"] < max_sweeps:
         beta = state["beta"]
         sweep_map(_phase1, [(kern, U, work.r, work.p, work.t, beta, omega, g0, g1) for g0, g1 in groups])
-        pap = np.sum(sweep_map(_phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1)
-                                         for g0, g1 in groups]), axis=0)
+        pap = np.sum(
+            sweep_map(
+                _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1) for g0, g1 in groups]
+            ),
+            axis=0,
+        )
         rho = state["rho"]
         alpha = np.divide(rho, pap, out=np.zeros(c), where=pap > 0)
-        rr = np.sum(sweep_map(_phase3, [(kern, work.x, work.r, work.t, work.ap, alpha, g0, g1)
-                                        for g0, g1 in groups]), axis=0)
+        rr = np.sum(
+            sweep_map(_phase3, [(kern, work.x, work.r, work.t, work.ap, alpha, g0, g1) for g0, g1 in groups]),
+            axis=0,
+        )
         state["beta"] = np.divide(rr, rho, out=np.zeros(c), where=rho > 0)
         state["rho"] = rr
         state["sweep"] += 1
@@ -432,7 +467,7 @@ def sweep_cg(system, b, x0=None, tol=1e-6, max_sweeps=500, executor=None, kernel
         if on_sweep is not None and on_sweep(state, work) is False and status != STATUS_CONVERGED:
             status = STATUS_STOPPED
             break
-    if status == STATUS_MAX_ITER and (not state["checks"] or state["checks"][-1][0] != state["sweep"]):
+    if status == STATUS_MAX_SWEEPS and (not state["checks"] or state["checks"][-1][0] != state["sweep"]):
         state["checks"].append((state["sweep"], true_residual()))
     x = s[:, None] * work.x
     return SweepCGResult(np.asarray(x), status, state["sweep"], state["residuals"], state["checks"])

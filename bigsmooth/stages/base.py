@@ -6,6 +6,7 @@ stage, scan, also takes the input's fingerprint), so two runs whose configs diff
 ``solve.lam`` have the same scan, embed, graph and order identities: the second run links the first
 run's outputs of those stages instead of computing them again (see :func:`bigsmooth.pipeline`).
 """
+
 import hashlib
 import json
 from dataclasses import dataclass
@@ -16,20 +17,31 @@ from ..config import RULES
 @dataclass(frozen=True)
 class StageSpec:
     name: str
-    settings: tuple        # "section.key", or "section.*" for every result-changing key of a section
-    shareable: bool        # outputs depend on nothing but the identity, so another run may reuse them
+    settings: tuple  # "section.key", or "section.*" for every result-changing key of a section
+    shareable: bool  # outputs depend on nothing but the identity, so another run may reuse them
 
 
 SPECS = (
     StageSpec("scan", ("input.*", "graph.neighbours"), True),
-    StageSpec("embed", ("embed.remove_sensitive", "embed.components", "embed.feature_weights", "embed.probe_rows",
-                        "run.seed"), True),
+    StageSpec(
+        "embed",
+        (
+            "embed.remove_sensitive",
+            "embed.components",
+            "embed.feature_weights",
+            "embed.probe_rows",
+            "run.seed",
+        ),
+        True,
+    ),
     StageSpec("graph", ("graph.*", "run.seed"), True),
     StageSpec("order", ("solve.groups", "run.seed"), True),
     # a warm start reads the output published at the time: not shareable then (see shareable())
     StageSpec("solve", ("solve.*",), True),
     # the audit's provenance names its own run; publishing writes this run's version
-    StageSpec("audit", ("audit.*", "gates.*", "embed.leakage_warn_auc", "embed.probe_rows", "run.seed"), False),
+    StageSpec(
+        "audit", ("audit.*", "gates.*", "embed.leakage_warn_auc", "embed.probe_rows", "run.seed"), False
+    ),
     StageSpec("publish", ("output.*",), False),
 )
 BY_NAME = {s.name: s for s in SPECS}
@@ -51,8 +63,11 @@ def identities(cfg, input_hash):
     """{stage name: identity hex} for a config and the input's fingerprint hash."""
     out, prev = {}, "input:" + input_hash
     for spec in SPECS:
-        canon = json.dumps({"stage": spec.name, "settings": settings_of(spec, cfg), "after": prev},
-                           sort_keys=True, separators=(",", ":"))
+        canon = json.dumps(
+            {"stage": spec.name, "settings": settings_of(spec, cfg), "after": prev},
+            sort_keys=True,
+            separators=(",", ":"),
+        )
         prev = out[spec.name] = hashlib.sha256(canon.encode()).hexdigest()[:32]
     return out
 

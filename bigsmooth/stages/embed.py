@@ -6,6 +6,7 @@ learned from the statistics. Pass 2 writes the embedding as a float32 memmap, on
 at its stable row index. Finally a linear probe on a sample measures how well the raw features and
 the fair space still predict each protected attribute (the leakage figure).
 """
+
 import logging
 import os
 
@@ -43,8 +44,18 @@ def _codes(batch, col, lv):
 def _features(batch, inp, levels):
     """Numeric features plus one-hot categoricals for a batch: ndarray (b, p)."""
     b = batch.num_rows
-    parts = [np.column_stack([batch.column(c).to_numpy(zero_copy_only=False).astype(np.float64)
-                              for c in inp["numeric_features"]])] if inp["numeric_features"] else []
+    parts = (
+        [
+            np.column_stack(
+                [
+                    batch.column(c).to_numpy(zero_copy_only=False).astype(np.float64)
+                    for c in inp["numeric_features"]
+                ]
+            )
+        ]
+        if inp["numeric_features"]
+        else []
+    )
     for c in inp["categorical_features"]:
         lv = [v for v, _ in levels[c]]
         oh = np.zeros((b, len(lv)))
@@ -60,7 +71,9 @@ def other_columns(inp):
 
 def _select_sql(inp):
     cols = [quote(c) for c in inp["scores"] + other_columns(inp) + inp["numeric_features"]]
-    cols += [f"CAST({quote(c)} AS VARCHAR) AS {quote(c)}" for c in inp["categorical_features"] + inp["protected"]]
+    cols += [
+        f"CAST({quote(c)} AS VARCHAR) AS {quote(c)}" for c in inp["categorical_features"] + inp["protected"]
+    ]
     if inp["label"]:
         cols.append(f"CAST({quote(inp['label'])} AS DOUBLE) AS {quote(inp['label'])}")
     return ", ".join(cols)
@@ -124,8 +137,9 @@ def run(rundir, cfg, fp):
         for j, c in enumerate(inp["protected"]):
             cc = _codes(batch, c, prot_levels[c])
             codes[rows, j] = cc
-            S_parts.append(sp.csr_matrix((np.ones(len(cc)), (np.arange(len(cc)), cc + off)),
-                                         shape=(len(cc), m)))
+            S_parts.append(
+                sp.csr_matrix((np.ones(len(cc)), (np.arange(len(cc)), cc + off)), shape=(len(cc), m))
+            )
             off += len(prot_levels[c])
         S = sum(S_parts[1:], S_parts[0]) if S_parts else sp.csr_matrix((len(rows), 0))
         if mom is None:
@@ -153,15 +167,18 @@ def run(rundir, cfg, fp):
     indicator = np.arange(p) >= len(inp["numeric_features"])
     fs = fairspace.fit_fair_space(mom, weights, ecfg["remove_sensitive"], ecfg["components"], indicator)
     if fs.constant.any():
-        log.warning("constant features (no information, ignored): %s",
-                    ", ".join(np.array(names)[fs.constant][:10]))
+        log.warning(
+            "constant features (no information, ignored): %s", ", ".join(np.array(names)[fs.constant][:10])
+        )
     dim = fs.transform.shape[1]
     if dim == 0:
-        raise DataError(f"the fair space has no dimensions left: of {p} encoded features, "
-                        f"{int(fs.constant.sum())} are constant over all {n} rows and the rest are explained by "
-                        "the protected attributes, so every row would look the same. Check that the feature "
-                        "columns carry values (all rows identical?) and that input.numeric_features / "
-                        "categorical_features name the right columns.")
+        raise DataError(
+            f"the fair space has no dimensions left: of {p} encoded features, "
+            f"{int(fs.constant.sum())} are constant over all {n} rows and the rest are explained by "
+            "the protected attributes, so every row would look the same. Check that the feature "
+            "columns carry values (all rows identical?) and that input.numeric_features / "
+            "categorical_features name the right columns."
+        )
     E = out.open(art.EMBED_EMBEDDING.path(rundir), (n, dim), np.float32)
 
     rng = streams.rng(cfg["run"]["seed"], "embed.probe_sample")
@@ -175,7 +192,7 @@ def run(rundir, cfg, fp):
             E[rows[u]] = fs.apply(X[u]).astype(np.float32)
         pos = np.searchsorted(sample, rows)
         hit = (pos < len(sample)) & (sample[np.minimum(pos, len(sample) - 1)] == rows)
-        raw_sample[pos[hit]] = (X[hit] - fs.mean) * fs.scale   # standardised, before the projection
+        raw_sample[pos[hit]] = (X[hit] - fs.mean) * fs.scale  # standardised, before the projection
         seen += len(rows)
         prog.update(len(rows))
         chunk_no += 1
@@ -191,18 +208,43 @@ def run(rundir, cfg, fp):
         per_level = {}
         for li, lv in enumerate(prot_levels[c]):
             t = (code_sample[:, j] == li).astype(float)
-            before = fairspace.linear_probe_auc(raw_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc)
-            after = fairspace.linear_probe_auc(fair_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc)
+            before = fairspace.linear_probe_auc(
+                raw_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc
+            )
+            after = fairspace.linear_probe_auc(
+                fair_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc
+            )
             per_level[lv] = {"features_auc": before, "fair_space_auc": after}
-        worst = max((v["fair_space_auc"] for v in per_level.values() if np.isfinite(v["fair_space_auc"])), default=float("nan"))
+        worst = max(
+            (v["fair_space_auc"] for v in per_level.values() if np.isfinite(v["fair_space_auc"])),
+            default=float("nan"),
+        )
         leakage[c] = {"levels": per_level, "max_fair_space_auc": worst}
         if np.isfinite(worst) and worst > ecfg["leakage_warn_auc"]:
-            log.warning("leakage: a linear probe on the fair space predicts %r with AUC %.3f (> %.3f); "
-                        "the neighbour graph may still group rows by it", c, worst, ecfg["leakage_warn_auc"])
+            log.warning(
+                "leakage: a linear probe on the fair space predicts %r with AUC %.3f (> %.3f); "
+                "the neighbour graph may still group rows by it",
+                c,
+                worst,
+                ecfg["leakage_warn_auc"],
+            )
     out.commit()
-    info = {"features": names, "dim": dim, "removed_dimensions": fs.removed,
-            "constant_features": list(np.array(names)[fs.constant]), "leakage": leakage,
-            "probe_rows": len(sample), "mean": fs.mean, "scale": fs.scale, "transform": fs.transform}
+    info = {
+        "features": names,
+        "dim": dim,
+        "removed_dimensions": fs.removed,
+        "constant_features": list(np.array(names)[fs.constant]),
+        "leakage": leakage,
+        "probe_rows": len(sample),
+        "mean": fs.mean,
+        "scale": fs.scale,
+        "transform": fs.transform,
+    }
     art.EMBED_INFO.save(rundir, info)
-    return {"rows": n, "features": p, "dim": dim, "removed_dimensions": fs.removed,
-            "max_leakage_auc": {c: v["max_fair_space_auc"] for c, v in leakage.items()}}
+    return {
+        "rows": n,
+        "features": p,
+        "dim": dim,
+        "removed_dimensions": fs.removed,
+        "max_leakage_auc": {c: v["max_fair_space_auc"] for c, v in leakage.items()},
+    }

@@ -15,6 +15,7 @@ the rows inside each group for locality, and split the graph for the solver.
 The groups are the units the solver's workers sweep; the 'blocks' solver cuts the same ordering
 into blocks of ``solve.block_rows``.
 """
+
 import contextlib
 import logging
 
@@ -39,9 +40,9 @@ def inside_share(W, labels):
     step = 1_000_000
     for s in range(0, W.shape[0], step):
         e = min(s + step, W.shape[0])
-        rows = np.repeat(np.arange(s, e), np.diff(indptr[s:e + 1]))
-        cols = indices[indptr[s]:indptr[e]]
-        d = data[indptr[s]:indptr[e]]
+        rows = np.repeat(np.arange(s, e), np.diff(indptr[s : e + 1]))
+        cols = indices[indptr[s] : indptr[e]]
+        d = data[indptr[s] : indptr[e]]
         total += d.sum()
         inside += d[labels[rows] == labels[cols]].sum()
     return float(inside / total) if total > 0 else 1.0
@@ -57,8 +58,8 @@ def cluster_labels(E, groups, seed, chunk=262_144):
     labels = np.empty(n, dtype=np.int64)
     cc = np.einsum("ij,ij->i", centres, centres)
     for s in range(0, n, chunk):
-        X = np.asarray(E[s:s + chunk], dtype=np.float64)
-        labels[s:s + chunk] = np.argmin(cc[None, :] - 2.0 * X @ centres.T, axis=1)
+        X = np.asarray(E[s : s + chunk], dtype=np.float64)
+        labels[s : s + chunk] = np.argmin(cc[None, :] - 2.0 * X @ centres.T, axis=1)
     # renumber by first appearance so that empty centres leave no empty groups
     _, first = np.unique(labels, return_index=True)
     rank = np.empty(groups, dtype=np.int64)
@@ -88,16 +89,24 @@ def local_order(W, labels):
 
 def run(rundir, cfg):
     E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
-    labels, groups = cluster_labels(E, cfg["solve"]["groups"], streams.seed_of(cfg["run"]["seed"], "order.kmeans"))
+    labels, groups = cluster_labels(
+        E, cfg["solve"]["groups"], streams.seed_of(cfg["run"]["seed"], "order.kmeans")
+    )
     bounds = np.concatenate([[0], np.cumsum(np.bincount(labels, minlength=groups))]).astype(np.int64)
     W = art.GRAPH_WEIGHTS.load(rundir, mmap=True)
     share = inside_share(W, labels)
     sizes = np.diff(bounds)
-    log.info("block groups: %d (rows per group %d-%d); %.1f%% of edge weight inside groups",
-             groups, sizes.min(), sizes.max(), 100 * share)
+    log.info(
+        "block groups: %d (rows per group %d-%d); %.1f%% of edge weight inside groups",
+        groups,
+        sizes.min(),
+        sizes.max(),
+        100 * share,
+    )
     perm = local_order(W, labels)
     art.ORDER_SPLIT.folder(rundir)
     with contextlib.ExitStack() as files:
+
         def alloc(name, size, dtype):
             return files.enter_context(atomic.open_memmap(art.ORDER_SPLIT.path(rundir, name), dtype, (size,)))
 
@@ -105,8 +114,14 @@ def run(rundir, cfg):
         between = int(split.O[0][-1])
     art.ORDER_PERM.save(rundir, perm)
     art.ORDER_GROUPS.save(rundir, bounds)
-    log.info("graph split for the solver: %d couplings inside groups, %d between groups",
-             W.nnz - between, between)
-    return {"method": "kmeans+rcm", "groups": int(groups), "largest_group": int(sizes.max()),
-            "smallest_group": int(sizes.min()), "weight_inside_groups": share,
-            "couplings_between_groups": between}
+    log.info(
+        "graph split for the solver: %d couplings inside groups, %d between groups", W.nnz - between, between
+    )
+    return {
+        "method": "kmeans+rcm",
+        "groups": int(groups),
+        "largest_group": int(sizes.max()),
+        "smallest_group": int(sizes.min()),
+        "weight_inside_groups": share,
+        "couplings_between_groups": between,
+    }

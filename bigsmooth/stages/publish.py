@@ -13,6 +13,7 @@ reuses its complete version folder and only moves the pointers; one killed befor
 folder. Leftover staging folders (the job holds the output lock, so they belong to dead runs) are
 removed first.
 """
+
 import contextlib
 import json
 import logging
@@ -49,9 +50,9 @@ def _write_file(src_path, dst_path, cols, inp, out, Y, F, lo, hi, offset, batch_
             b = batch.num_rows
             arrays = {c: batch.column(c) for c in read}
             for j, c in enumerate(inp["scores"]):
-                adj = np.clip(F[pos:pos + b, j], lo, hi)
+                adj = np.clip(F[pos : pos + b, j], lo, hi)
                 arrays[c + out["suffix"]] = pa.array(adj)
-                arrays[c + "_change"] = pa.array(adj - Y[pos:pos + b, j])
+                arrays[c + "_change"] = pa.array(adj - Y[pos : pos + b, j])
             t = pa.table(arrays)
             t = t.replace_schema_metadata(meta)
             if writer is None:
@@ -78,7 +79,9 @@ def _clear_leftovers(root):
 def _move_pointers(root, version, run_id, rows):
     faults.point("publish:before-pointer")
     pointer = {"version": version, "run_id": run_id, "rows": rows, "published": version[:16]}
-    atomic.write_bytes(os.path.join(root, art.OUTPUT_POINTER), (json.dumps(pointer, indent=2) + "\n").encode())
+    atomic.write_bytes(
+        os.path.join(root, art.OUTPUT_POINTER), (json.dumps(pointer, indent=2) + "\n").encode()
+    )
     faults.point("publish:before-link")
     link_tmp = os.path.join(root, f".current-{version}")
     with contextlib.suppress(FileNotFoundError):
@@ -99,9 +102,11 @@ def _verify_input(rundir, cfg, fp):
     got = id_digests(connect_budget(cfg["run"]["memory_mb"]), fp, cfg["input"]["id"])
     bad = sorted(p for p in want if got.get(p) != want[p])
     if bad:
-        raise DataError(f"{len(bad)} input file(s) hold other ids, or the same ids in another order, than when the "
-                        "run scanned them:\n  " + "\n  ".join(bad[:10]) + "\nNothing was published. Run the job "
-                        "again once the input is complete; it starts a fresh run.")
+        raise DataError(
+            f"{len(bad)} input file(s) hold other ids, or the same ids in another order, than when the "
+            "run scanned them:\n  " + "\n  ".join(bad[:10]) + "\nNothing was published. Run the job "
+            "again once the input is complete; it starts a fresh run."
+        )
 
 
 def _refresh_audit(rundir, cfg, fp, version):
@@ -136,8 +141,12 @@ def run(rundir, cfg, fp, run_id):
     F = art.SOLVE_ADJUSTED.load(rundir, mmap=True)
     lo, hi = inp["score_range"]
     cols = output_columns(inp, out)
-    meta = {provenance.PARQUET_KEY: json.dumps(_refresh_audit(rundir, cfg, fp, version), sort_keys=True).encode()}
-    batch_rows = cfg["embed"]["batch_rows"] or batch_rows_for(cfg["run"]["memory_mb"], len(cols) + 2 * len(inp["scores"]))
+    meta = {
+        provenance.PARQUET_KEY: json.dumps(_refresh_audit(rundir, cfg, fp, version), sort_keys=True).encode()
+    }
+    batch_rows = cfg["embed"]["batch_rows"] or batch_rows_for(
+        cfg["run"]["memory_mb"], len(cols) + 2 * len(inp["scores"])
+    )
     try:
         os.makedirs(staging, exist_ok=False)
     except OSError as exc:

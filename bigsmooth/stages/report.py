@@ -11,6 +11,7 @@ Every value from the data or the config passes through :func:`html.escape`. matp
 the Agg backend (no display needed). :func:`write` reads what it needs from the run directory, so
 ``bigsmooth report RUN_DIR`` can draw the page again (for instance after tuning).
 """
+
 import base64
 import html
 import io
@@ -22,42 +23,94 @@ from .. import provenance
 
 # (key, label, definition, which direction is better)
 FIGURES = (
-    ("neighbour_consistency", "Neighbour consistency of decisions (fair space)",
-     "1 - mean over rows of |d_i - mean of d over the row's k nearest neighbours in the fair space|, "
-     "d = selected at the cutoff", "higher"),
-    ("neighbour_disagreement", "Neighbour disagreement",
-     "sum of w_ij (f_i - f_j)^2 over graph edges / sum of w_ij", "lower"),
-    ("lipschitz_violations_local", "Lipschitz violations, neighbour pairs",
-     "share of neighbour pairs at distance d > 0 with |f_i - f_j| > L d", "lower"),
-    ("lipschitz_violations_global", "Lipschitz violations, random pairs",
-     "share of random pairs at distance d > 0 with |f_i - f_j| > L d", "lower"),
-    ("zero_distance_pairs_differing", "Identical neighbours with different scores",
-     "share of neighbour pairs at distance 0 (identical in the fair space) whose scores differ", "lower"),
-    ("zero_distance_mean_abs_difference", "Identical neighbours: mean |difference|",
-     "mean |f_i - f_j| over neighbour pairs at distance 0", "lower"),
-    ("auc", "AUC on labelled rows", "probability that a random positive outscores a random negative", "higher"),
-    ("accuracy_at_cutoff", "Accuracy at the cutoff", "share of labelled rows whose decision equals the label",
-     "higher"),
-    ("balanced_accuracy_at_cutoff", "Balanced accuracy at the cutoff",
-     "mean of the true positive and true negative rates", "higher"),
+    (
+        "neighbour_consistency",
+        "Neighbour consistency of decisions (fair space)",
+        "1 - mean over rows of |d_i - mean of d over the row's k nearest neighbours in the fair space|, "
+        "d = selected at the cutoff",
+        "higher",
+    ),
+    (
+        "neighbour_disagreement",
+        "Neighbour disagreement",
+        "sum of w_ij (f_i - f_j)^2 over graph edges / sum of w_ij",
+        "lower",
+    ),
+    (
+        "lipschitz_violations_local",
+        "Lipschitz violations, neighbour pairs",
+        "share of neighbour pairs at distance d > 0 with |f_i - f_j| > L d",
+        "lower",
+    ),
+    (
+        "lipschitz_violations_global",
+        "Lipschitz violations, random pairs",
+        "share of random pairs at distance d > 0 with |f_i - f_j| > L d",
+        "lower",
+    ),
+    (
+        "zero_distance_pairs_differing",
+        "Identical neighbours with different scores",
+        "share of neighbour pairs at distance 0 (identical in the fair space) whose scores differ",
+        "lower",
+    ),
+    (
+        "zero_distance_mean_abs_difference",
+        "Identical neighbours: mean |difference|",
+        "mean |f_i - f_j| over neighbour pairs at distance 0",
+        "lower",
+    ),
+    (
+        "auc",
+        "AUC on labelled rows",
+        "probability that a random positive outscores a random negative",
+        "higher",
+    ),
+    (
+        "accuracy_at_cutoff",
+        "Accuracy at the cutoff",
+        "share of labelled rows whose decision equals the label",
+        "higher",
+    ),
+    (
+        "balanced_accuracy_at_cutoff",
+        "Balanced accuracy at the cutoff",
+        "mean of the true positive and true negative rates",
+        "higher",
+    ),
     ("brier", "Brier score", "mean (score - label)^2", "lower"),
     ("log_loss", "Log loss", "mean negative log-likelihood of the labels", "lower"),
-    ("sd", "Spread (sd) of scores", "standard deviation over all rows; the controls are matched to it",
-     "(context)"),
+    (
+        "sd",
+        "Spread (sd) of scores",
+        "standard deviation over all rows; the controls are matched to it",
+        "(context)",
+    ),
     ("cutoff", "Cutoff", "score at or above which the top share of rows is selected", "(context)"),
 )
-SCALE_DEPENDENT = {"neighbour_disagreement", "lipschitz_violations_local", "lipschitz_violations_global",
-                   "zero_distance_mean_abs_difference", "brier", "log_loss", "sd"}
+SCALE_DEPENDENT = {
+    "neighbour_disagreement",
+    "lipschitz_violations_local",
+    "lipschitz_violations_global",
+    "zero_distance_mean_abs_difference",
+    "brier",
+    "log_loss",
+    "sd",
+}
 
 ARROW = "&rarr;"
-FOUR_FIFTHS_CAUTION = ("The four-fifths rule (29 CFR 1607.4(D)) is a US employment-selection rule of thumb, not "
-                       "the legal test in every domain or country.")
-PROTECTED_CAUTION = ("Processing protected attributes needs its own lawful basis and a data-protection review.")
-FLIP_CAUTION = ("People whose decision flips may need notice, an explanation or human review.")
+FOUR_FIFTHS_CAUTION = (
+    "The four-fifths rule (29 CFR 1607.4(D)) is a US employment-selection rule of thumb, not "
+    "the legal test in every domain or country."
+)
+PROTECTED_CAUTION = "Processing protected attributes needs its own lawful basis and a data-protection review."
+FLIP_CAUTION = "People whose decision flips may need notice, an explanation or human review."
 CAUTIONS = (
     "Post-processing changes decisions about people. These figures describe what the smoothing did to this "
     "table; they are no proof of legal compliance. Defer to local law, your compliance function and counsel.",
-    FOUR_FIFTHS_CAUTION, PROTECTED_CAUTION, FLIP_CAUTION,
+    FOUR_FIFTHS_CAUTION,
+    PROTECTED_CAUTION,
+    FLIP_CAUTION,
     "The protected attributes are used only to define what the similarity measure must ignore and to audit "
     "the result; they are not used to set anyone's score.",
 )
@@ -123,8 +176,10 @@ def pct(v):
 
 def _table(header, rows, cls=""):
     h = "".join(f"<th>{html.escape(str(c))}</th>" for c in header)
-    body = "".join("<tr>" + "".join(f"<td>{c if isinstance(c, _Raw) else html.escape(fmt(c))}</td>" for c in r)
-                   + "</tr>" for r in rows)
+    body = "".join(
+        "<tr>" + "".join(f"<td>{c if isinstance(c, _Raw) else html.escape(fmt(c))}</td>" for c in r) + "</tr>"
+        for r in rows
+    )
     return f"<table class='{cls}'><tr>{h}</tr>{body}</table>"
 
 
@@ -158,66 +213,107 @@ def render(report, plots, tune=None, applied_lam=None):
     b, a = s["before"], s["after"]
     gates = report.get("gates", [])
     held = prov.get("status") == "held"
-    parts = [f"<div class='banner {'held' if held else 'ok'}'>{e(provenance.banner(prov)) if prov else ''}</div>",
-             f"<p class='oneline'>{e(CAUTIONS[0].split('. ')[0])}; this page is no proof of legal compliance "
-             "(full cautions at the end).</p>"]
+    parts = [
+        f"<div class='banner {'held' if held else 'ok'}'>{e(provenance.banner(prov)) if prov else ''}</div>",
+        f"<p class='oneline'>{e(CAUTIONS[0].split('. ')[0])}; this page is no proof of legal compliance "
+        "(full cautions at the end).</p>",
+    ]
     if report.get("note"):
         parts.append(f"<p class='note'>{e(report['note'])}</p>")
     parts.append(f"<h1>bigsmooth audit: {report['rows']:,} rows</h1>")
     if prov:
-        rows = [["status", prov["status"] + (f" (failed: {', '.join(prov['failed_gates'])})" if prov["failed_gates"] else "")],
-                ["output version", prov["output_version"] or "none (held)"], ["output folder", prov["output_path"]],
-                ["run id", prov["run_id"]], ["written (UTC)", prov["written_utc"]],
-                ["bigsmooth version", prov["bigsmooth_version"]], ["config", prov["config_path"]],
-                ["config file sha256", prov["config_file_sha256"]], ["settings hash", prov["settings_hash"]],
-                ["input", prov["input_path"]], ["input rows / files", f"{prov['input_rows']:,} / {prov['input_files']:,}"],
-                ["input fingerprint", prov["input_fingerprint"]], ["score column(s)", ", ".join(prov["score_columns"])],
-                ["lam applied", f"{prov['lam']:g}"], ["Laplacian", prov["laplacian"]], ["neighbours k", prov["neighbours"]]]
-        parts += ["<section id='provenance'><h2>Where these figures come from</h2>",
-                  _table(["item", "value"], rows, "prov"), "</section>"]
-    parts += ["<section id='howto'><h2>How to read this page</h2><ul>",
-              f"<li>Decisions: the top {report['select_rate']:.0%} of rows by {e(report['decision_score'])} are "
-              "selected, before (raw scores) and after (adjusted scores) alike, so shrinking every score toward "
-              "the mean cannot change a decision by itself.</li>",
-              f"<li>Each figure reads before {ARROW} after; the column 'better' says which direction is better.</li>",
-              "<li>The controls show what the figures would say without the neighbour graph: a real gain is one "
-              "the controls do not reach.</li>",
-              "<li>Gates are checks that hold the output back when they fail; a gate that is off is shown as off "
-              "and never counts as passed.</li></ul></section>"]
+        rows = [
+            [
+                "status",
+                prov["status"]
+                + (f" (failed: {', '.join(prov['failed_gates'])})" if prov["failed_gates"] else ""),
+            ],
+            ["output version", prov["output_version"] or "none (held)"],
+            ["output folder", prov["output_path"]],
+            ["run id", prov["run_id"]],
+            ["written (UTC)", prov["written_utc"]],
+            ["bigsmooth version", prov["bigsmooth_version"]],
+            ["config", prov["config_path"]],
+            ["config file sha256", prov["config_file_sha256"]],
+            ["settings hash", prov["settings_hash"]],
+            ["input", prov["input_path"]],
+            ["input rows / files", f"{prov['input_rows']:,} / {prov['input_files']:,}"],
+            ["input fingerprint", prov["input_fingerprint"]],
+            ["score column(s)", ", ".join(prov["score_columns"])],
+            ["lam applied", f"{prov['lam']:g}"],
+            ["Laplacian", prov["laplacian"]],
+            ["neighbours k", prov["neighbours"]],
+        ]
+        parts += [
+            "<section id='provenance'><h2>Where these figures come from</h2>",
+            _table(["item", "value"], rows, "prov"),
+            "</section>",
+        ]
+    parts += [
+        "<section id='howto'><h2>How to read this page</h2><ul>",
+        f"<li>Decisions: the top {report['select_rate']:.0%} of rows by {e(report['decision_score'])} are "
+        "selected, before (raw scores) and after (adjusted scores) alike, so shrinking every score toward "
+        "the mean cannot change a decision by itself.</li>",
+        f"<li>Each figure reads before {ARROW} after; the column 'better' says which direction is better.</li>",
+        "<li>The controls show what the figures would say without the neighbour graph: a real gain is one "
+        "the controls do not reach.</li>",
+        "<li>Gates are checks that hold the output back when they fail; a gate that is off is shown as off "
+        "and never counts as passed.</li></ul></section>",
+    ]
     d = report["decisions"]
-    summ = [f"<li>Decisions changed at the cutoff: {d['changed']:,} ({pct(d['changed_rate'])}); newly selected "
-            f"{d['newly_selected']:,}, newly not selected {d['newly_not_selected']:,}.</li>",
-            f"<li>Neighbour consistency of decisions in the fair space {fmt(b['neighbour_consistency'])} {ARROW} "
-            f"{fmt(a['neighbour_consistency'])} (higher is better).</li>"]
+    summ = [
+        f"<li>Decisions changed at the cutoff: {d['changed']:,} ({pct(d['changed_rate'])}); newly selected "
+        f"{d['newly_selected']:,}, newly not selected {d['newly_not_selected']:,}.</li>",
+        f"<li>Neighbour consistency of decisions in the fair space {fmt(b['neighbour_consistency'])} {ARROW} "
+        f"{fmt(a['neighbour_consistency'])} (higher is better).</li>",
+    ]
     if "auc" in b and np.isfinite(b["auc"]):
-        summ.append(f"<li>AUC on {b['labelled_rows']:,} labelled rows {fmt(b['auc'])} {ARROW} {fmt(a['auc'])} "
-                    f"(relative change {100 * (a['auc'] - b['auc']) / b['auc']:+.2f}%; negative = worse).</li>")
+        summ.append(
+            f"<li>AUC on {b['labelled_rows']:,} labelled rows {fmt(b['auc'])} {ARROW} {fmt(a['auc'])} "
+            f"(relative change {100 * (a['auc'] - b['auc']) / b['auc']:+.2f}%; negative = worse).</li>"
+        )
     cf = report.get("counterfactual")
     if cf:
         scope = "all rows" if cf["all_rows"] else f"a seeded sample of {cf['rows_evaluated']:,} rows"
-        summ.append(f"<li>Counterfactual consistency (same decision for the row and for the model's score with "
-                    f"its protected attributes changed) {fmt(cf['same_decision_before'])} {ARROW} "
-                    f"{fmt(cf['same_decision_after'])} on {scope}; 'after' is the exact result of rerunning the "
-                    f"job with only that row's score changed (self-influence G_ii by local solves, tolerance "
-                    f"{cf['self_influence_tolerance']:g}). Before, over all rows: "
-                    f"{fmt(cf['same_decision_before_all_rows'])}.</li>")
+        summ.append(
+            f"<li>Counterfactual consistency (same decision for the row and for the model's score with "
+            f"its protected attributes changed) {fmt(cf['same_decision_before'])} {ARROW} "
+            f"{fmt(cf['same_decision_after'])} on {scope}; 'after' is the exact result of rerunning the "
+            f"job with only that row's score changed (self-influence G_ii by local solves, tolerance "
+            f"{cf['self_influence_tolerance']:g}). Before, over all rows: "
+            f"{fmt(cf['same_decision_before_all_rows'])}.</li>"
+        )
     pr = report.get("pairs")
     if pr:
-        summ.append(f"<li>Comparable pairs ({pr['pairs_found']:,} of {pr['pairs']:,} found): same decision "
-                    f"{fmt(pr['same_decision_before'])} {ARROW} {fmt(pr['same_decision_after'])}.</li>")
+        summ.append(
+            f"<li>Comparable pairs ({pr['pairs_found']:,} of {pr['pairs']:,} found): same decision "
+            f"{fmt(pr['same_decision_before'])} {ARROW} {fmt(pr['same_decision_after'])}.</li>"
+        )
     from .audit import gates_line
 
     summ.append(f"<li>Gates: {e(gates_line(gates))}.<ul>")
-    summ += [f"<li class='gate {g['state']}'><b>{e(g['state'].upper() if g['state'] == 'failed' else g['state'])}"
-             f"</b> {e(g['gate'])}: {_arrows(g['line'])}</li>" for g in gates]
+    summ += [
+        f"<li class='gate {g['state']}'><b>{e(g['state'].upper() if g['state'] == 'failed' else g['state'])}"
+        f"</b> {e(g['gate'])}: {_arrows(g['line'])}</li>"
+        for g in gates
+    ]
     summ.append("</ul></li>")
     summ += [f"<li class='warn'>Warning: {_arrows(w)}</li>" for w in report.get("warnings", [])]
-    parts += ["<section id='summary'><h2>Summary</h2><ul>", *summ, "</ul>", _caution(FLIP_CAUTION), "</section>"]
+    parts += [
+        "<section id='summary'><h2>Summary</h2><ul>",
+        *summ,
+        "</ul>",
+        _caution(FLIP_CAUTION),
+        "</section>",
+    ]
 
     ctrl = report.get("controls", {})
     other = report.get("compare", {})
-    header = ["figure", "definition", "better", "before", "after"] + [f"control: {k}" for k in ctrl] + \
-        [f"compared: {k}" for k in other]
+    header = (
+        ["figure", "definition", "better", "before", "after"]
+        + [f"control: {k}" for k in ctrl]
+        + [f"compared: {k}" for k in other]
+    )
     rows = []
     for key, label, definition, better in FIGURES:
         if key not in b:
@@ -225,27 +321,42 @@ def render(report, plots, tune=None, applied_lam=None):
         row = [label, definition, better, b.get(key), a.get(key)]
         for c in ctrl.values():
             v = c.get(key)
-            row.append(_Raw(e(fmt(v)) + " <i>(not comparable)</i>") if key in SCALE_DEPENDENT and not
-                       c.get("spread_matched", True) else v)
+            row.append(
+                _Raw(e(fmt(v)) + " <i>(not comparable)</i>")
+                if key in SCALE_DEPENDENT and not c.get("spread_matched", True)
+                else v
+            )
         row += [c.get(key) for c in other.values()]
         rows.append(row)
     for col in report["groups"]:
-        row = [f"Group gap / sd: {col}", "largest minus smallest group mean, over the sd of all scores", "lower",
-               report["groups"][col]["gap_over_sd"]["before"], report["groups"][col]["gap_over_sd"]["after"]]
+        row = [
+            f"Group gap / sd: {col}",
+            "largest minus smallest group mean, over the sd of all scores",
+            "lower",
+            report["groups"][col]["gap_over_sd"]["before"],
+            report["groups"][col]["gap_over_sd"]["after"],
+        ]
         row += [c.get("gap_over_sd", {}).get(col) for c in ctrl.values()]
         row += [c.get("gap_over_sd", {}).get(col) for c in other.values()]
         rows.append(row)
     cm = report.get("control_matching", {})
-    matching = "; ".join(f"{k}: sd {fmt(v['sd'])}" + (f", strength {v['strength']:.4g}" if "strength" in v else "")
-                         + ("" if v["matched"] else " (NOT matched)") for k, v in cm.items())
-    parts += ["<section id='figures'><h2>Before, after and the controls</h2>",
-              "<p>Controls: shrinking every score toward the mean by the same spread reduction (decisions at a "
-              "quantile cutoff do not move), and smoothing on a random graph of the same degree whose strength "
-              f"is chosen so that its spread (sd) equals the result's. {e(matching)}.</p>",
-              _table(header, rows, "figs"),
-              f"<p>Lipschitz constant L = {report['lipschitz_constant']:.4g} "
-              f"({e(report['lipschitz_constant_source'])}). Pairs at fair-space distance 0 are kept out of the "
-              "violation rates and shown on their own rows.</p>", "</section>"]
+    matching = "; ".join(
+        f"{k}: sd {fmt(v['sd'])}"
+        + (f", strength {v['strength']:.4g}" if "strength" in v else "")
+        + ("" if v["matched"] else " (NOT matched)")
+        for k, v in cm.items()
+    )
+    parts += [
+        "<section id='figures'><h2>Before, after and the controls</h2>",
+        "<p>Controls: shrinking every score toward the mean by the same spread reduction (decisions at a "
+        "quantile cutoff do not move), and smoothing on a random graph of the same degree whose strength "
+        f"is chosen so that its spread (sd) equals the result's. {e(matching)}.</p>",
+        _table(header, rows, "figs"),
+        f"<p>Lipschitz constant L = {report['lipschitz_constant']:.4g} "
+        f"({e(report['lipschitz_constant_source'])}). Pairs at fair-space distance 0 are kept out of the "
+        "violation rates and shown on their own rows.</p>",
+        "</section>",
+    ]
 
     parts.append("<section id='groups'><h2>Groups</h2>")
     for col, g in report["groups"].items():
@@ -258,16 +369,40 @@ def render(report, plots, tune=None, applied_lam=None):
                 continue
             q = after[r["group"]]
             ch = changed.get(r["group"], {})
-            rows.append([r["group"], r["count"], r["mean_score"], q["mean_score"], pct(r["selection_rate"]),
-                         pct(q["selection_rate"]), _ratio_cell(r), _ratio_cell(q), pct(ch.get("decisions_changed_rate"))])
+            rows.append(
+                [
+                    r["group"],
+                    r["count"],
+                    r["mean_score"],
+                    q["mean_score"],
+                    pct(r["selection_rate"]),
+                    pct(q["selection_rate"]),
+                    _ratio_cell(r),
+                    _ratio_cell(q),
+                    pct(ch.get("decisions_changed_rate")),
+                ]
+            )
         gs = g["gap_over_sd"]
-        parts += [f"<h3>{e(col)}</h3>",
-                  _table(["group", "rows", "mean score before", "mean score after", "selected before",
-                          "selected after", "four-fifths ratio before", "four-fifths ratio after",
-                          "decisions changed"], rows),
-                  f"<p>Group gap / sd {fmt(gs['before'])} {ARROW} {fmt(gs['after'])}. The four-fifths ratio is the "
-                  "group's selection rate over the highest group's; below 0.8 is flagged. Groups under "
-                  f"{report.get('min_group_rows', 10)} rows are suppressed.</p>"]
+        parts += [
+            f"<h3>{e(col)}</h3>",
+            _table(
+                [
+                    "group",
+                    "rows",
+                    "mean score before",
+                    "mean score after",
+                    "selected before",
+                    "selected after",
+                    "four-fifths ratio before",
+                    "four-fifths ratio after",
+                    "decisions changed",
+                ],
+                rows,
+            ),
+            f"<p>Group gap / sd {fmt(gs['before'])} {ARROW} {fmt(gs['after'])}. The four-fifths ratio is the "
+            "group's selection rate over the highest group's; below 0.8 is flagged. Groups under "
+            f"{report.get('min_group_rows', 10)} rows are suppressed.</p>",
+        ]
     parts += [_caution(FOUR_FIFTHS_CAUTION), "</section>"]
 
     lk = report.get("leakage", {})
@@ -276,68 +411,130 @@ def render(report, plots, tune=None, applied_lam=None):
         for col, v in lk.get("neighbour_vote", {}).items():
             lin = lk.get("linear_probe", {}).get(col, {}).get("levels", {})
             for lv, auc in v["levels"].items():
-                rows.append([col, lv, lin.get(lv, {}).get("features_auc"), lin.get(lv, {}).get("fair_space_auc"), auc])
-        parts += ["<section id='leakage'><h2>Leakage: can the fair space still tell the groups apart?</h2>",
-                  "<p>AUC of predicting each protected level (0.5 = no better than chance; higher is worse). The linear "
-                  "probe is a least-squares fit on a sample; the fair space is built to defeat it, so it reads near "
-                  "0.5 by construction. The neighbour vote scores each row by the share of its fair-space neighbours "
-                  "in the level: a nonlinear probe of what the graph itself uses. A warning is raised above "
-                  f"{lk.get('warn_above_auc', float('nan')):.2f} (embed.leakage_warn_auc), on "
-                  f"{lk.get('probe_rows', 0):,} sampled rows.</p>",
-                  _table(["attribute", "level", "linear probe: raw features", "linear probe: fair space",
-                          "neighbour vote: fair space"], rows), _caution(PROTECTED_CAUTION), "</section>"]
+                rows.append(
+                    [col, lv, lin.get(lv, {}).get("features_auc"), lin.get(lv, {}).get("fair_space_auc"), auc]
+                )
+        parts += [
+            "<section id='leakage'><h2>Leakage: can the fair space still tell the groups apart?</h2>",
+            "<p>AUC of predicting each protected level (0.5 = no better than chance; higher is worse). The linear "
+            "probe is a least-squares fit on a sample; the fair space is built to defeat it, so it reads near "
+            "0.5 by construction. The neighbour vote scores each row by the share of its fair-space neighbours "
+            "in the level: a nonlinear probe of what the graph itself uses. A warning is raised above "
+            f"{lk.get('warn_above_auc', float('nan')):.2f} (embed.leakage_warn_auc), on "
+            f"{lk.get('probe_rows', 0):,} sampled rows.</p>",
+            _table(
+                [
+                    "attribute",
+                    "level",
+                    "linear probe: raw features",
+                    "linear probe: fair space",
+                    "neighbour vote: fair space",
+                ],
+                rows,
+            ),
+            _caution(PROTECTED_CAUTION),
+            "</section>",
+        ]
 
     parts.append("<section id='distributions'><h2>Score distributions by group</h2>")
-    parts += [f"<img alt='score distributions by {e(k.split(':', 1)[1])}' src='{v}'>" for k, v in plots.items()
-              if k.startswith("distributions:")]
+    parts += [
+        f"<img alt='score distributions by {e(k.split(':', 1)[1])}' src='{v}'>"
+        for k, v in plots.items()
+        if k.startswith("distributions:")
+    ]
     parts.append("</section>")
     parts.append(f"<section id='changes'><h2>Changes</h2><img alt='changes' src='{plots['changes']}'>")
     q = report["change"]["quantiles_abs"]
-    parts.append(f"<p>|change|: median {fmt(q['0.5'])}, 90th percentile {fmt(q['0.9'])}, 99th {fmt(q['0.99'])}, "
-                 f"largest {fmt(q['1.0'])}; mean {fmt(report['change']['mean_abs'])}.</p>")
+    parts.append(
+        f"<p>|change|: median {fmt(q['0.5'])}, 90th percentile {fmt(q['0.9'])}, 99th {fmt(q['0.99'])}, "
+        f"largest {fmt(q['1.0'])}; mean {fmt(report['change']['mean_abs'])}.</p>"
+    )
     big = report["largest_changes"]
     if big:
         cols = list(big[0].get("groups", {}))
-        rows = [[_Raw(e(str(c["id"]))), c["before"][0], c["after"][0], c["after"][0] - c["before"][0],
-                 f"{_decision(c['decision_before'])} {chr(8594)} {_decision(c['decision_after'])}"
-                 if "decision_before" in c else "", "yes" if c.get("decision_before") != c.get("decision_after") else "no"]
-                + [c["groups"][k] for k in cols] for c in big]
-        parts += ["<h3>Largest changes</h3>",
-                  _table(["id", "before", "after", "change", "decision", "flipped"] + cols, rows)]
+        rows = [
+            [
+                _Raw(e(str(c["id"]))),
+                c["before"][0],
+                c["after"][0],
+                c["after"][0] - c["before"][0],
+                f"{_decision(c['decision_before'])} {chr(8594)} {_decision(c['decision_after'])}"
+                if "decision_before" in c
+                else "",
+                "yes" if c.get("decision_before") != c.get("decision_after") else "no",
+            ]
+            + [c["groups"][k] for k in cols]
+            for c in big
+        ]
+        parts += [
+            "<h3>Largest changes</h3>",
+            _table(["id", "before", "after", "change", "decision", "flipped"] + cols, rows),
+        ]
     parts += [_caution(FLIP_CAUTION), "</section>"]
 
     sv = report.get("solver", {})
     if sv:
-        parts += ["<section id='solver'><h2>Solver record</h2>",
-                  _table(["method", "Laplacian", "lam", "status", "sweeps", "final relative residual"],
-                         [[sv["method"], sv["laplacian"], f"{sv['lam']:g}", sv["status"], sv["sweeps"],
-                           f"{sv['final_residual']:.3e}"]]), "</section>"]
+        parts += [
+            "<section id='solver'><h2>Solver record</h2>",
+            _table(
+                ["method", "Laplacian", "lam", "status", "sweeps", "final relative residual"],
+                [
+                    [
+                        sv["method"],
+                        sv["laplacian"],
+                        f"{sv['lam']:g}",
+                        sv["status"],
+                        sv["sweeps"],
+                        f"{sv['final_residual']:.3e}",
+                    ]
+                ],
+            ),
+            "</section>",
+        ]
     if tune:
         rec = tune.get("recommended")
-        parts += ["<section id='tuning'><h2>Tuning</h2>",
-                  f"<p><b>Applied lam {applied_lam:g}; recommended lam "
-                  f"{'none (no lam kept the AUC within budget)' if rec is None else f'{rec:g}'}</b> "
-                  f"(best neighbour consistency with an AUC drop within {pct(tune['auc_drop_budget'])}, on "
-                  f"{tune['tuning_rows']:,} labelled rows; {tune['holdout_rows']:,} held out).</p>"]
+        parts += [
+            "<section id='tuning'><h2>Tuning</h2>",
+            f"<p><b>Applied lam {applied_lam:g}; recommended lam "
+            f"{'none (no lam kept the AUC within budget)' if rec is None else f'{rec:g}'}</b> "
+            f"(best neighbour consistency with an AUC drop within {pct(tune['auc_drop_budget'])}, on "
+            f"{tune['tuning_rows']:,} labelled rows; {tune['holdout_rows']:,} held out).</p>",
+        ]
         parts += [f"<p class='warn'>Warning: {_arrows(w)}</p>" for w in tune.get("warnings", [])]
         parts.append(f"<img alt='trade-off' src='{plots['tradeoff']}'>" if "tradeoff" in plots else "")
         hold = tune["holdout_rows"] > 0
-        rows = [[f"{r['lam']:g}", r["sweeps"], r["auc"], f"{-100 * r['auc_drop']:+.2f}%", r["consistency"]]
-                + ([r["holdout_auc"], r["holdout_consistency"]] if hold else []) for r in tune["path"]]
-        parts += [_table(["lam", "sweeps", "AUC", "AUC change (relative; negative = worse)", "neighbour consistency"]
-                         + (["hold-out AUC", "hold-out consistency"] if hold else []), rows), "</section>"]
-    parts += ["<section id='cautions'><h2>Cautions</h2><ul>", *[f"<li>{e(c)}</li>" for c in CAUTIONS],
-              "</ul></section>"]
-    style = ("body{font-family:sans-serif;max-width:1150px;margin:1.5em auto;color:#222}table{border-collapse:collapse;"
-             "margin:.5em 0}td,th{border:1px solid #bbb;padding:3px 8px;text-align:right;vertical-align:top}"
-             "th{background:#eee}table.figs td:nth-child(2){text-align:left;font-size:85%;color:#555;max-width:22em}"
-             "table.figs td:first-child,table.prov td{text-align:left}.warn{color:#a40}img{max-width:100%}"
-             ".banner{font-size:1.3em;font-weight:bold;padding:.6em 1em;border-radius:4px}"
-             ".banner.ok{background:#e3f4e3;border:1px solid #6a6}.banner.held{background:#fbe3e0;border:1px solid #c44}"
-             ".oneline,.caution{font-size:90%;color:#555}.note{font-weight:bold;color:#345}"
-             ".gate.failed{color:#b00}.gate.off{color:#777}")
-    return (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>bigsmooth audit "
-            f"{e(prov.get('run_id', ''))}</title><style>{style}</style></head><body>{''.join(parts)}</body></html>\n")
+        rows = [
+            [f"{r['lam']:g}", r["sweeps"], r["auc"], f"{-100 * r['auc_drop']:+.2f}%", r["consistency"]]
+            + ([r["holdout_auc"], r["holdout_consistency"]] if hold else [])
+            for r in tune["path"]
+        ]
+        parts += [
+            _table(
+                ["lam", "sweeps", "AUC", "AUC change (relative; negative = worse)", "neighbour consistency"]
+                + (["hold-out AUC", "hold-out consistency"] if hold else []),
+                rows,
+            ),
+            "</section>",
+        ]
+    parts += [
+        "<section id='cautions'><h2>Cautions</h2><ul>",
+        *[f"<li>{e(c)}</li>" for c in CAUTIONS],
+        "</ul></section>",
+    ]
+    style = (
+        "body{font-family:sans-serif;max-width:1150px;margin:1.5em auto;color:#222}table{border-collapse:collapse;"
+        "margin:.5em 0}td,th{border:1px solid #bbb;padding:3px 8px;text-align:right;vertical-align:top}"
+        "th{background:#eee}table.figs td:nth-child(2){text-align:left;font-size:85%;color:#555;max-width:22em}"
+        "table.figs td:first-child,table.prov td{text-align:left}.warn{color:#a40}img{max-width:100%}"
+        ".banner{font-size:1.3em;font-weight:bold;padding:.6em 1em;border-radius:4px}"
+        ".banner.ok{background:#e3f4e3;border:1px solid #6a6}.banner.held{background:#fbe3e0;border:1px solid #c44}"
+        ".oneline,.caution{font-size:90%;color:#555}.note{font-weight:bold;color:#345}"
+        ".gate.failed{color:#b00}.gate.off{color:#777}"
+    )
+    return (
+        f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>bigsmooth audit "
+        f"{e(prov.get('run_id', ''))}</title><style>{style}</style></head><body>{''.join(parts)}</body></html>\n"
+    )
 
 
 def write(rundir, cfg, report):
@@ -350,7 +547,9 @@ def write(rundir, cfg, report):
     levels = {c: [v for v, _ in scan["levels"][c]] for c in protected}
     tune = art.TUNE_INFO.load(rundir) if art.TUNE_INFO.exists(rundir) else None
     plots = _plots(report, np.asarray(Y), np.asarray(F), np.asarray(codes), levels, protected)
-    if tune and art.TUNE_PLOT.exists(rundir):      # drawn by bigsmooth.tune
+    if tune and art.TUNE_PLOT.exists(rundir):  # drawn by bigsmooth.tune
         plots["tradeoff"] = "data:image/png;base64," + base64.b64encode(art.TUNE_PLOT.load(rundir)).decode()
-    page = render({**report, "note": cfg["audit"]["report_note"]}, plots, tune, applied_lam=cfg["solve"]["lam"])
+    page = render(
+        {**report, "note": cfg["audit"]["report_note"]}, plots, tune, applied_lam=cfg["solve"]["lam"]
+    )
     art.AUDIT_REPORT_HTML.save(rundir, page.encode())

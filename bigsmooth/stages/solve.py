@@ -12,6 +12,7 @@ The result is written in input row order. The checkpoint (iterate and solver sta
 atomically after every ``solve.checkpoint_every`` sweeps; a run that is started again continues
 from it and reaches the same bits as an uninterrupted run.
 """
+
 import contextlib
 import logging
 import os
@@ -69,20 +70,36 @@ def previous_scores(rundir, cfg, Y):
     idq = quote(inp["id"])
     adj = [quote(c + out["suffix"]) for c in inp["scores"]]
     try:
-        t = src.fetch_arrow(con, f"SELECT src.{ROW}, {', '.join('p.' + a for a in adj)} FROM {{src}} "
-                                 f"JOIN read_parquet($prev, union_by_name = true) p ON src.{idq} = p.{idq}",
-                            prev=files)
+        t = src.fetch_arrow(
+            con,
+            f"SELECT src.{ROW}, {', '.join('p.' + a for a in adj)} FROM {{src}} "
+            f"JOIN read_parquet($prev, union_by_name = true) p ON src.{idq} = p.{idq}",
+            prev=files,
+        )
     except duckdb.Error as exc:
-        log.warning("warm start: cannot read the published version %s (%s); starting from the raw scores",
-                    version, str(exc).splitlines()[0])
+        log.warning(
+            "warm start: cannot read the published version %s (%s); starting from the raw scores",
+            version,
+            str(exc).splitlines()[0],
+        )
         return Y, {"used": False, "reason": f"cannot read version {version}"}
     rows = t.column(0).to_numpy()
     X0 = np.array(Y, dtype=np.float64)
     for j in range(len(adj)):
         X0[rows, j] = t.column(j + 1).to_numpy(zero_copy_only=False)
-    log.info("warm start from version %s: %d of %d rows start from last night's adjusted score, %d new",
-             version, len(rows), len(Y), len(Y) - len(rows))
-    return X0, {"used": True, "version": version, "rows_matched": int(len(rows)), "rows_new": int(len(Y) - len(rows))}
+    log.info(
+        "warm start from version %s: %d of %d rows start from last night's adjusted score, %d new",
+        version,
+        len(rows),
+        len(Y),
+        len(Y) - len(rows),
+    )
+    return X0, {
+        "used": True,
+        "version": version,
+        "rows_matched": int(len(rows)),
+        "rows_new": int(len(Y) - len(rows)),
+    }
 
 
 def _sweeps_saved(system, b, Yp, X0p, residuals, sweeps):
@@ -95,8 +112,11 @@ def _sweeps_saved(system, b, Yp, X0p, residuals, sweeps):
     warm = np.linalg.norm(b - system.matvec(X0p)) / nb
     rate = np.log(residuals[-1] / residuals[0]) / max(sweeps, 1) if sweeps and residuals[0] > 0 else 0.0
     est = float(np.log(cold / warm) / -rate) if rate < 0 and warm > 0 else 0.0
-    return {"start_residual_cold": float(cold), "start_residual_warm": float(warm),
-            "estimated_sweeps_saved": round(est, 1)}
+    return {
+        "start_residual_cold": float(cold),
+        "start_residual_warm": float(warm),
+        "estimated_sweeps_saved": round(est, 1),
+    }
 
 
 def workers_for(s):
@@ -120,8 +140,9 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
     with contextlib.ExitStack() as stack:
         if s["backend"] == "processes":
             # process workers map the solver's vectors as files too
-            work = stack.enter_context(parallel.work_files(n, c, parallel.shm_key(rundir.path),
-                                                               art.SOLVE_WORK.path(rundir)))
+            work = stack.enter_context(
+                parallel.work_files(n, c, parallel.shm_key(rundir.path), art.SOLVE_WORK.path(rundir))
+            )
         else:
             work = sweepcg.Work.allocate(n, c)
         return _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
@@ -133,20 +154,35 @@ def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
     state = None
     if ck is not None and ck.get("method") is not None and str(ck["method"]) == "sweep-cg":
         work.x[:], work.r[:], work.p[:] = ck["x"], ck["r"], ck["p"]
-        state = {"sweep": int(ck["sweep"]), "rho": ck["rho"], "beta": ck["beta"], "target": float(ck["target"]),
-                 "nbhat": float(ck["nbhat"]),
-                 "residuals": ck["residuals"].tolist(), "checks": [tuple(v) for v in ck["checks"].tolist()]}
+        state = {
+            "sweep": int(ck["sweep"]),
+            "rho": ck["rho"],
+            "beta": ck["beta"],
+            "target": float(ck["target"]),
+            "nbhat": float(ck["nbhat"]),
+            "residuals": ck["residuals"].tolist(),
+            "checks": [tuple(v) for v in ck["checks"].tolist()],
+        }
         log.info("resuming the solver from the checkpoint after sweep %d", state["sweep"])
     every = s["checkpoint_every"]
 
     def on_sweep(st, wk):
         faults.point(f"solve:sweep:{st['sweep']}")
         if st["sweep"] % every == 0:
-            save_checkpoint(ck_path, method=np.array("sweep-cg"), x=wk.x, r=wk.r, p=wk.p, rho=st["rho"],
-                            beta=st["beta"], sweep=np.int64(st["sweep"]), target=np.float64(st["target"]),
-                            nbhat=np.float64(st["nbhat"]),
-                            residuals=np.asarray(st["residuals"]),
-                            checks=np.asarray(st["checks"], dtype=np.float64).reshape(-1, 2))
+            save_checkpoint(
+                ck_path,
+                method=np.array("sweep-cg"),
+                x=wk.x,
+                r=wk.r,
+                p=wk.p,
+                rho=st["rho"],
+                beta=st["beta"],
+                sweep=np.int64(st["sweep"]),
+                target=np.float64(st["target"]),
+                nbhat=np.float64(st["nbhat"]),
+                residuals=np.asarray(st["residuals"]),
+                checks=np.asarray(st["checks"], dtype=np.float64).reshape(-1, 2),
+            )
         if st["sweep"] == 1 or st["sweep"] % 10 == 0:
             log.info("sweep %d: preconditioned residual %.3e", st["sweep"], st["residuals"][-1])
 
@@ -155,19 +191,38 @@ def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
     try:
         # a cold start (the raw scores) is scaled to the multiple closest to the solution; a warm
         # start (last night's adjusted scores) is taken as it is
-        res = sweepcg.sweep_cg(system, b[perm], x0=X0[perm], tol=s["tol"], max_sweeps=s["max_sweeps"],
-                               omega=s["relaxation"], scale_start=cold, executor=executor, work=work,
-                               state=state, on_sweep=on_sweep)
+        res = sweepcg.sweep_cg(
+            system,
+            b[perm],
+            x0=X0[perm],
+            tol=s["tol"],
+            max_sweeps=s["max_sweeps"],
+            omega=s["relaxation"],
+            scale_start=cold,
+            executor=executor,
+            work=work,
+            state=state,
+            on_sweep=on_sweep,
+        )
     finally:
         # process workers too: they keep the vectors' files mapped, so their memory goes with them
         if executor is not None:
             executor.shutdown()
-    info = {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
-            "true_residual_checks": [list(ch) for ch in res.checks], "final_residual": res.final_residual,
-            "groups": len(bounds) - 1, "workers": nw, "backend": s["backend"],
-            "relaxation": s["relaxation"]}
+    info = {
+        "status": res.status,
+        "sweeps": res.sweeps,
+        "residuals": res.residuals,
+        "true_residual_checks": [list(ch) for ch in res.checks],
+        "final_residual": res.final_residual,
+        "groups": len(bounds) - 1,
+        "workers": nw,
+        "backend": s["backend"],
+        "relaxation": s["relaxation"],
+    }
     if s["warm_start"]:
-        info["warm_start_effect"] = _sweeps_saved(system, b[perm], Y[perm], X0[perm], res.residuals, res.sweeps)
+        info["warm_start_effect"] = _sweeps_saved(
+            system, b[perm], Y[perm], X0[perm], res.residuals, res.sweeps
+        )
     return res.x, info
 
 
@@ -185,18 +240,38 @@ def _blocks(rundir, s, A, b, Y, perm, ck_path, X0):
     def on_sweep(sweep, x, residuals):
         faults.point(f"solve:sweep:{sweep}")
         if sweep % every == 0:
-            save_checkpoint(ck_path, method=np.array("blocks"), x=x, sweep=np.int64(sweep),
-                            residuals=np.asarray(residuals))
+            save_checkpoint(
+                ck_path,
+                method=np.array("blocks"),
+                x=x,
+                sweep=np.int64(sweep),
+                residuals=np.asarray(residuals),
+            )
         if sweep == 1 or sweep % 10 == 0:
             log.info("sweep %d: relative residual %.3e", sweep, residuals[-1])
 
     res = solver.block_coordinate_descent(
-        Ap, b[perm], x0=x0, block_rows=s["block_rows"], block_solve=s["block_solve"],
-        inner_sweeps=s["inner_sweeps"], tol=s["tol"], max_sweeps=s["max_sweeps"], start_sweep=start,
-        residuals=record, on_sweep=on_sweep, gs_kernel=_fast_gs())
-    return res.x, {"status": res.status, "sweeps": res.sweeps, "residuals": res.residuals,
-                   "final_residual": res.final_residual, "block_rows": s["block_rows"],
-                   "block_solve": s["block_solve"]}
+        Ap,
+        b[perm],
+        x0=x0,
+        block_rows=s["block_rows"],
+        block_solve=s["block_solve"],
+        inner_sweeps=s["inner_sweeps"],
+        tol=s["tol"],
+        max_sweeps=s["max_sweeps"],
+        start_sweep=start,
+        residuals=record,
+        on_sweep=on_sweep,
+        gs_kernel=_fast_gs(),
+    )
+    return res.x, {
+        "status": res.status,
+        "sweeps": res.sweeps,
+        "residuals": res.residuals,
+        "final_residual": res.final_residual,
+        "block_rows": s["block_rows"],
+        "block_solve": s["block_solve"],
+    }
 
 
 def run(rundir, cfg):
@@ -221,8 +296,13 @@ def run(rundir, cfg):
     art.SOLVE_CHECKPOINT.folder(rundir)
     if s["lam"] == 0 or edges == 0:
         F = Y.copy()
-        info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[0.0], final_residual=0.0,
-                    note="nothing to smooth")
+        info.update(
+            status=solver.STATUS_CONVERGED,
+            sweeps=0,
+            residuals=[0.0],
+            final_residual=0.0,
+            note="nothing to smooth",
+        )
     elif s["method"] == "direct":
         A, _ = laplacian.system(W, s["lam"], s["laplacian"])
         F = solver.direct_solve(A, b)
@@ -252,11 +332,20 @@ def run(rundir, cfg):
         F = np.empty_like(Xp)
         F[perm] = Xp
         if info["status"] != solver.STATUS_CONVERGED:
-            log.warning("the solver stopped after %d sweeps at relative residual %.3e without reaching tol %.1e "
-                        "(status %s); raise solve.max_sweeps or lower solve.lam", info["sweeps"],
-                        info["final_residual"], s["tol"], info["status"])
+            log.warning(
+                "the solver stopped after %d sweeps at relative residual %.3e without reaching tol %.1e "
+                "(status %s); raise solve.max_sweeps or lower solve.lam",
+                info["sweeps"],
+                info["final_residual"],
+                s["tol"],
+                info["status"],
+            )
     art.SOLVE_ADJUSTED.save(rundir, F)
     art.SOLVE_INFO.save(rundir, info)
-    log.info("solve: %s after %d sweeps, relative residual %.3e", info["status"], info["sweeps"],
-             info["final_residual"])
+    log.info(
+        "solve: %s after %d sweeps, relative residual %.3e",
+        info["status"],
+        info["sweeps"],
+        info["final_residual"],
+    )
     return {k: v for k, v in info.items() if k not in ("residuals", "true_residual_checks")}
