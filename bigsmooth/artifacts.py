@@ -164,9 +164,11 @@ SOLVE_ADJUSTED = _a(
     "solve.adjusted", "solve", "solve/adjusted.npy", "npy", "adjusted scores (n, score columns)"
 )
 SOLVE_INFO = _a("solve.info", "solve", "solve/solve.json", "json", "convergence record")
-AUDIT_REPORT_JSON = _a("audit.json", "audit", "audit/audit.json", "json", "the audit (copied to the output)")
+AUDIT_REPORT_JSON = _a(
+    "audit.record", "audit", "audit/audit.json", "json", "the audit (copied to the output)"
+)
 AUDIT_REPORT_HTML = _a(
-    "audit.html", "audit", "audit/report.html", "html", "the report (copied to the output)"
+    "audit.page", "audit", "audit/report.html", "html", "the report (copied to the output)"
 )
 PUBLISH_PENDING = _a(
     "publish.pending",

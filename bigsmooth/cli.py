@@ -222,7 +222,7 @@ def cmd_demo(args):
 def cmd_tune(args):
     from .config import load_config
     from .pipeline import run_job
-    from .tune import DEFAULT_LAMS, table_lines
+    from .tune import DEFAULT_LAMS, table_lines, tune_run
 
     try:
         lams = [float(v) for v in args.lams.split(",")] if args.lams else list(DEFAULT_LAMS)
@@ -235,8 +235,12 @@ def cmd_tune(args):
         if args.max_auc_drop is not None
         else load_config(args.config)["gates"]["max_auc_drop"]
     )
-    res = run_job(args.config, tune={"lams": lams, "budget": budget, "holdout": args.holdout})
-    for line in table_lines(res["tune"]):
+    res = run_job(
+        args.config,
+        upto="order",
+        then=lambda rd, cfg: tune_run(rd, cfg, lams=lams, budget=budget, holdout=args.holdout),
+    )
+    for line in table_lines(res["then"]):
         print(line)
     print(f"saved: {art.TUNE_INFO.path(res['run_dir'])} and {art.TUNE_PLOT.path(res['run_dir'])}")
     return EXIT_OK

@@ -1,5 +1,6 @@
 """The nightly job: create or resume a run and take it through every stage in order."""
 
+import errno
 import logging
 import os
 import shutil
@@ -10,7 +11,6 @@ from . import config as config_mod
 from .atomic import read_json
 from .errors import DataError, GateError, InputMissingError, OutputError
 from .rundir import STAGES, RunDir, find_stage, hold_lock, run_id
-from .stages import audit, embed, graph, order, publish, scan, solve
 from .stages import base as stage_base
 from .table import changed_files, fingerprint, unreadable_files, verify_unchanged
 
@@ -110,6 +110,32 @@ def _check_gates(rd, cfg, before_publish):
     )
 
 
+WRITE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EFBIG}
+
+
+def os_error(exc, stage, rd, cfg, fp):
+    """The error to report for an OSError in a stage: a failed read of an input file (or of the
+    pairs file) is an input error (exit 66); anything else, a full disk above all, is a failed write
+    (exit 73), after which the run resumes."""
+    path = os.path.abspath(exc.filename) if getattr(exc, "filename", None) else None
+    inputs = {e["path"] for e in fp["files"]} | (
+        {os.path.abspath(cfg["input"]["pairs"])} if cfg["input"]["pairs"] else set()
+    )
+    if (
+        exc.errno not in WRITE_ERRNOS
+        and path is not None
+        and (path in inputs or path.startswith(fp["root"] + os.sep))
+    ):
+        return InputMissingError(
+            f"stage {stage} could not read the input file {path}: {exc.strerror or exc}. Check that it is "
+            "there and readable, then run again."
+        )
+    return OutputError(
+        f"stage {stage} could not write in {rd.path}: {exc}. Earlier stages and the last solver "
+        "checkpoint are kept; free space or fix permissions and run again to resume."
+    )
+
+
 def _reading(name, fp, call):
     """Run a stage; a failure inside DuckDB or Arrow while it reads the input becomes an input error
     (exit 66) naming the files that cannot be read, when some can't (otherwise it is raised as it is)."""
@@ -164,27 +190,58 @@ def _clear_stale(rd):
             )
 
 
-def _stage_calls(rd, cfg, fp, rid):
-    return {
-        "scan": lambda: scan.run(rd, cfg, fp),
-        "embed": lambda: embed.run(rd, cfg, fp),
-        "graph": lambda: graph.run(rd, cfg),
-        "order": lambda: order.run(rd, cfg),
-        "solve": lambda: solve.run(rd, cfg),
-        "audit": lambda: audit.run(rd, cfg, fp),
-        "publish": lambda: publish.run(rd, cfg, fp, rid),
-    }
+def run_stages(ctx, upto=None, fresh=False):
+    """Run the declared stages (:data:`bigsmooth.stages.base.SPECS`) in order, up to and including
+    ``upto`` (default: all). A stage is skipped when the manifest says it is done and its declared
+    outputs exist; taken from another run when it has the same identity (unless ``fresh``); else run
+    as ``module.run(ctx)`` inside the manifest's record of it."""
+    rd, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
+    ids = stage_base.identities(cfg, fp["hash"])
+    last = STAGES.index(upto) if upto else len(STAGES) - 1
+    for spec in stage_base.SPECS[: last + 1]:
+        name = spec.name
+        if name == "publish":
+            _check_gates(rd, cfg, before_publish=True)
+        if rd.is_done(name):
+            missing = stage_base.outputs_missing(name, rd)
+            if not missing:
+                log.info("stage %s already done; skipping", name)
+                continue
+            log.warning(
+                "stage %s is marked done but %s are missing; doing it again", name, ", ".join(missing)
+            )
+        if stage_base.shareable(name, cfg) and not fresh:
+            source = find_stage(cfg["run"]["dir"], name, ids[name], exclude=rd.path)
+            if source and rd.adopt(name, source, ids[name]):
+                log.info(
+                    "stage %s: reusing the outputs of run %s (same input and %s settings)",
+                    name,
+                    os.path.basename(source),
+                    name,
+                )
+                continue
+        log.info("stage %s", name)
+        with rd.stage(name, ids[name]) as record:
+            if name in READS_INPUT:
+                verify_unchanged(fp, f"before stage {name}")
+            try:
+                record.update(_reading(name, fp, lambda: spec.module().run(ctx)))
+            except OSError as exc:
+                raise os_error(exc, name, rd, cfg, fp) from None
 
 
-def run_job(config_path, fresh=False, tune=None):
+def run_job(config_path, fresh=False, upto=None, then=None):
     """Run (or resume) the job described by a config file.
 
-    With ``tune`` (a dict of :func:`bigsmooth.tune.tune_run`'s lams, budget and holdout) the stages
-    run up to ``order`` and then the lam path is solved; the result has a ``tune`` entry.
+    With ``upto`` (a stage name) the stages run up to and including it, and nothing is published;
+    ``then(rundir, cfg)`` is called afterwards while the run's locks are still held (``bigsmooth
+    tune`` runs up to ``order`` and solves its lam path this way) and its result is returned under
+    ``then``.
 
     Returns
     -------
-    dict with ``run_dir``, ``run_id``, ``already_complete`` and the published ``output`` folder.
+    dict with ``run_dir``, ``run_id``, ``already_complete`` and the published ``output`` folder
+    (a full run), or ``then``'s result.
     """
     cfg = config_mod.load_config(config_path)
     _allow_numba_threads(cfg["graph"]["index_threads"])
@@ -201,7 +258,7 @@ def run_job(config_path, fresh=False, tune=None):
             _discard(rd)
         if rd.exists():
             m = rd.load()
-            if rd.all_done() and tune is None:
+            if rd.all_done() and upto is None:
                 out = m["stages"]["publish"]["summary"]["path"]
                 if os.path.isdir(out):
                     log.info(
@@ -230,43 +287,12 @@ def run_job(config_path, fresh=False, tune=None):
             )
             log.info("new run %s: %d rows in %d files", rid, fp["rows"], len(fp["files"]))
         _check_writable(cfg["output"]["path"])
-        calls = _stage_calls(rd, cfg, fp, rid)
-        ids = stage_base.identities(cfg, fp["hash"])
+        ctx = stage_base.Context(rd, cfg, fp, rid)
         # a second job publishing to the same output waits for this one (exit 75 at once)
         with hold_lock(cfg["output"]["path"], f"output {cfg['output']['path']}"):
-            for name in STAGES:
-                if tune is not None and name == "solve":
-                    from .tune import tune_run
-
-                    return {"run_dir": rd.path, "run_id": rid, "tune": tune_run(rd, cfg, **tune)}
-                if name == "publish":
-                    _check_gates(rd, cfg, before_publish=True)
-                if rd.is_done(name):
-                    log.info("stage %s already done; skipping", name)
-                    continue
-                if stage_base.shareable(name, cfg) and not fresh:
-                    source = find_stage(cfg["run"]["dir"], name, ids[name], exclude=rd.path)
-                    if source and rd.adopt(name, source, ids[name]):
-                        log.info(
-                            "stage %s: reusing the outputs of run %s (same input and %s settings)",
-                            name,
-                            os.path.basename(source),
-                            name,
-                        )
-                        continue
-                log.info("stage %s", name)
-                with rd.stage(name, ids[name]) as record:
-                    if name in READS_INPUT:
-                        verify_unchanged(fp, f"before stage {name}")
-                    try:
-                        record.update(_reading(name, fp, calls[name]))
-                    except OSError as exc:
-                        # a failed write (disk full, permissions): earlier outputs and checkpoints stay
-                        raise OutputError(
-                            f"stage {name} could not write in {rd.path}: {exc}. Earlier "
-                            "stages and the last solver checkpoint are kept; free space or "
-                            "fix permissions and run again to resume."
-                        ) from None
+            run_stages(ctx, upto=upto, fresh=fresh)
+            if upto is not None:
+                return {"run_dir": rd.path, "run_id": rid, "then": then(rd, cfg) if then else None}
         out = rd.summary("publish")["path"]
         _check_gates(rd, cfg, before_publish=False)
         return {"run_dir": rd.path, "run_id": rid, "already_complete": False, "output": out}

@@ -201,3 +201,29 @@ def test_the_id_digest_changes_with_the_order_of_the_ids(tmp_path):
     pq.write_table(pa.table(cols).take(pa.array(list(range(49, -1, -1)))), tmp_path / "a.parquet")
     second = id_digests(connect(), fingerprint(str(tmp_path / "a.parquet")), "applicant_id")
     assert set(first) == set(second) and first != second
+
+
+def test_a_failed_read_of_an_input_file_is_an_input_error_not_a_failed_write(tmp_path):
+    # errors named after the file they concern: an input file -> exit 66, the run directory or a
+    # full disk -> exit 73
+    import errno
+
+    from bigsmooth.errors import EXIT_NOINPUT
+    from bigsmooth.pipeline import os_error
+    from bigsmooth.rundir import RunDir
+
+    fp = {"root": str(tmp_path / "in"), "files": [{"path": str(tmp_path / "in" / "a.parquet")}]}
+    cfg = {"input": {"pairs": ""}}
+    rd = RunDir(tmp_path / "runs" / "r")
+    read = os_error(
+        OSError(errno.EIO, "Input/output error", str(tmp_path / "in" / "a.parquet")), "embed", rd, cfg, fp
+    )
+    assert read.exit_code == EXIT_NOINPUT and "could not read the input file" in str(read)
+    write = os_error(
+        OSError(errno.EACCES, "Permission denied", str(tmp_path / "runs" / "r" / "x")), "embed", rd, cfg, fp
+    )
+    assert write.exit_code == EXIT_CANTCREAT
+    full = os_error(
+        OSError(errno.ENOSPC, "No space left", str(tmp_path / "in" / "a.parquet")), "embed", rd, cfg, fp
+    )
+    assert full.exit_code == EXIT_CANTCREAT

@@ -431,7 +431,9 @@ def _sample(n, size, rng):
     return np.arange(n) if n <= size else np.sort(rng.choice(n, size=size, replace=False))
 
 
-def run(rundir, cfg, fp):
+def run(ctx):
+    """The audit stage (see the module docstring)."""
+    rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
     inp, a = cfg["input"], cfg["audit"]
     W = art.GRAPH_WEIGHTS.load(rundir, mmap=True)
     Y = art.EMBED_SCORES.load(rundir)

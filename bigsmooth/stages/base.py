@@ -11,6 +11,7 @@ import hashlib
 import json
 from dataclasses import dataclass
 
+from .. import artifacts, streams
 from ..config import RULES
 
 
@@ -19,10 +20,32 @@ class StageSpec:
     name: str
     settings: tuple  # "section.key", or "section.*" for every result-changing key of a section
     shareable: bool  # outputs depend on nothing but the identity, so another run may reuse them
+    reads: tuple = ()  # artifact keys (bigsmooth.artifacts) read from earlier stages
+    writes: tuple = ()  # artifact keys always written; the stage is done only when they exist
+
+    def module(self):
+        """The stage's module; its ``run(ctx)`` does the work."""
+        import importlib
+
+        return importlib.import_module(f"bigsmooth.stages.{self.name}")
+
+
+@dataclass
+class Context:
+    """What a stage is run with: the run directory, the config, the input's fingerprint and the
+    run id; random numbers come from named streams of the config's seed."""
+
+    rundir: object
+    cfg: dict
+    fp: dict
+    run_id: str
+
+    def rng(self, stream):
+        return streams.rng(self.cfg["run"]["seed"], stream)
 
 
 SPECS = (
-    StageSpec("scan", ("input.*", "graph.neighbours"), True),
+    StageSpec("scan", ("input.*", "graph.neighbours"), True, reads=(), writes=("scan.info",)),
     StageSpec(
         "embed",
         (
@@ -33,16 +56,65 @@ SPECS = (
             "run.seed",
         ),
         True,
+        reads=("scan.info",),
+        writes=("embed.scores", "embed.protected", "embed.compare", "embed.embedding", "embed.info"),
     ),
-    StageSpec("graph", ("graph.*", "run.seed"), True),
-    StageSpec("order", ("solve.groups", "run.seed"), True),
+    StageSpec(
+        "graph",
+        ("graph.*", "run.seed"),
+        True,
+        reads=("embed.embedding",),
+        writes=("graph.neighbours", "graph.distances", "graph.weights", "graph.info"),
+    ),
+    StageSpec(
+        "order",
+        ("solve.groups", "run.seed"),
+        True,
+        reads=("embed.embedding", "graph.weights"),
+        writes=("order.perm", "order.groups", "order.split"),
+    ),
     # a warm start reads the output published at the time: not shareable then (see shareable())
-    StageSpec("solve", ("solve.*",), True),
+    StageSpec(
+        "solve",
+        ("solve.*",),
+        True,
+        reads=("embed.scores", "order.perm", "order.groups", "order.split", "graph.weights"),
+        writes=("solve.adjusted", "solve.info"),
+    ),
     # the audit's provenance names its own run; publishing writes this run's version
     StageSpec(
-        "audit", ("audit.*", "gates.*", "embed.leakage_warn_auc", "embed.probe_rows", "run.seed"), False
+        "audit",
+        ("audit.*", "gates.*", "embed.leakage_warn_auc", "embed.probe_rows", "run.seed"),
+        False,
+        reads=(
+            "scan.info",
+            "embed.scores",
+            "embed.protected",
+            "embed.compare",
+            "embed.embedding",
+            "embed.info",
+            "graph.neighbours",
+            "graph.distances",
+            "graph.weights",
+            "solve.adjusted",
+            "solve.info",
+        ),
+        writes=("audit.record", "audit.page", "publish.pending"),
     ),
-    StageSpec("publish", ("output.*",), False),
+    StageSpec(
+        "publish",
+        ("output.*",),
+        False,
+        reads=(
+            "scan.info",
+            "embed.scores",
+            "solve.adjusted",
+            "audit.record",
+            "audit.page",
+            "publish.pending",
+        ),
+        writes=(),
+    ),
 )
 BY_NAME = {s.name: s for s in SPECS}
 
@@ -76,3 +148,9 @@ def shareable(name, cfg):
     if name == "solve" and cfg["solve"]["warm_start"]:
         return False
     return BY_NAME[name].shareable
+
+
+def outputs_missing(name, rundir):
+    """The declared outputs of stage ``name`` that are not in ``rundir`` (a stage marked done whose
+    outputs are gone, e.g. deleted by hand, is done again)."""
+    return [k for k in BY_NAME[name].writes if not artifacts.CATALOGUE[k].exists(rundir)]

@@ -105,7 +105,9 @@ class _Outputs:
         self.items.clear()
 
 
-def run(rundir, cfg, fp):
+def run(ctx):
+    """The embed stage (see the module docstring)."""
+    rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
     inp, ecfg = cfg["input"], cfg["embed"]
     scan = art.SCAN_INFO.load(rundir)
     levels = scan["levels"]

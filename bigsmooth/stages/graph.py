@@ -11,7 +11,9 @@ from ..kernels import graph as gk
 log = logging.getLogger("bigsmooth.graph")
 
 
-def run(rundir, cfg):
+def run(ctx):
+    """The graph stage (see the module docstring)."""
+    rundir, cfg = ctx.rundir, ctx.cfg
     g = cfg["graph"]
     E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
     n = E.shape[0]

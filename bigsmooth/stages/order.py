@@ -87,7 +87,9 @@ def local_order(W, labels):
     return rcm[np.argsort(labels[rcm], kind="stable")]
 
 
-def run(rundir, cfg):
+def run(ctx):
+    """The order stage (see the module docstring)."""
+    rundir, cfg = ctx.rundir, ctx.cfg
     E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
     labels, groups = cluster_labels(
         E, cfg["solve"]["groups"], streams.seed_of(cfg["run"]["seed"], "order.kmeans")

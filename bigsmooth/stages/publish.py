@@ -122,7 +122,9 @@ def _refresh_audit(rundir, cfg, fp, version):
     return audit["provenance"]
 
 
-def run(rundir, cfg, fp, run_id):
+def run(ctx):
+    """The publish stage (see the module docstring)."""
+    rundir, cfg, fp, run_id = ctx.rundir, ctx.cfg, ctx.fp, ctx.run_id
     inp, out = cfg["input"], cfg["output"]
     root = out["path"]
     version = provenance.version_name(rundir, run_id)

@@ -183,7 +183,9 @@ def check_files(fp, inp):
         )
 
 
-def run(rundir, cfg, fp):
+def run(ctx):
+    """The scan stage (see the module docstring)."""
+    rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
     inp = cfg["input"]
     check_files(fp, inp)
     con = connect_budget(cfg["run"]["memory_mb"])

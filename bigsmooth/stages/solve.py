@@ -274,7 +274,9 @@ def _blocks(rundir, s, A, b, Y, perm, ck_path, X0):
     }
 
 
-def run(rundir, cfg):
+def run(ctx):
+    """The solve stage (see the module docstring)."""
+    rundir, cfg = ctx.rundir, ctx.cfg
     s = cfg["solve"]
     Y = art.EMBED_SCORES.load(rundir)
     n, c = Y.shape
