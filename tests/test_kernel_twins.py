@@ -1,0 +1,124 @@
+"""Every compiled (numba) kernel of bigsmooth.kernels._fast against its plain-Python twin
+(bigsmooth.kernels.twins.registry) on random input: same outputs in every buffer it fills.
+
+A new compiled kernel without a twin, or without inputs here, fails the walk. The twins themselves
+are obvious loops / numpy; the solver-level references (scipy's spsolve and CG) are in
+tests/test_sweepcg.py and tests/test_laplacian_solver.py.
+"""
+
+import numba
+import numpy as np
+import pytest
+import scipy.sparse as sp
+
+from bigsmooth.kernels import _fast, twins
+from conftest import random_graph
+
+
+def _compiled():
+    return sorted(name for name, f in vars(_fast).items() if isinstance(f, numba.core.registry.CPUDispatcher))
+
+
+def _graph(rng, n=300):
+    W = random_graph(n, 0.03, rng)
+    W.sort_indices()
+    return W
+
+
+def _split_inputs(rng, n=300, groups=4):
+    W = _graph(rng, n)
+    perm = rng.permutation(n).astype(np.int64)
+    pos = np.empty(n, np.int64)
+    pos[perm] = np.arange(n)
+    group = np.sort(rng.integers(0, groups, n)).astype(np.int64)
+    return W, perm, pos, group
+
+
+def _triplets(rng, n=300):
+    """Random L (lower), U (upper), O triplets of a split system: (ptr, ind, val) each."""
+    out = []
+    for part in (sp.tril(_graph(rng, n), -1), sp.triu(_graph(rng, n), 1), _graph(rng, n)):
+        m = sp.csr_matrix(part) * 0.05
+        m.sort_indices()
+        out.append((m.indptr.astype(np.int64), m.indices.astype(np.int64), m.data.copy()))
+    return out
+
+
+def _inputs(name, rng):
+    """(args, names of the arguments the kernel writes) for kernel ``name``."""
+    n, c = 300, 2
+    if name == "gauss_seidel_rows":
+        W = _graph(rng, n)
+        A = (sp.diags(np.asarray(W.sum(axis=1)).ravel() + 1.0) - W).tocsr()
+        A.sort_indices()
+        return [A.indptr, A.indices, A.data, rng.random((n, c)), rng.random((n, c)), 20, 250, 3], [4]
+    if name in ("backward_sweep", "forward_sweep", "update_sweep", "split_matvec", "split_residual_sq"):
+        (Lp, Li, Ld), (Up, Ui, Ud), (Op, Oi, Od) = _triplets(rng, n)
+        v = [rng.random((n, c)) for _ in range(4)]
+        if name == "backward_sweep":
+            return [Up, Ui, Ud, v[0], v[1], v[2], rng.random(c), 1.3, 10, 290], [4, 5]
+        if name == "forward_sweep":
+            return [Lp, Li, Ld, Op, Oi, Od, v[0], v[1], v[2], v[3], 1.3, 10, 290, np.zeros(c)], [8, 9, 13]
+        if name == "update_sweep":
+            return [v[0], v[1], v[2], v[3], rng.random(c), 10, 290, np.zeros(c)], [0, 1, 7]
+        if name == "split_matvec":
+            return [Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, v[0], np.zeros((n, c))], [10]
+        s = rng.uniform(0.5, 2.0, n)
+        return [Lp, Li, Ld, Up, Ui, Ud, Op, Oi, Od, s, v[0], v[1], 64, np.zeros(-(-n // 64))], [13]
+    if name == "split_counts":
+        W, perm, pos, group = _split_inputs(rng)
+        z = [np.zeros(n + 1, np.int64) for _ in range(3)]
+        return [W.indptr, W.indices, perm, pos, group, *z], [5, 6, 7]
+    if name == "split_fill":
+        W, perm, pos, group = _split_inputs(rng)
+        counts = [np.zeros(n + 1, np.int64) for _ in range(3)]
+        twins.split_counts(W.indptr, W.indices, perm, pos, group, *counts)
+        bufs = []
+        for cnt in counts:
+            ptr = np.cumsum(cnt)
+            bufs += [ptr, np.zeros(ptr[-1], np.int64), np.zeros(ptr[-1])]
+        return [W.indptr, W.indices, W.data, perm, pos, group, *bufs, np.zeros(n)], [7, 8, 10, 11, 13, 14, 15]
+    if name == "scale_triplet":
+        W = _graph(rng, n)
+        return [W.indptr, W.indices, W.data, rng.uniform(0.5, 2.0, n), 3.0, np.zeros(W.nnz)], [5]
+    if name == "inside_edges":
+        W = _graph(rng, n)
+        label = rng.integers(0, 3, n).astype(np.int64)
+        ptr = np.zeros(n + 1, np.int64)
+        twins.inside_edges(W.indptr, W.indices, label, True, ptr, np.zeros(0, np.int64))
+        ptr = np.cumsum(ptr)
+        counts = [W.indptr, W.indices, label, True, np.zeros(n + 1, np.int64), np.zeros(0, np.int64)]
+        return (
+            "two calls",
+            counts,
+            [W.indptr, W.indices, label, False, ptr, np.zeros(ptr[-1], np.int64)],
+        ), None
+    raise KeyError(name)
+
+
+def _copy(args):
+    return [a.copy() if isinstance(a, np.ndarray) else a for a in args]
+
+
+def test_every_compiled_kernel_has_a_twin():
+    reg = twins.registry()
+    assert set(_compiled()) == set(reg), set(_compiled()) ^ set(reg)
+
+
+@pytest.mark.parametrize("name", [k for k, v in twins.registry().items() if v is not None])
+def test_compiled_kernel_equals_its_twin(name, rng):
+    fast, slow = getattr(_fast, name), twins.registry()[name]
+    args, outs = _inputs(name, rng)
+    if isinstance(args, tuple) and args[0] == "two calls":
+        for call in args[1:]:
+            a, b = _copy(call), _copy(call)
+            fast(*a)
+            slow(*b)
+            np.testing.assert_array_equal(a[4], b[4])
+            np.testing.assert_array_equal(a[5], b[5])
+        return
+    a, b = _copy(args), _copy(args)
+    fast(*a)
+    slow(*b)
+    for k in outs:
+        np.testing.assert_allclose(a[k], b[k], rtol=1e-12, atol=1e-12, err_msg=f"{name}: argument {k}")
