@@ -259,7 +259,7 @@ def cmd_report(args):
         raise InputMissingError(
             f"{args.run_dir} has no audit yet (the audit stage has not finished); run the job first"
         )
-    cfg = load_config(args.config or rd.load()["config_path"])
+    cfg = load_config(args.config or rd.config_path())
     report.write(rd, cfg, art.AUDIT_REPORT_JSON.load(rd))
     print(f"report: {art.AUDIT_REPORT_HTML.path(rd)}")
     return EXIT_OK

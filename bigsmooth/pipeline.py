@@ -10,9 +10,9 @@ from . import artifacts
 from . import config as config_mod
 from .atomic import read_json
 from .errors import DataError, GateError, InputMissingError, OutputError
-from .rundir import STAGES, RunDir, find_stage, hold_lock, run_id
+from .rundir import STAGES, RunDir, find_stage, hold_lock, relative_roots, run_id
 from .stages import base as stage_base
-from .table import changed_files, fingerprint, unreadable_files, verify_unchanged
+from .table import changed_files, fingerprint, portable, unreadable_files, verify_unchanged
 
 log = logging.getLogger("bigsmooth.run")
 
@@ -259,7 +259,7 @@ def run_job(config_path, fresh=False, upto=None, then=None):
         if rd.exists():
             m = rd.load()
             if rd.all_done() and upto is None:
-                out = m["stages"]["publish"]["summary"]["path"]
+                out = os.path.join(cfg["output"]["path"], m["stages"]["publish"]["summary"]["version"])
                 if os.path.isdir(out):
                     log.info(
                         "run %s is already complete (same config and input); nothing to do. Output: %s",
@@ -280,9 +280,18 @@ def run_job(config_path, fresh=False, upto=None, then=None):
                 {
                     "run_id": rid,
                     "config_hash": chash,
-                    "config_path": os.path.abspath(config_path),
+                    # the config, input and output folders relative to run.dir, and input files
+                    # relative to the input folder: the run directory can be read where the same
+                    # storage is mounted elsewhere (RunDir.root resolves them)
+                    "roots": relative_roots(
+                        cfg["run"]["dir"],
+                        config=os.path.dirname(os.path.abspath(config_path)),
+                        input=fp["root"],
+                        output=cfg["output"]["path"],
+                    ),
+                    "config_file": os.path.basename(config_path),
                     "settings": config_mod.result_settings(cfg),
-                    "input": fp,
+                    "input": portable(fp),
                 }
             )
             log.info("new run %s: %d rows in %d files", rid, fp["rows"], len(fp["files"]))
@@ -293,6 +302,6 @@ def run_job(config_path, fresh=False, upto=None, then=None):
             run_stages(ctx, upto=upto, fresh=fresh)
             if upto is not None:
                 return {"run_dir": rd.path, "run_id": rid, "then": then(rd, cfg) if then else None}
-        out = rd.summary("publish")["path"]
+        out = os.path.join(cfg["output"]["path"], rd.summary("publish")["version"])
         _check_gates(rd, cfg, before_publish=False)
         return {"run_dir": rd.path, "run_id": rid, "already_complete": False, "output": out}

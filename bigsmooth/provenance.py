@@ -34,10 +34,11 @@ def status_of(gates, on_fail):
     return ("held" if failed and on_fail == "hold" else "published"), failed
 
 
-def record(manifest, cfg, fp, version, gates):
+def record(rundir, cfg, fp, version, gates):
     """The provenance record of a run's audit and output."""
+    manifest = rundir.load()
     status, failed = status_of(gates, cfg["gates"]["on_fail"])
-    cfg_path = manifest.get("config_path", "")
+    cfg_path = rundir.config_path(manifest)
     try:
         cfg_sha = file_sha256(cfg_path)
     except OSError:

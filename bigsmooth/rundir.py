@@ -135,6 +135,17 @@ class RunDir:
         self.save(m)
         return True
 
+    def root(self, name, manifest=None):
+        """A declared root (``config``, ``input``, ``output``) as seen from where this run directory
+        is now: the manifest records it relative to the folder that holds the run directories."""
+        m = manifest or self.load()
+        return os.path.normpath(os.path.join(os.path.dirname(os.path.abspath(self.path)), m["roots"][name]))
+
+    def config_path(self, manifest=None):
+        """The config file the run was made with."""
+        m = manifest or self.load()
+        return os.path.join(self.root("config", m), m["config_file"])
+
     def lock(self):
         """Hold an exclusive fcntl lock on the run for the whole block; fail at once if held."""
         return hold_lock(self.path, f"run {self.path}")
@@ -165,6 +176,12 @@ def hold_lock(folder, what):
         yield
     finally:
         os.close(fd)
+
+
+def relative_roots(run_root, **roots):
+    """{name: path relative to ``run_root``} (see :meth:`RunDir.root`)."""
+    base = os.path.abspath(run_root)
+    return {k: os.path.relpath(os.path.abspath(v), base) for k, v in roots.items()}
 
 
 def _link_or_copy(src, dst):

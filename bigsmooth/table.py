@@ -164,10 +164,25 @@ def id_digests(con, fp, id_col):
     return {path: str(d) for path, d in rows}
 
 
+def portable(fp):
+    """The fingerprint with each file's path relative to the input root (as stored in a run's
+    manifest, so that a host that mounts the input elsewhere can read it): ``rel`` instead of ``path``."""
+    files = [
+        {**{k: v for k, v in e.items() if k != "path"}, "rel": os.path.relpath(e["path"], fp["root"])}
+        for e in fp["files"]
+    ]
+    return {**fp, "files": files}
+
+
+def _rel(entry, root):
+    return entry["rel"] if "rel" in entry else os.path.relpath(entry["path"], root)
+
+
 def changed_files(old, new):
-    """Lines saying which input files differ between two fingerprints (added, removed, changed)."""
-    a = {e["path"]: e for e in old["files"]}
-    b = {e["path"]: e for e in new["files"]}
+    """Lines saying which input files differ between two fingerprints (added, removed, changed);
+    files are matched by their path relative to the input root."""
+    a = {_rel(e, old["root"]): e for e in old["files"]}
+    b = {_rel(e, new["root"]): e for e in new["files"]}
     lines = [f"added:   {p}" for p in sorted(set(b) - set(a))]
     lines += [f"removed: {p}" for p in sorted(set(a) - set(b))]
     for p in sorted(set(a) & set(b)):

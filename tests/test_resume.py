@@ -275,7 +275,7 @@ def test_warm_start_from_last_nights_output(source, tmp_path):
         run_dir = [
             p
             for p in (tmp_path / "runs").iterdir()
-            if json.loads((p / "manifest.json").read_text())["config_path"] == str(c)
+            if json.loads((p / "manifest.json").read_text())["config_file"] == c.name
         ][0]
         results[name] = (
             tab.column("sustain_score_adjusted").to_numpy(),

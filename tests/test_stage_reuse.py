@@ -111,3 +111,25 @@ def test_tune_then_run_with_the_recommended_lam_does_not_rebuild_the_graph(tmp_p
         "stage graph: reusing the outputs of run " + tuned in res.stderr
         and "stage graph done" not in res.stderr
     )
+
+
+def test_a_run_directory_moved_with_its_neighbours_can_still_be_read(tmp_path):
+    # the manifest keeps the config, input and output folders relative to run.dir and the input
+    # files relative to the input folder: the tree mounted under another path is still readable
+    import shutil
+
+    a = tmp_path / "a"
+    a.mkdir()
+    cfg = _write_case(a, _small_table(300, seed=34), "\n[gates]\nmax_auc_drop = 1.0\n")
+    assert cli("run", str(cfg)).returncode == 0
+    m = next(iter(_manifests(a / "runs").values()))
+    assert not any(os.path.isabs(v) for v in m["roots"].values())
+    assert not any("path" in e for e in m["input"]["files"])
+    shutil.move(str(a), str(tmp_path / "b"))
+    (run_dir,) = list((tmp_path / "b" / "runs").iterdir())
+    res = cli("status", str(run_dir))
+    assert res.returncode == 0 and "publish   done" in res.stdout
+    res = cli("report", str(run_dir))  # finds the config through the relative root
+    assert res.returncode == 0, res.stderr[-2000:]
+    prov = json.loads((run_dir / "audit" / "audit.json").read_text())["provenance"]
+    assert prov["config_path"] == str(tmp_path / "a" / "job.toml")  # as written when it ran

@@ -284,12 +284,12 @@ def counterfactual_figures(W, y, f, ycf, s, rate, rows, tol):
     }
 
 
-def pair_figures(rundir, cfg, y, f, rate):
+def pair_figures(fp, cfg, y, f, rate):
     """Same decision at the quantile cutoff for both rows of each comparable pair (input.pairs)."""
     from ..table import ROW, Source, connect_budget, quote
 
     con = connect_budget(cfg["run"]["memory_mb"])
-    src = Source(con, rundir.load()["input"])
+    src = Source(con, fp)
     idq = quote(cfg["input"]["id"])
     t = src.fetch_arrow(
         con,
@@ -470,7 +470,7 @@ def run(ctx):
         counterfactual = counterfactual_figures(
             W, y, f, other[:, -1], cfg["solve"], rate, rows, tol=a["counterfactual_tol"]
         )
-    pairs_fig = pair_figures(rundir, cfg, y, f, rate) if inp["pairs"] else None
+    pairs_fig = pair_figures(fp, cfg, y, f, rate) if inp["pairs"] else None
     if inp["compare_scores"]:
         for j, c in enumerate(inp["compare_scores"]):
             fig, sel = figures(other[:, j], W, nb, dist, pairs, labels, rate, constant, lo, hi)
@@ -660,9 +660,8 @@ def run(ctx):
             },
         }
     report["gates"] = check_gates(report, cfg["gates"])
-    manifest = rundir.load()
-    version = provenance.version_name(rundir, manifest["run_id"])
-    report["provenance"] = provenance.record(manifest, cfg, fp, version, report["gates"])
+    version = provenance.version_name(rundir, ctx.run_id)
+    report["provenance"] = provenance.record(rundir, cfg, fp, version, report["gates"])
     art.AUDIT_REPORT_JSON.save(rundir, report)
     from . import report as html_report
 

@@ -116,7 +116,7 @@ def _refresh_audit(rundir, cfg, fp, version):
     from . import report as html_report
 
     audit = art.AUDIT_REPORT_JSON.load(rundir)
-    audit["provenance"] = provenance.record(rundir.load(), cfg, fp, version, audit["gates"])
+    audit["provenance"] = provenance.record(rundir, cfg, fp, version, audit["gates"])
     art.AUDIT_REPORT_JSON.save(rundir, audit)
     html_report.write(rundir, cfg, audit)
     return audit["provenance"]
@@ -136,7 +136,7 @@ def run(ctx):
         if os.path.isdir(final):
             log.info("the version folder %s was completed before an interruption; moving the pointers", final)
             _move_pointers(root, version, run_id, fp["rows"])
-            return {"version": version, "path": final, "rows": fp["rows"], "files": len(fp["files"])}
+            return {"version": version, "rows": fp["rows"], "files": len(fp["files"])}
     except OSError as exc:
         raise OutputError(f"cannot write the output under {root}: {exc}") from None
     Y = art.EMBED_SCORES.load(rundir, mmap=True)
@@ -188,4 +188,4 @@ def run(ctx):
     except OSError as exc:
         raise OutputError(f"cannot move the output pointers under {root} to {version}: {exc}") from None
     log.info("published %d rows to %s", written, final)
-    return {"version": version, "path": final, "rows": written, "files": len(fp["files"])}
+    return {"version": version, "rows": written, "files": len(fp["files"])}

@@ -48,7 +48,7 @@ def save_checkpoint(path, **arrays):
         faults.point("checkpoint:write")
 
 
-def previous_scores(rundir, cfg, Y):
+def previous_scores(rundir, cfg, fp, Y):
     """The warm-start iterate: the adjusted scores currently published in output.path for ids in
     both tables, the raw score for the others. Returns (X0, record)."""
     import glob
@@ -66,7 +66,7 @@ def previous_scores(rundir, cfg, Y):
     version = read_json(pointer)["version"]
     files = sorted(glob.glob(os.path.join(out["path"], version, "**", "*.parquet"), recursive=True))
     con = connect_budget(cfg["run"]["memory_mb"])
-    src = Source(con, rundir.load()["input"])
+    src = Source(con, fp)
     idq = quote(inp["id"])
     adj = [quote(c + out["suffix"]) for c in inp["scores"]]
     try:
@@ -319,7 +319,7 @@ def run(ctx):
             if art.SOLVE_X0.exists(rundir) and art.SOLVE_X0_INFO.exists(rundir):
                 X0, info["warm_start"] = art.SOLVE_X0.load(rundir), art.SOLVE_X0_INFO.load(rundir)
             else:
-                X0, info["warm_start"] = previous_scores(rundir, cfg, Y)
+                X0, info["warm_start"] = previous_scores(rundir, cfg, ctx.fp, Y)
                 art.SOLVE_X0.save(rundir, X0)
                 art.SOLVE_X0_INFO.save(rundir, info["warm_start"])
         if s["method"] == "sweep-cg":
