@@ -153,7 +153,7 @@ def test_random_graph_control_matches_an_explicit_solve(rng):
     from scipy.sparse.csgraph import laplacian as cs_laplacian
     from scipy.sparse.linalg import spsolve
 
-    from bigsmooth.stages.audit import RandomRegularGraph, random_graph_control
+    from bigsmooth.kernels.audit_figures import RandomRegularGraph, random_graph_control
 
     R = RandomRegularGraph(300, 3, 0.5, np.random.default_rng(1))
     M = R.matrix()
@@ -177,7 +177,7 @@ def test_random_graph_control_is_matched_in_spread(rng):
     from scipy.sparse.csgraph import laplacian as cs_laplacian
     from scipy.sparse.linalg import spsolve
 
-    from bigsmooth.stages.audit import RandomRegularGraph, random_graph_control
+    from bigsmooth.kernels.audit_figures import RandomRegularGraph, random_graph_control
 
     M = RandomRegularGraph(400, 4, 0.7, np.random.default_rng(2)).matrix()
     y = rng.random(400)
@@ -231,7 +231,7 @@ def test_counterfactual_after_is_the_exact_single_row_rerun(rng):
     from scipy.sparse.linalg import spsolve
 
     from bigsmooth.kernels import laplacian, metrics
-    from bigsmooth.stages.audit import counterfactual_figures
+    from bigsmooth.kernels.audit_figures import counterfactual_figures
 
     W = laplacian.as_weight_matrix(random_graph(120, 0.06, rng))
     y = rng.random(120)
