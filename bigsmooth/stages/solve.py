@@ -16,6 +16,7 @@ from it and reaches the same bits as an uninterrupted run.
 import contextlib
 import logging
 import os
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -124,18 +125,39 @@ def workers_for(s):
     return max(1, min(w, s["groups"]))
 
 
-def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
+@dataclass
+class Problem:
+    """One solve: (C + lam L) f = C y in input row order, with the settings of [solve].
+
+    ``Y`` raw scores (n, c); ``cvec`` the diagonal of C (n,); ``b`` = cvec * Y; ``perm`` the order
+    stage's row order; ``X0`` the start (raw scores, or last night's for a warm start); ``cold``
+    whether the start is the raw scores (then scaled, see sweepcg.scaled_start); ``ck_path`` the
+    checkpoint file."""
+
+    rundir: object
+    s: dict
+    Y: np.ndarray
+    cvec: np.ndarray
+    b: np.ndarray
+    perm: np.ndarray
+    X0: np.ndarray
+    cold: bool
+    ck_path: str
+
+
+def _sweep_cg(pb):
     """The default solver on the order stage's split graph. The scaled system is written to
     memory-mapped files in solve/system (its pages are the kernel's to evict), so the process holds
     only O(n) vectors plus the pages the sweeps are reading."""
-    n, c = b.shape
+    rundir, s, perm = pb.rundir, pb.s, pb.perm
+    n, c = pb.b.shape
     split = art.load_split(rundir)
     art.SOLVE_SYSTEM.folder(rundir)
 
     def alloc(name, size, dtype):
         return atomic.new_memmap(art.SOLVE_SYSTEM.path(rundir, name), dtype, (size,))
 
-    system = sweepcg.scale_split(split, s["lam"], cvec[perm], alloc=alloc)
+    system = sweepcg.scale_split(split, s["lam"], pb.cvec[perm], alloc=alloc)
     bounds = split.bounds
     with contextlib.ExitStack() as stack:
         if s["backend"] == "processes":
@@ -145,11 +167,11 @@ def _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold):
             )
         else:
             work = sweepcg.Work.allocate(n, c)
-        return _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
+        return _sweep_cg_on(pb, system, bounds, work)
 
 
-def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work):
-    n, c = b.shape
+def _sweep_cg_on(pb, system, bounds, work):
+    s, b, Y, perm, ck_path, X0 = pb.s, pb.b, pb.Y, pb.perm, pb.ck_path, pb.X0
     ck = load_checkpoint(ck_path)
     state = None
     if ck is not None and ck.get("method") is not None and str(ck["method"]) == "sweep-cg":
@@ -198,7 +220,7 @@ def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
             tol=s["tol"],
             max_sweeps=s["max_sweeps"],
             omega=s["relaxation"],
-            scale_start=cold,
+            scale_start=pb.cold,
             executor=executor,
             work=work,
             state=state,
@@ -226,7 +248,8 @@ def _sweep_cg_on(rundir, s, b, Y, perm, ck_path, X0, cold, system, bounds, work)
     return res.x, info
 
 
-def _blocks(rundir, s, A, b, Y, perm, ck_path, X0):
+def _blocks(pb, A):
+    s, b, perm, ck_path, X0 = pb.s, pb.b, pb.perm, pb.ck_path, pb.X0
     Ap = A[perm][:, perm].tocsr()
     Ap.sort_indices()
     ck = load_checkpoint(ck_path)
@@ -326,10 +349,10 @@ def run(ctx):
             # decided from the warm-start record, not from X0's identity: a resumed run reads X0
             # back from solve/x0.npy
             cold = not info.get("warm_start", {}).get("used", False)
-            Xp, more = _sweep_cg(rundir, s, cvec, b, Y, perm, ck_path, X0, cold)
+            Xp, more = _sweep_cg(Problem(rundir, s, Y, cvec, b, perm, X0, cold, ck_path))
         else:
             A, _ = laplacian.system(W, s["lam"], s["laplacian"])
-            Xp, more = _blocks(rundir, s, A, b, Y, perm, ck_path, X0)
+            Xp, more = _blocks(Problem(rundir, s, Y, cvec, b, perm, X0, False, ck_path), A)
         info.update(more)
         F = np.empty_like(Xp)
         F[perm] = Xp
