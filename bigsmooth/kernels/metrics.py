@@ -116,14 +116,6 @@ def consistency(decisions, neighbours, rows=None):
     return float(1.0 - np.mean(np.abs(own - d[neighbours].mean(axis=1))))
 
 
-def lipschitz_violations(f, a, b, dist, constant):
-    """Share of pairs (a[q], b[q]) with |f_a - f_b| > constant * dist[q]."""
-    f = np.asarray(f, dtype=np.float64)
-    return (
-        float(np.mean(np.abs(f[a] - f[b]) > constant * np.asarray(dist, dtype=np.float64))) if len(a) else 0.0
-    )
-
-
 def same_group_share(codes, neighbours, rows=None):
     """Share of neighbour pairs whose two rows are in the same group, and the share expected under
     random mixing (sum of squared group shares). ``neighbours[i]`` belongs to row ``rows[i]``

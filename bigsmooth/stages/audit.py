@@ -10,7 +10,7 @@ import logging
 import numpy as np
 
 from .. import artifacts as art
-from .. import provenance, streams
+from .. import provenance
 from ..kernels import metrics
 from ..kernels.audit_figures import (
     CHUNK,
@@ -207,7 +207,7 @@ def run(ctx):
     rate, min_rows = a["select_rate"], a["min_group_rows"]
     lo, hi = inp["score_range"]
     nb, dist = _knn(rundir)
-    rng = streams.rng(cfg["run"]["seed"], "audit.pairs")
+    rng = ctx.rng("audit.pairs")
     pairs = random_pairs(E, a["pair_sample"], rng)
     y, f = Y[:, 0], F[:, 0]
     constant = a["lipschitz"] or auto_lipschitz(y, nb, dist, rng)
@@ -226,7 +226,7 @@ def run(ctx):
     other = art.EMBED_COMPARE.load(rundir)
     counterfactual = None
     if inp["counterfactual_score"]:
-        rows = _sample(n, a["counterfactual_rows"], streams.rng(cfg["run"]["seed"], "audit.counterfactual"))
+        rows = _sample(n, a["counterfactual_rows"], ctx.rng("audit.counterfactual"))
         counterfactual = counterfactual_figures(
             W, y, f, other[:, -1], cfg["solve"], rate, rows, tol=a["counterfactual_tol"]
         )
@@ -252,7 +252,7 @@ def run(ctx):
             s["lam"],
             s["laplacian"],
             s["tol"],
-            streams.rng(cfg["run"]["seed"], "audit.random_graph"),
+            ctx.rng("audit.random_graph"),
             target_sd=sd_f,
         )
         control_notes = {"shrink_to_mean": {"sd": float(shrunk.std()), "matched": True}, "random_graph": rec}
@@ -264,7 +264,7 @@ def run(ctx):
             }
             fig["spread_matched"] = control_notes[name]["matched"]
             controls[name] = fig
-    probe_rows = _sample(n, cfg["embed"]["probe_rows"], streams.rng(cfg["run"]["seed"], "audit.vote_sample"))
+    probe_rows = _sample(n, cfg["embed"]["probe_rows"], ctx.rng("audit.vote_sample"))
     vote = neighbour_vote_leakage(codes, levels, inp["protected"], nb, probe_rows)
     warn_auc = cfg["embed"]["leakage_warn_auc"]
     groups = {}

@@ -16,7 +16,7 @@ import pyarrow.compute as pc
 import scipy.sparse as sp
 
 from .. import artifacts as art
-from .. import atomic, faults, streams
+from .. import atomic, faults
 from ..errors import DataError
 from ..kernels import fairspace
 from ..kernels.metrics import roc_auc
@@ -183,7 +183,7 @@ def run(ctx):
         )
     E = out.open(art.EMBED_EMBEDDING.path(rundir), (n, dim), np.float32)
 
-    rng = streams.rng(cfg["run"]["seed"], "embed.probe_sample")
+    rng = ctx.rng("embed.probe_sample")
     sample = np.sort(rng.choice(n, size=min(n, ecfg["probe_rows"]), replace=False))
     raw_sample = np.zeros((len(sample), p))
     seen = 0
@@ -210,12 +210,8 @@ def run(ctx):
         per_level = {}
         for li, lv in enumerate(prot_levels[c]):
             t = (code_sample[:, j] == li).astype(float)
-            before = fairspace.linear_probe_auc(
-                raw_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc
-            )
-            after = fairspace.linear_probe_auc(
-                fair_sample, t, streams.rng(cfg["run"]["seed"], "embed.linear_probe"), roc_auc
-            )
+            before = fairspace.linear_probe_auc(raw_sample, t, ctx.rng("embed.linear_probe"), roc_auc)
+            after = fairspace.linear_probe_auc(fair_sample, t, ctx.rng("embed.linear_probe"), roc_auc)
             per_level[lv] = {"features_auc": before, "fair_space_auc": after}
         worst = max(
             (v["fair_space_auc"] for v in per_level.values() if np.isfinite(v["fair_space_auc"])),

@@ -20,6 +20,7 @@ import numpy as np
 
 from .. import artifacts as art
 from .. import provenance
+from .audit import CAUTION, gates_line
 
 # (key, label, definition, which direction is better)
 FIGURES = (
@@ -105,15 +106,9 @@ FOUR_FIFTHS_CAUTION = (
 )
 PROTECTED_CAUTION = "Processing protected attributes needs its own lawful basis and a data-protection review."
 FLIP_CAUTION = "People whose decision flips may need notice, an explanation or human review."
-CAUTIONS = (
-    "Post-processing changes decisions about people. These figures describe what the smoothing did to this "
-    "table; they are no proof of legal compliance. Defer to local law, your compliance function and counsel.",
-    FOUR_FIFTHS_CAUTION,
-    PROTECTED_CAUTION,
-    FLIP_CAUTION,
-    "The protected attributes are used only to define what the similarity measure must ignore and to audit "
-    "the result; they are not used to set anyone's score.",
-)
+# the audit's own caution (in _audit.json and the CLI summary) first, then the ones that also stand
+# beside the figures they qualify
+CAUTIONS = (CAUTION, FOUR_FIFTHS_CAUTION, PROTECTED_CAUTION, FLIP_CAUTION)
 
 
 def _png(fig):
@@ -289,8 +284,6 @@ def render(report, plots, tune=None, applied_lam=None):
             f"<li>Comparable pairs ({pr['pairs_found']:,} of {pr['pairs']:,} found): same decision "
             f"{fmt(pr['same_decision_before'])} {ARROW} {fmt(pr['same_decision_after'])}.</li>"
         )
-    from .audit import gates_line
-
     summ.append(f"<li>Gates: {e(gates_line(gates))}.<ul>")
     summ += [
         f"<li class='gate {g['state']}'><b>{e(g['state'].upper() if g['state'] == 'failed' else g['state'])}"

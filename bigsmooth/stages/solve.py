@@ -35,13 +35,6 @@ def _fast_gs():
     return gauss_seidel_rows
 
 
-def load_checkpoint(path):
-    if not os.path.exists(path):
-        return None
-    with np.load(path) as z:
-        return {k: z[k] for k in z.files}
-
-
 def save_checkpoint(path, **arrays):
     with atomic.atomic_path(path) as tmp:
         with open(tmp, "wb") as fh:
@@ -172,7 +165,7 @@ def _sweep_cg(pb):
 
 def _sweep_cg_on(pb, system, bounds, work):
     s, b, Y, perm, ck_path, X0 = pb.s, pb.b, pb.Y, pb.perm, pb.ck_path, pb.X0
-    ck = load_checkpoint(ck_path)
+    ck = art.SOLVE_CHECKPOINT.load(pb.rundir) if art.SOLVE_CHECKPOINT.exists(pb.rundir) else None
     state = None
     if ck is not None and ck.get("method") is not None and str(ck["method"]) == "sweep-cg":
         work.x[:], work.r[:], work.p[:] = ck["x"], ck["r"], ck["p"]
@@ -252,7 +245,7 @@ def _blocks(pb, A):
     s, b, perm, ck_path, X0 = pb.s, pb.b, pb.perm, pb.ck_path, pb.X0
     Ap = A[perm][:, perm].tocsr()
     Ap.sort_indices()
-    ck = load_checkpoint(ck_path)
+    ck = art.SOLVE_CHECKPOINT.load(pb.rundir) if art.SOLVE_CHECKPOINT.exists(pb.rundir) else None
     if ck is not None and str(ck.get("method", "")) == "blocks":
         x0, start, record = ck["x"], int(ck["sweep"]), ck["residuals"].tolist()
         log.info("resuming the solver from the checkpoint after sweep %d (residual %.3g)", start, record[-1])
