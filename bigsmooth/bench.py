@@ -101,7 +101,9 @@ def _warm_worker(pause):
     from .kernels import _fast
 
     t = np.zeros((1, 1))
-    _fast.update_sweep(t, t.copy(), t.copy(), t.copy(), np.zeros(1), 0, 1, np.zeros(1))
+    _fast.update_sweep(
+        x=t, r=t.copy(), t=t.copy(), ap=t.copy(), alpha=np.zeros(1), start=0, stop=1, rr=np.zeros(1)
+    )
     time.sleep(pause)
 
 

@@ -58,10 +58,10 @@ def local_order(W, labels):
     n = W.shape[0]
     ptr = np.zeros(n + 1, dtype=np.int64)
     none = np.empty(0, dtype=np.int32)
-    _fast.inside_edges(W.indptr, W.indices, labels, True, ptr, none)
+    _fast.inside_edges(indptr=W.indptr, indices=W.indices, label=labels, counts_only=True, ptr=ptr, out=none)
     np.cumsum(ptr, out=ptr)
     ind = np.empty(int(ptr[-1]), dtype=np.int32)
-    _fast.inside_edges(W.indptr, W.indices, labels, False, ptr, ind)
+    _fast.inside_edges(indptr=W.indptr, indices=W.indices, label=labels, counts_only=False, ptr=ptr, out=ind)
     inner = sp.csr_matrix((np.ones(len(ind), dtype=np.int8), ind, ptr), shape=(n, n))
     rcm = reverse_cuthill_mckee(inner, symmetric_mode=True).astype(np.int64)
     del inner, ind

@@ -167,7 +167,16 @@ def block_coordinate_descent(
                 rhs = B[s:e] - blk.off @ X
                 X[s:e] = blk.lu.solve(rhs)
             else:
-                gs(A.indptr, A.indices, A.data, B, X, s, e, inner_sweeps)
+                gs(
+                    indptr=A.indptr,
+                    indices=A.indices,
+                    data=A.data,
+                    b=B,
+                    x=X,
+                    start=s,
+                    stop=e,
+                    sweeps=inner_sweeps,
+                )
         sweep += 1
         residuals.append(relative_residual(A, B, X))
         if on_sweep is not None and on_sweep(sweep, X.reshape(b.shape), residuals) is False:

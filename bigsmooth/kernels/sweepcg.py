@@ -42,6 +42,15 @@ import scipy.sparse as sp
 from .solver import STATUS_CONVERGED, STATUS_MAX_SWEEPS, STATUS_STOPPED  # noqa: E402
 
 
+def triplet_kwargs(last="d", **triplets):
+    """Keyword arguments for the kernels that take CSR triplets: ``triplet_kwargs(L=(p, i, d))`` is
+    ``{"Lp": p, "Li": i, "Ld": d}`` (``last`` names the values: "d" scaled data, "w" raw weights)."""
+    out = {}
+    for name, (ptr, ind, val) in triplets.items():
+        out.update({f"{name}p": ptr, f"{name}i": ind, f"{name}{last}": val})
+    return out
+
+
 # ---- Python references of the compiled kernels in bigsmooth.kernels._fast (same signatures) ----
 
 
@@ -109,7 +118,7 @@ class Grouped:
             from . import _fast
 
             out = np.empty_like(y)
-            _fast.split_matvec(*self.L, *self.U, *self.O, y, out)
+            _fast.split_matvec(**triplet_kwargs(L=self.L, U=self.U, O=self.O), y=y, out=out)
         else:
             out = y.copy()
             for M in self.matrices():
@@ -128,7 +137,14 @@ class Grouped:
         from . import _fast
 
         parts = np.zeros(-(-self.n // RESIDUAL_CHUNK))
-        _fast.split_residual_sq(*self.L, *self.U, *self.O, self.s, xs, b, RESIDUAL_CHUNK, parts)
+        _fast.split_residual_sq(
+            **triplet_kwargs(L=self.L, U=self.U, O=self.O),
+            s=self.s,
+            xs=xs,
+            b=b,
+            chunk=RESIDUAL_CHUNK,
+            parts=parts,
+        )
         return float(np.sqrt(np.sum(parts)))
 
 
@@ -211,7 +227,16 @@ def split_graph(W, perm, bounds, alloc=None):
     ptrs = [alloc(f"{name}-indptr", n + 1, np.uint64) for name in "LUO"]
     for p in ptrs:
         p[0] = 0
-    _fast.split_counts(W.indptr, W.indices, perm, pos, group, *ptrs)
+    _fast.split_counts(
+        indptr=W.indptr,
+        indices=W.indices,
+        perm=perm,
+        pos=pos,
+        group=group,
+        Lc=ptrs[0],
+        Uc=ptrs[1],
+        Oc=ptrs[2],
+    )
     for p in ptrs:
         np.cumsum(p, out=p)
     parts = [
@@ -219,7 +244,16 @@ def split_graph(W, perm, bounds, alloc=None):
         for name, p in zip("LUO", ptrs)
     ]
     degree = alloc("degree", n, np.float64)
-    _fast.split_fill(W.indptr, W.indices, W.data, perm, pos, group, *parts[0], *parts[1], *parts[2], degree)
+    _fast.split_fill(
+        indptr=W.indptr,
+        indices=W.indices,
+        data=W.data,
+        perm=perm,
+        pos=pos,
+        group=group,
+        **triplet_kwargs("w", L=parts[0], U=parts[1], O=parts[2]),
+        degree=degree,
+    )
     return SplitGraph(degree, bounds, *parts)
 
 
@@ -235,7 +269,7 @@ def scale_split(split, lam, c, alloc=None):
     parts = []
     for name, (ptr, ind, w) in zip("LUO", (split.L, split.U, split.O)):
         out = alloc(f"{name}-data", len(w), np.float64)
-        _fast.scale_triplet(ptr, ind, w, s, float(lam), out)
+        _fast.scale_triplet(ptr=ptr, ind=ind, w=w, s=s, lam=float(lam), out=out)
         parts.append((ptr, ind, out))
     return Grouped(s, split.bounds, *parts)
 
@@ -251,18 +285,20 @@ def prepare_from_graph(W, lam, c, perm, bounds, alloc=None):
 
 
 def _phase1(kern, U, r, p, t, beta, omega, start, stop):
-    kern["backward"](U[0], U[1], U[2], r, p, t, beta, omega, start, stop)
+    kern["backward"](**triplet_kwargs(U=U), r=r, p=p, t=t, beta=beta, omega=omega, start=start, stop=stop)
 
 
 def _phase2(kern, L, O, p, t, w, ap, omega, start, stop):
     pap = np.zeros(p.shape[1])
-    kern["forward"](L[0], L[1], L[2], O[0], O[1], O[2], p, t, w, ap, omega, start, stop, pap)
+    kern["forward"](
+        **triplet_kwargs(L=L, O=O), p=p, t=t, w=w, ap=ap, omega=omega, start=start, stop=stop, pap=pap
+    )
     return pap
 
 
 def _phase3(kern, x, r, t, ap, alpha, start, stop):
     rr = np.zeros(x.shape[1])
-    kern["update"](x, r, t, ap, alpha, start, stop, rr)
+    kern["update"](x=x, r=r, t=t, ap=ap, alpha=alpha, start=start, stop=stop, rr=rr)
     return rr
 
 
