@@ -225,7 +225,7 @@ def run_stages(ctx, upto=None, fresh=False):
             if name in READS_INPUT:
                 verify_unchanged(fp, f"before stage {name}")
             try:
-                record.update(_reading(name, fp, lambda: spec.module().run(ctx)))
+                record.update(_reading(name, fp, lambda: spec.module().run(ctx.for_stage(name))))
             except OSError as exc:
                 raise os_error(exc, name, rd, cfg, fp) from None
 

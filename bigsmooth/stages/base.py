@@ -9,10 +9,11 @@ run's outputs of those stages instead of computing them again (see :func:`bigsmo
 
 import hashlib
 import json
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
 
 from .. import artifacts, streams
-from ..config import RULES
+from ..config import RULES, result_settings
 
 
 @dataclass(frozen=True)
@@ -30,15 +31,71 @@ class StageSpec:
         return importlib.import_module(f"bigsmooth.stages.{self.name}")
 
 
+class UndeclaredSetting(KeyError):
+    """A stage read a result-changing setting that neither it nor an earlier stage declares: reusing
+    its outputs by identity would then be wrong. A programming error, found by the tests."""
+
+
+class SectionView(Mapping):
+    """One config section as a stage sees it: read-only, and a result-changing key that is not in
+    ``allowed`` (the settings of this stage and the stages before it) is refused."""
+
+    def __init__(self, stage, section, values, allowed):
+        self._stage, self._section, self._values, self._allowed = stage, section, values, allowed
+
+    def __getitem__(self, key):
+        rule = RULES.get(self._section, {}).get(key)
+        if rule is not None and rule.affects_result and (self._section, key) not in self._allowed:
+            raise UndeclaredSetting(
+                f"stage {self._stage!r} reads {self._section}.{key}, which changes results but is not "
+                f"among the settings of {self._stage!r} or an earlier stage (bigsmooth/stages/base.py SPECS)"
+            )
+        return self._values[key]
+
+    def __iter__(self):
+        return iter(self._values)
+
+    def __len__(self):
+        return len(self._values)
+
+
+class ConfigView(Mapping):
+    """The config as stage ``stage`` sees it: ``view["solve"]`` is a :class:`SectionView`."""
+
+    def __init__(self, stage, cfg):
+        self._stage, self._cfg = stage, cfg
+        self._allowed = allowed_settings(stage, cfg)
+
+    def __getitem__(self, section):
+        return SectionView(self._stage, section, self._cfg[section], self._allowed)
+
+    def __iter__(self):
+        return iter(self._cfg)
+
+    def __len__(self):
+        return len(self._cfg)
+
+
 @dataclass
 class Context:
     """What a stage is run with: the run directory, the config, the input's fingerprint and the
-    run id; random numbers come from named streams of the config's seed."""
+    run id; random numbers come from named streams of the config's seed.
+
+    :meth:`for_stage` gives the context a stage's ``run`` receives: its ``cfg`` is a
+    :class:`ConfigView` that refuses result-changing settings the stage has not declared."""
 
     rundir: object
-    cfg: dict
+    cfg: Mapping
     fp: dict
     run_id: str
+
+    def for_stage(self, name):
+        raw = self.cfg._cfg if isinstance(self.cfg, ConfigView) else self.cfg
+        return replace(self, cfg=ConfigView(name, raw))
+
+    def section(self, name):
+        """One section of the config (a read-only view when the context is a stage's)."""
+        return self.cfg[name]
 
     def rng(self, stream):
         return streams.rng(self.cfg["run"]["seed"], stream)
@@ -126,9 +183,26 @@ def _keys(pattern):
     return [(section, key)]
 
 
+def allowed_settings(name, cfg):
+    """{(section, key)} a stage may read among the result-changing settings: its own and those of
+    every stage before it (their identities chain into its own). A stage whose outputs are never
+    shared (audit, publish, a warm-started solve) belongs to its run alone, whose id hashes every
+    setting, so it sees everything; so does a name that is not a stage (a command on top)."""
+    out = set()
+    if name in BY_NAME and not shareable(name, cfg):
+        return {(s, k) for s, rules in RULES.items() for k in rules}
+    for spec in SPECS:
+        out.update(sk for p in spec.settings for sk in _keys(p))
+        if spec.name == name:
+            return out
+    return {(s, k) for s, rules in RULES.items() for k in rules}
+
+
 def settings_of(spec, cfg):
-    """{"section.key": value} of the settings that change the stage's result."""
-    return {f"{s}.{k}": cfg[s][k] for pattern in spec.settings for s, k in _keys(pattern)}
+    """{"section.key": value} of the settings that change the stage's result (paths relative to
+    run.dir, as in :func:`bigsmooth.config.result_settings`)."""
+    values = result_settings(cfg)
+    return {f"{s}.{k}": values[s][k] for pattern in spec.settings for s, k in _keys(pattern)}
 
 
 def identities(cfg, input_hash):
