@@ -613,8 +613,16 @@ def load_config(path):
 
 
 def result_settings(cfg):
-    """The settings that change results (the run identity), as a nested dict."""
-    return {s: {k: v for k, v in cfg[s].items() if RULES[s][k].affects_result} for s in RULES}
+    """The settings that change results (the run identity), as a nested dict. Paths are taken
+    relative to run.dir (the declared root of the run directories), so a tree of config, input,
+    output and runs moved or mounted elsewhere keeps its identities."""
+
+    def value(s, k, v):
+        if (s, k) in PATH_KEYS and isinstance(v, str) and os.path.isabs(v):
+            return os.path.relpath(v, cfg["run"]["dir"])
+        return v
+
+    return {s: {k: value(s, k, v) for k, v in cfg[s].items() if RULES[s][k].affects_result} for s in RULES}
 
 
 def config_hash(cfg):

@@ -193,7 +193,9 @@ def changed_files(old, new):
 
 
 def fingerprint(path):
-    """Paths, sizes and footer row counts of the input; a hash of them identifies the input."""
+    """Paths, sizes and footer row counts of the input; a hash of them identifies the input. The hash
+    takes each file's path relative to the input root, so the same files moved or mounted elsewhere
+    keep their identity (and the run that read them)."""
     files = resolve_files(path)
     entries = []
     offset = 0
@@ -222,10 +224,16 @@ def fingerprint(path):
             f"{len(bad)} of {len(files)} input files are not readable Parquet "
             f"(truncated or corrupt?):\n{lines}\nReplace or remove them and run again."
         )
+    root = input_root(path, files)
     digest = hashlib.sha256(
-        json.dumps([(e["path"], e["size"], e["mtime_ns"], e["footer"], e["rows"]) for e in entries]).encode()
+        json.dumps(
+            [
+                (os.path.relpath(e["path"], root), e["size"], e["mtime_ns"], e["footer"], e["rows"])
+                for e in entries
+            ]
+        ).encode()
     ).hexdigest()
-    return {"root": input_root(path, files), "files": entries, "rows": offset, "hash": digest}
+    return {"root": root, "files": entries, "rows": offset, "hash": digest}
 
 
 UNIT_ROWS = 8192
