@@ -2,7 +2,7 @@
 declared once with the stage that writes it, its path relative to the run directory and its kind.
 
 Stages and commands ask the catalogue for paths and loaders (``EMBED_SCORES.load(rundir)``); no
-artifact file name is spelled anywhere else (tests/test_artifacts.py checks that with grep). The
+artifact file name is spelled anywhere else (tests/stages/test_artifacts.py checks that with grep). The
 map of which stage reads what is in DEVELOPERS.md.
 
 Kinds: ``npy`` (one array; loaded memory-mapped on request), ``json``, ``csr`` (a CSR triplet of

@@ -15,7 +15,7 @@ EXIT_TEMPFAIL = 75  # EX_TEMPFAIL: another run holds the lock; retry later
 EXIT_CONFIG = 78  # EX_CONFIG: the config file is wrong
 
 # code: (meaning, what to do). The one source of the exit-code table: the CLI's --help, the README
-# and jobs/nightly.sh are generated from it (python -m bigsmooth.errors; tests/test_exit_codes.py).
+# and jobs/nightly.sh are generated from it (python -m bigsmooth.errors; tests/stages/test_exit_codes.py).
 EXIT_TABLE = {
     EXIT_OK: ("success (or nothing to do: the run was already complete)", "nothing"),
     EXIT_GATE: (

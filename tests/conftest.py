@@ -19,3 +19,15 @@ def random_graph(n, density, rng):
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+@pytest.fixture(scope="session")
+def demo_run(tmp_path_factory):
+    """One finished demo (3,000 rows) per test session (per xdist worker), for tests that only read
+    it: ``(folder, completed process)``. A test that changes files makes its own."""
+    from helpers import cli
+
+    base = tmp_path_factory.mktemp("demo")
+    res = cli("demo", "--rows", "3000", "--dir", str(base))
+    assert res.returncode == 0, res.stderr
+    return base, res

@@ -1,4 +1,4 @@
-"""Helpers shared by the command-line tests (imported by tests/test_*.py)."""
+"""Helpers shared by the command-line tests (imported by the tests in every layer folder)."""
 
 import os
 import subprocess

@@ -2,7 +2,7 @@
 
 Neighbour lists and distances may be memory-mapped (n, k) arrays: the chunked functions read them a
 chunk of rows at a time, so memory stays bounded at any table size. The controls and the exact
-counterfactual figure are checked against scipy's spsolve in tests/test_metrics_fairspace.py.
+counterfactual figure are checked against scipy's spsolve in tests/kernels/test_metrics_fairspace.py.
 """
 
 import numpy as np

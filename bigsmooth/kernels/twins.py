@@ -2,7 +2,7 @@
 pairs every compiled kernel with its twin.
 
 The twins are slow and obvious (loops or numpy, same signatures, filling the same output buffers);
-tests/test_kernel_twins.py walks every compiled kernel of ``_fast``, refuses one without a twin,
+tests/kernels/test_kernel_twins.py walks every compiled kernel of ``_fast``, refuses one without a twin,
 and compares the two on random input.
 """
 

@@ -678,7 +678,7 @@ def test_bad_input_case(tmp_path, case):
     text = _cfg_text(case.cfg)
     if case.works:
         # 200 rows, 80 labelled: the AUC moves by more than the default 1% gate either way; the gate
-        # is tested in tests/test_audit_tune.py
+        # is tested in tests/end_to_end/test_audit_tune.py
         text += "\n[gates]\nmax_auc_drop = 1.0\n"
     (tmp_path / "job.toml").write_text(text)
     keep = case.setup(tmp_path) if case.setup else None

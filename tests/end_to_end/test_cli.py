@@ -17,14 +17,6 @@ from bigsmooth.errors import EXIT_CONFIG, EXIT_DATA, EXIT_NOINPUT, EXIT_USAGE
 from helpers import ROOT, _assert_nothing_published, _small_table, _write_case, cli, read_output
 
 
-@pytest.fixture(scope="module")
-def demo_run(tmp_path_factory):
-    base = tmp_path_factory.mktemp("demo")
-    res = cli("demo", "--rows", "3000", "--dir", str(base))
-    assert res.returncode == 0, res.stderr
-    return base, res
-
-
 def test_demo_publishes_every_row_once(demo_run):
     base, res = demo_run
     assert "output:" in res.stdout and "caution" in res.stdout

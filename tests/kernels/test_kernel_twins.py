@@ -3,7 +3,7 @@
 
 A new compiled kernel without a twin, or without inputs here, fails the walk. The twins themselves
 are obvious loops / numpy; the solver-level references (scipy's spsolve and CG) are in
-tests/test_sweepcg.py and tests/test_laplacian_solver.py.
+tests/kernels/test_sweepcg.py and tests/kernels/test_laplacian_solver.py.
 """
 
 import numba
@@ -122,3 +122,12 @@ def test_compiled_kernel_equals_its_twin(name, rng):
     slow(*b)
     for k in outs:
         np.testing.assert_allclose(a[k], b[k], rtol=1e-12, atol=1e-12, err_msg=f"{name}: argument {k}")
+
+
+@pytest.mark.parametrize("name", [k for k, v in twins.registry().items() if v is not None])
+def test_twin_has_the_same_parameter_names(name):
+    """Call sites pass the kernels' arguments by keyword, to the compiled kernel or its twin alike."""
+    import inspect
+
+    fast, slow = getattr(_fast, name), twins.registry()[name]
+    assert list(inspect.signature(fast.py_func).parameters) == list(inspect.signature(slow).parameters)

@@ -8,7 +8,7 @@ import pytest
 from bigsmooth import config, demo
 from bigsmooth.errors import ConfigError
 
-ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+from helpers import ROOT
 
 
 def base_raw():

@@ -37,6 +37,26 @@ def test_every_result_changing_setting_belongs_to_a_stage():
     assert wanted <= covered, wanted - covered
 
 
+def test_a_stage_sees_only_the_settings_its_identity_covers(tmp_path):
+    """The config view a stage runs with refuses a result-changing setting of a later stage (reusing
+    the stage's outputs by identity would otherwise be wrong); the whole job runs through these
+    views in every CLI test, so a stage reading an undeclared setting fails there too."""
+    import pytest
+
+    cfg = config_mod.load_config(_write_case(tmp_path, _small_table(50, seed=1)))
+    ctx = base.Context(None, cfg, {}, "r")
+    graph = ctx.for_stage("graph")
+    assert graph.cfg["graph"]["neighbours"] == cfg["graph"]["neighbours"]
+    assert graph.cfg["input"]["id"] == cfg["input"]["id"]  # scan's settings come before
+    assert graph.cfg["run"]["memory_mb"] == cfg["run"]["memory_mb"]  # changes no result
+    with pytest.raises(base.UndeclaredSetting, match="solve.lam"):
+        graph.cfg["solve"]["lam"]
+    with pytest.raises(base.UndeclaredSetting, match="embed.leakage_warn_auc"):
+        ctx.for_stage("embed").section("embed")["leakage_warn_auc"]
+    assert ctx.for_stage("audit").cfg["output"]["path"]  # never shared: belongs to its run
+    assert ctx.for_stage("order").cfg["solve"]["groups"] == cfg["solve"]["groups"]
+
+
 def test_identities_follow_the_chain_of_stages(tmp_path):
     cfg = config_mod.load_config(_write_case(tmp_path, _small_table(50, seed=1)))
     a = base.identities(cfg, "h")
@@ -133,3 +153,9 @@ def test_a_run_directory_moved_with_its_neighbours_can_still_be_read(tmp_path):
     assert res.returncode == 0, res.stderr[-2000:]
     prov = json.loads((run_dir / "audit" / "audit.json").read_text())["provenance"]
     assert prov["config_path"] == str(tmp_path / "a" / "job.toml")  # as written when it ran
+    # the config, input and output moved with it: the same run, already complete (the input's
+    # identity hashes file paths relative to the input folder, the settings paths relative to run.dir)
+    res = cli("run", str(tmp_path / "b" / "job.toml"))
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert f"run {run_dir.name} was already complete" in res.stdout
+    assert os.listdir(tmp_path / "b" / "runs") == [run_dir.name]
