@@ -79,7 +79,7 @@ class ConfigView(Mapping):
 @dataclass
 class Context:
     """What a stage is run with: the run directory, the config, the input's fingerprint and the
-    run id; random numbers come from named streams of the config's seed.
+    run id; random numbers come from named streams of the config's seed, executors by name.
 
     :meth:`for_stage` gives the context a stage's ``run`` receives: its ``cfg`` is a
     :class:`ConfigView` that refuses result-changing settings the stage has not declared."""
@@ -99,6 +99,13 @@ class Context:
 
     def rng(self, stream):
         return streams.rng(self.cfg["run"]["seed"], stream)
+
+    def executor(self, workers, backend):
+        """An executor of :mod:`bigsmooth.parallel` chosen by name (the seam where an engine that
+        runs tasks elsewhere plugs in)."""
+        from .. import parallel
+
+        return parallel.make_executor(workers, backend)
 
 
 SPECS = (

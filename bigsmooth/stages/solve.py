@@ -136,6 +136,7 @@ class Problem:
     X0: np.ndarray
     cold: bool
     ck_path: str
+    make_executor: object = parallel.make_executor  # (workers, backend) -> executor; the context's
 
 
 def _sweep_cg(pb):
@@ -202,7 +203,7 @@ def _sweep_cg_on(pb, system, bounds, work):
             log.info("sweep %d: preconditioned residual %.3e", st["sweep"], st["residuals"][-1])
 
     nw = workers_for(s)
-    executor = parallel.make_executor(nw, s["backend"])
+    executor = pb.make_executor(nw, s["backend"])
     try:
         # a cold start (the raw scores) is scaled to the multiple closest to the solution; a warm
         # start (last night's adjusted scores) is taken as it is
@@ -342,7 +343,7 @@ def run(ctx):
             # decided from the warm-start record, not from X0's identity: a resumed run reads X0
             # back from solve/x0.npy
             cold = not info.get("warm_start", {}).get("used", False)
-            Xp, more = _sweep_cg(Problem(rundir, s, Y, cvec, b, perm, X0, cold, ck_path))
+            Xp, more = _sweep_cg(Problem(rundir, s, Y, cvec, b, perm, X0, cold, ck_path, ctx.executor))
         else:
             A, _ = laplacian.system(W, s["lam"], s["laplacian"])
             Xp, more = _blocks(Problem(rundir, s, Y, cvec, b, perm, X0, False, ck_path), A)
