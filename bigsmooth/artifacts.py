@@ -55,6 +55,9 @@ class Artifact:
             return all(os.path.exists(self.path(rundir, m)) for m in CSR_PARTS)
         return os.path.exists(self.path(rundir))
 
+    def exists_member(self, rundir, member):
+        return os.path.exists(self.path(rundir, member))
+
     def folder(self, rundir):
         """The folder that holds it (created)."""
         d = self.path(rundir) if self.kind in ("dir", "csr") else os.path.dirname(self.path(rundir))
@@ -137,6 +140,14 @@ GRAPH_DISTANCES = _a(
     "graph.distances", "graph", "graph/distances.npy", "npy", "their fair-space distances (n, k)"
 )
 GRAPH_WEIGHTS = _a("graph.weights", "graph", "graph", "csr", "symmetric heat-kernel weight matrix W")
+GRAPH_PARTS = _a(
+    "graph.parts",
+    "graph",
+    "graph/parts",
+    "dir",
+    "partitioned build: membership (n, overlap), rows and ptr of each partition, and each partition's "
+    "search result p<NNNNNN>-ind / -dist",
+)
 GRAPH_INFO = _a("graph.info", "graph", "graph/graph.json", "json", "edges, degrees, sigma, isolated rows")
 ORDER_PERM = _a("order.perm", "order", "order/order.npy", "npy", "solver row order: position -> input row")
 ORDER_GROUPS = _a(

@@ -40,33 +40,7 @@ import time
 import numpy as np
 
 from . import artifacts as art
-
-
-def exact_sample_recall(E, ind, sample_rows, rng, chunk=50_000):
-    """Recall@k of neighbour lists ``ind`` against exact neighbours for a random sample of rows.
-
-    Brute force in chunks of rows: each chunk's k nearest per sample row are merged with the best
-    so far, so memory stays at (sample x chunk) whatever the table size."""
-    n, k = ind.shape
-    s = np.sort(rng.choice(n, size=min(sample_rows, n), replace=False))
-    Q = np.asarray(E[s], dtype=np.float64)
-    best_d = np.full((len(s), k), np.inf)
-    best_i = np.full((len(s), k), -1, dtype=np.int64)
-    qq = np.einsum("ij,ij->i", Q, Q)
-    for a in range(0, n, chunk):
-        X = np.asarray(E[a : a + chunk], dtype=np.float64)
-        d2 = qq[:, None] + np.einsum("ij,ij->i", X, X)[None, :] - 2.0 * Q @ X.T
-        inside = (s >= a) & (s < a + len(X))
-        d2[np.flatnonzero(inside), s[inside] - a] = np.inf  # a row is not its own neighbour
-        kk = min(k, len(X))
-        part = np.argpartition(d2, kk - 1, axis=1)[:, :kk]
-        cand_d = np.hstack([best_d, np.take_along_axis(d2, part, axis=1)])
-        cand_i = np.hstack([best_i, part + a])
-        keep = np.argpartition(cand_d, k - 1, axis=1)[:, :k]
-        best_d = np.take_along_axis(cand_d, keep, axis=1)
-        best_i = np.take_along_axis(cand_i, keep, axis=1)
-    hits = [len(set(ind[r]) & set(best_i[j])) for j, r in enumerate(s)]
-    return float(np.sum(hits) / (len(s) * k))
+from .kernels import graph as gk
 
 
 def machine_info():
@@ -290,7 +264,7 @@ def _job(args, base):
     E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
     ind = art.GRAPH_NEIGHBOURS.load(rundir, mmap=True)
     t0 = time.perf_counter()
-    recall = exact_sample_recall(E, ind, args.sample, np.random.default_rng(0))
+    recall = gk.sampled_recall(E, ind, args.sample, np.random.default_rng(0))
     t_recall = time.perf_counter() - t0
     return {
         "generate_seconds": t_gen,

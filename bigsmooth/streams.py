@@ -16,6 +16,8 @@ OFFSETS = {
     "tune.holdout": 5,  # labelled rows held out of the choice of lam
     "audit.counterfactual": 6,  # rows sampled for the exact counterfactual figure
     "audit.vote_sample": 7,  # rows sampled for the neighbour-vote leakage probe
+    "graph.partition": 8,  # sample and k-means++ starts of the partitioned build
+    "graph.recall": 9,  # rows sampled for the graph's recall check
 }
 
 

@@ -216,3 +216,30 @@ def inside_edges(indptr, indices, label, counts_only, ptr, out):
                 m += 1
         if counts_only:
             ptr[i + 1] = m
+
+
+@numba.njit(cache=True, nogil=True)
+def smallest_per_row(g, skip_offset, kk, out_ind, out_val):
+    """The kk smallest entries of each row of g (b, m), ascending by (value, column); column
+    i + skip_offset of row i is skipped (the row itself). One pass over g with a sorted insertion
+    list per row: a compare per entry, a shift only when an entry beats the list's last."""
+    b, m = g.shape
+    for i in range(b):
+        vals = out_val[i]
+        inds = out_ind[i]
+        for q in range(kk):
+            vals[q] = np.inf
+            inds[q] = -1
+        me = i + skip_offset
+        last = np.inf
+        for j in range(m):
+            v = g[i, j]
+            if v < last and j != me:
+                p = kk - 1
+                while p > 0 and vals[p - 1] > v:
+                    vals[p] = vals[p - 1]
+                    inds[p] = inds[p - 1]
+                    p -= 1
+                vals[p] = v
+                inds[p] = j
+                last = vals[kk - 1]

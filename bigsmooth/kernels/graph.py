@@ -147,3 +147,45 @@ def heat_kernel_graph(indices, distances, sigma):
     W.eliminate_zeros()
     W.sort_indices()
     return W
+
+
+def sampled_recall(E, ind, sample_rows, rng, chunk=8192):
+    """Recall@k of neighbour lists ``ind`` (n, k) against exact neighbours, on a random sample of rows.
+
+    For a sampled row with list distances a_1..a_k, every true neighbour lies within max(a): one pass
+    over the table in chunks keeps only the rows within that radius (a compare after a matrix
+    product, no selection over the whole table), and the k nearest of those by (distance, row) are
+    the exact neighbours. Reference: sklearn's brute-force NearestNeighbors (tests)."""
+    n, k = ind.shape
+    s = np.sort(rng.choice(n, size=min(sample_rows, n), replace=False))
+    Q = np.asarray(E[s], dtype=np.float64)
+    lists = np.asarray(ind[s])
+    a = np.sqrt(
+        np.sum(
+            (Q[:, None, :] - np.asarray(E[lists.ravel()], dtype=np.float64).reshape(len(s), k, -1)) ** 2,
+            axis=2,
+        )
+    )
+    # a margin for the round-off of the expanded form ||q||^2 + ||x||^2 - 2 q.x
+    qq = np.einsum("ij,ij->i", Q, Q)
+    radius2 = a.max(axis=1) ** 2 * (1 + 1e-6) + 1e-9 * (1 + qq)
+    found_r, found_c = [], []
+    for lo in range(0, n, chunk):
+        X = np.asarray(E[lo : lo + chunk], dtype=np.float64)
+        d2 = qq[:, None] + np.einsum("ij,ij->i", X, X)[None, :] - 2.0 * Q @ X.T
+        r, c = np.nonzero(d2 <= radius2[:, None])
+        c = c + lo
+        keep = c != s[r]  # a row is not its own neighbour
+        found_r.append(r[keep])
+        found_c.append(c[keep])
+    r = np.concatenate(found_r)
+    c = np.concatenate(found_c)
+    d = np.sqrt(np.sum((Q[r] - np.asarray(E[c], dtype=np.float64)) ** 2, axis=1))
+    order = np.lexsort((c, d, r))
+    r, c = r[order], c[order]
+    starts = np.searchsorted(r, np.arange(len(s)))
+    hits = 0
+    for j in range(len(s)):
+        true = c[starts[j] : starts[j] + k]
+        hits += len(np.intersect1d(true, lists[j]))
+    return float(hits / (len(s) * k))

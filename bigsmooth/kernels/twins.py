@@ -68,6 +68,17 @@ def inside_edges(indptr, indices, label, counts_only, ptr, out):
             out[ptr[i] : ptr[i] + len(keep)] = keep
 
 
+def smallest_per_row(g, skip_offset, kk, out_ind, out_val):
+    b, m = g.shape
+    for i in range(b):
+        v = g[i].copy()
+        if 0 <= i + skip_offset < m:
+            v[i + skip_offset] = np.inf
+        order = np.lexsort((np.arange(m), v))[:kk]
+        out_ind[i] = np.where(np.isfinite(v[order]), order, -1)
+        out_val[i] = v[order]
+
+
 def registry():
     """{compiled kernel name: its Python twin} for every kernel in ``_fast``."""
     from . import solver, sweepcg
@@ -83,5 +94,6 @@ def registry():
         "split_matvec": split_matvec,
         "split_residual_sq": split_residual_sq,
         "inside_edges": inside_edges,
+        "smallest_per_row": smallest_per_row,
         "_split_row": None,  # inlined helper of split_matvec / split_residual_sq, tested through them
     }

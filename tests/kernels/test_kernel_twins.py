@@ -93,6 +93,9 @@ def _inputs(name, rng):
             counts,
             [W.indptr, W.indices, label, False, ptr, np.zeros(ptr[-1], np.int64)],
         ), None
+    if name == "smallest_per_row":
+        g = rng.random((40, 300))
+        return [g, 100, 12, np.zeros((40, 12), np.int64), np.zeros((40, 12))], [3, 4]
     raise KeyError(name)
 
 

@@ -1,10 +1,9 @@
-"""The benchmark's recall measure against sklearn's exact neighbours (fast; the slow benchmark run
-is in test_bench_slow.py)."""
+"""The sampled recall (graph record, benchmark) against sklearn's exact neighbours."""
 
 import numpy as np
 from sklearn.neighbors import NearestNeighbors
 
-from bigsmooth.bench import exact_sample_recall
+from bigsmooth.kernels.graph import sampled_recall
 
 
 def test_recall_of_exact_and_of_damaged_neighbour_lists(rng):
@@ -13,9 +12,9 @@ def test_recall_of_exact_and_of_damaged_neighbour_lists(rng):
     k = 8
     _, ind = NearestNeighbors(n_neighbors=k + 1, algorithm="brute").fit(E).kneighbors(E)
     exact = ind[:, 1:]  # drop the row itself
-    assert exact_sample_recall(E, exact, 500, np.random.default_rng(1), chunk=700) == 1.0
+    assert sampled_recall(E, exact, 500, np.random.default_rng(1), chunk=700) == 1.0
     damaged = exact.copy()
     damaged[:, :2] = (damaged[:, :2] + 1500) % 3000  # two of eight replaced by far rows
-    got = exact_sample_recall(E, damaged, 3000, np.random.default_rng(1), chunk=1000)
+    got = sampled_recall(E, damaged, 3000, np.random.default_rng(1), chunk=1000)
     hits = np.mean([len(set(d) & set(e)) for d, e in zip(damaged, exact)]) / k
     assert abs(got - hits) < 1e-12 and got < 0.8

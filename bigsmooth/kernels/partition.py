@@ -1,0 +1,177 @@
+"""Partitioned neighbour search in bounded memory (divide and conquer with overlapping partitions,
+the design of disk-based graph indexes): k-means centres on a sample of the fair space, each row
+joins its ``overlap`` nearest partitions, exact k nearest neighbours by matrix products inside each
+partition, and per row the best k over its partitions.
+
+Pure array code; the graph stage owns the files and hands partitions to an executor. Every result
+is deterministic: centres come from a seeded sample, ties between centres and between neighbours
+are broken by index, and a partition's result does not depend on which worker computes it.
+
+References for the tests: sklearn's exact NearestNeighbors (recall) and :func:`graph.exact_knn`
+(one partition equals the exact search over the whole table).
+"""
+
+import math
+
+import numpy as np
+from scipy.cluster.vq import kmeans2
+
+
+SAMPLE_ROWS = 100_000  # rows sampled to train the centres
+FILL = 0.6  # partitions are planned at this share of the cap, then split where they overflow
+
+
+def _sq(X):
+    return np.einsum("ij,ij->i", X, X)
+
+
+def nearest_centres(E, centres, m, chunk=131_072):
+    """(n, m) int32: each row's m nearest centres, nearest first (ties by centre index)."""
+    n = E.shape[0]
+    m = min(m, len(centres))
+    cc = _sq(centres)
+    out = np.empty((n, m), dtype=np.int32)
+    idx = np.arange(len(centres))
+    for s in range(0, n, chunk):
+        X = np.asarray(E[s : s + chunk], dtype=np.float64)
+        d2 = cc[None, :] - 2.0 * X @ centres.T
+        part = np.argpartition(d2, m - 1, axis=1)[:, :m] if m < len(centres) else np.tile(idx, (len(X), 1))
+        order = np.lexsort((part, np.take_along_axis(d2, part, axis=1)), axis=1)
+        out[s : s + chunk] = np.take_along_axis(part, order, axis=1)
+    return out
+
+
+def _kmeans(X, k, rng):
+    k = max(1, min(k, len(X)))
+    if k == 1:
+        return X.mean(axis=0, keepdims=True)
+    centres, labels = kmeans2(X, k, minit="++", seed=rng, iter=10)
+    used = np.unique(labels)  # an empty centre is dropped
+    return centres[used]
+
+
+def plan(E, cap, overlap, k, rng, max_rounds=6, log=None):
+    """Balanced centres for partitions of at most ``cap`` rows (counting every row in each of its
+    ``overlap`` partitions). Plain k-means leaves some partitions several times the mean, so a
+    partition over the cap is split by k-means on its members in the sample, and all rows are
+    assigned again; a partition with no more than k members is merged away.
+
+    Returns (centres (P, d), membership (n, overlap) int32, sizes (P,) int64)."""
+    n = E.shape[0]
+    overlap = max(1, int(overlap))
+    if n * overlap <= cap or n <= k + 1:
+        return np.asarray(E[:1], dtype=np.float64) * 0.0, np.zeros((n, 1), dtype=np.int32), np.array([n])
+    sample = np.sort(rng.choice(n, size=min(n, SAMPLE_ROWS), replace=False))
+    Xs = np.asarray(E[sample], dtype=np.float64)
+    centres = _kmeans(Xs, math.ceil(overlap * n / (FILL * cap)), rng)
+    for rnd in range(max_rounds):
+        member_s = nearest_centres(Xs, centres, overlap)
+        # sizes over the whole table are estimated from the sample, then counted exactly
+        near = nearest_centres(E, centres, overlap)
+        sizes = np.bincount(near.ravel(), minlength=len(centres))
+        primary = np.bincount(near[:, 0], minlength=len(centres))
+        small = primary <= k
+        big = sizes > cap
+        if not big.any() and not (small.any() and len(centres) > 1):
+            break
+        if log:
+            log(
+                f"partition plan round {rnd + 1}: {int(big.sum())} over the cap, {int(small.sum())} too small"
+            )
+        keep = [centres[~big & ~small]]
+        for p in np.flatnonzero(big):
+            rows = np.flatnonzero((member_s == p).any(axis=1))
+            keep.append(_kmeans(Xs[rows], math.ceil(sizes[p] / (FILL * cap)), rng))
+        new = np.vstack(keep)
+        if len(new) == 0:  # every centre was small: one partition
+            new = Xs.mean(axis=0, keepdims=True)
+        centres = new
+    else:
+        near = nearest_centres(E, centres, overlap)
+        sizes = np.bincount(near.ravel(), minlength=len(centres))
+    return centres, near, sizes
+
+
+def members(membership, parts):
+    """(ptr (P + 1,), rows): the rows of partition p are rows[ptr[p]:ptr[p + 1]], ascending."""
+    flat = membership.ravel()
+    row = np.repeat(np.arange(membership.shape[0], dtype=np.int64), membership.shape[1])
+    order = np.argsort(flat, kind="stable")  # stable: rows stay ascending inside a partition
+    ptr = np.zeros(parts + 1, dtype=np.int64)
+    np.cumsum(np.bincount(flat, minlength=parts), out=ptr[1:])
+    return ptr, row[order]
+
+
+def exact_in(X, k, block=512, slack=3):
+    """Exact k nearest neighbours among the rows of X (m, d), each row excluding itself:
+    (local ind (m, k), dist (m, k) float64) ascending by (distance, index).
+
+    Candidates are ranked by ||x_j||^2 - 2 x_i.x_j in float32 (the row's own ||x_i||^2 does not
+    change the ranking; the embedding is float32 to begin with): one matrix product and one
+    selection pass per block of rows keep the k + ``slack`` smallest, whose distances are then
+    computed directly in float64 and the best k kept, so round-off of the expanded form can only
+    matter for a neighbour tied within it at the k-th place. Reference: :func:`graph.exact_knn`
+    (tests/kernels/test_partition.py)."""
+    m = X.shape[0]
+    X32 = np.ascontiguousarray(X, dtype=np.float32)
+    X64 = np.asarray(X, dtype=np.float64)
+    sq = np.einsum("ij,ij->i", X32, X32)
+    Xm2 = -2.0 * X32
+    ind = np.empty((m, k), dtype=np.int64)
+    dist = np.empty((m, k))
+    kk = min(m - 1, k + slack)
+    part = np.empty((block, kk), dtype=np.int64)
+    val = np.empty((block, kk), dtype=np.float32)
+    select = _selector()
+    for s in range(0, m, block):
+        e = min(s + block, m)
+        g = X32[s:e] @ Xm2.T
+        g += sq[None, :]
+        select(g=g, skip_offset=s, kk=kk, out_ind=part[: e - s], out_val=val[: e - s])
+        part_b = part[: e - s]
+        pd = np.sqrt(np.sum((X64[s:e, None, :] - X64[part_b]) ** 2, axis=2))
+        order = np.lexsort((part_b, pd), axis=1)[:, :k]
+        ind[s:e] = np.take_along_axis(part_b, order, axis=1)
+        dist[s:e] = np.take_along_axis(pd, order, axis=1)
+    return ind, dist
+
+
+def _selector():
+    """The compiled row selection (kernels._fast.smallest_per_row), or its Python twin without numba."""
+    try:
+        from ._fast import smallest_per_row
+    except ImportError:
+        from .twins import smallest_per_row
+    return smallest_per_row
+
+
+def search_partition(E, rows, k):
+    """Exact k nearest neighbours of every row of one partition among the partition's rows.
+
+    Returns (ind (m, k) int64 global row numbers, dist (m, k) float64), ascending by (distance,
+    row); a partition of m <= k rows pads with -1 / inf."""
+    m = len(rows)
+    ind = np.full((m, k), -1, dtype=np.int64)
+    dist = np.full((m, k), np.inf)
+    if m < 2:
+        return ind, dist
+    kk = min(k, m - 1)
+    li, ld = exact_in(np.asarray(E[rows]), kk)
+    ind[:, :kk] = rows[li]
+    dist[:, :kk] = ld
+    return ind, dist
+
+
+def merge(cand_ind, cand_dist, k):
+    """Per row, the k best distinct candidates by (distance, row) from (n, c) candidate lists
+    (-1 / inf for none). The same pair found in two partitions has the same distance (computed
+    from the same vectors), so duplicates sit side by side once sorted."""
+    order = np.lexsort((cand_ind, cand_dist), axis=1)
+    ci = np.take_along_axis(cand_ind, order, axis=1)
+    cd = np.take_along_axis(cand_dist, order, axis=1)
+    dup = np.zeros(ci.shape, dtype=bool)
+    dup[:, 1:] = (ci[:, 1:] == ci[:, :-1]) & (ci[:, 1:] >= 0)
+    cd = np.where(dup, np.inf, cd)
+    ci = np.where(dup, -1, ci)
+    order = np.lexsort((np.where(ci < 0, np.iinfo(np.int64).max, ci), cd), axis=1)[:, :k]
+    return np.take_along_axis(ci, order, axis=1), np.take_along_axis(cd, order, axis=1)

@@ -1,0 +1,83 @@
+"""The partitioned neighbour search (bigsmooth.kernels.partition) against sklearn's exact
+NearestNeighbors and the whole-table exact search (graph.exact_knn)."""
+
+import numpy as np
+from sklearn.neighbors import NearestNeighbors
+
+from bigsmooth.kernels import graph as gk
+from bigsmooth.kernels import partition as pt
+
+
+def _clustered(rng, n=6000, d=8, centres=12):
+    """Test input: a mixture of Gaussian clusters (neighbour graphs are built on such data)."""
+    c = rng.normal(scale=4.0, size=(centres, d))
+    return (c[rng.integers(0, centres, n)] + rng.normal(size=(n, d))).astype(np.float32)
+
+
+def _build(E, cap, overlap, k, seed=1, reverse=False):
+    _, membership, sizes = pt.plan(E, cap, overlap, k, np.random.default_rng(seed))
+    parts = int(membership.max()) + 1
+    ptr, rows = pt.members(membership, parts)
+    n, m = len(E), membership.shape[1]
+    ci = np.full((n, m * k), -1, dtype=np.int64)
+    cd = np.full((n, m * k), np.inf)
+    for p in range(parts)[::-1] if reverse else range(parts):
+        r = rows[ptr[p] : ptr[p + 1]]
+        i, d = pt.search_partition(E, r, k)
+        cols = np.argmax(membership[r] == p, axis=1)[:, None] * k + np.arange(k)[None, :]
+        ci[r[:, None], cols], cd[r[:, None], cols] = i, d
+    ind, dist = pt.merge(ci, cd, k)
+    return ind, dist, membership, sizes
+
+
+def test_exact_search_inside_a_partition_equals_sklearn(rng):
+    E = _clustered(rng, n=3000)
+    ind, dist = pt.exact_in(E, 7)
+    # reference: sklearn brute force on the same float32 values (in float64)
+    nd, ni = NearestNeighbors(n_neighbors=8, algorithm="brute").fit(E.astype(np.float64)).kneighbors()
+    np.testing.assert_allclose(dist, nd[:, :7], rtol=1e-9, atol=1e-9)
+    assert np.mean(ind == ni[:, :7]) > 0.999  # ties may order differently
+    ref_i, ref_d = gk.exact_knn(E, 7)
+    np.testing.assert_array_equal(ind, ref_i)
+    np.testing.assert_allclose(dist, ref_d, rtol=0, atol=1e-12)
+
+
+def test_one_partition_is_the_exact_whole_table_search(rng):
+    E = _clustered(rng, n=2000)
+    ind, dist, membership, sizes = _build(E, cap=5000, overlap=2, k=6)
+    assert membership.shape[1] == 1 and list(sizes) == [2000]
+    ref_i, ref_d = gk.exact_knn(E, 6)
+    np.testing.assert_array_equal(ind, ref_i)
+    np.testing.assert_allclose(dist, ref_d, rtol=0, atol=1e-12)
+
+
+def test_partitions_respect_the_cap_and_recall_is_high(rng):
+    E = _clustered(rng)
+    k = 10
+    ind, dist, membership, sizes = _build(E, cap=1500, overlap=3, k=k)
+    assert sizes.max() <= 1500 and len(sizes) >= 12
+    assert (np.sort(membership, axis=1)[:, 1:] != np.sort(membership, axis=1)[:, :-1]).all()
+    assert (ind >= 0).all() and (ind != np.arange(len(E))[:, None]).all()
+    assert (np.diff(dist, axis=1) >= 0).all()
+    # reference: sklearn's exact neighbours
+    _, ni = NearestNeighbors(n_neighbors=k + 1, algorithm="brute").fit(E).kneighbors()
+    recall = np.mean([len(set(a) & set(b[:k])) for a, b in zip(ind, ni)]) / k
+    assert recall >= 0.95, recall
+    # the sampled recall of the graph record agrees with the full count
+    est = gk.sampled_recall(E, ind, 2000, np.random.default_rng(3))
+    assert abs(est - recall) < 0.02
+
+
+def test_merge_keeps_the_best_distinct_candidates():
+    ci = np.array([[5, 3, -1, 3, 7, 2]])
+    cd = np.array([[0.5, 0.2, np.inf, 0.2, 0.1, 0.5]])
+    ind, dist = pt.merge(ci, cd, 4)
+    assert ind.tolist() == [[7, 3, 2, 5]] and dist.tolist() == [[0.1, 0.2, 0.5, 0.5]]
+
+
+def test_the_build_does_not_depend_on_the_order_partitions_are_searched(rng):
+    E = _clustered(rng, n=3000)
+    a = _build(E, cap=1000, overlap=2, k=5)
+    b = _build(E, cap=1000, overlap=2, k=5, reverse=True)
+    np.testing.assert_array_equal(a[0], b[0])
+    np.testing.assert_array_equal(a[1], b[1])
