@@ -406,6 +406,19 @@ RULES = {
             doc="when an unfinished run with the same settings exists but the input files changed: 'fresh' starts a new run (and says which files changed), 'refuse' stops with exit code 65",
             affects_result=False,
         ),
+        "engine": Rule(
+            "str",
+            default="local",
+            choices=("local", "dask"),
+            doc="where the partition tasks of the graph stage run: 'local' = in this process; 'dask' = on the dask.distributed cluster at run.dask_scheduler (the same result bit for bit; needs pip install bigsmooth[dask] and the run directory on storage every worker mounts at the same path)",
+            affects_result=False,
+        ),
+        "dask_scheduler": Rule(
+            "str",
+            default="",
+            doc="address of the Dask scheduler, e.g. tcp://10.0.0.5:8786 ('' = the DASK_SCHEDULER_ADDRESS environment variable)",
+            affects_result=False,
+        ),
     },
 }
 

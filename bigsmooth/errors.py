@@ -37,7 +37,10 @@ EXIT_TABLE = {
         "cannot write the run directory or the output (also a full disk)",
         "free space or fix permissions, then run again: it resumes",
     ),
-    EXIT_TEMPFAIL: ("another run holds the lock; retry later", "retry later"),
+    EXIT_TEMPFAIL: (
+        'another run holds the lock, or the Dask cluster (run.engine = "dask") cannot be reached',
+        "retry later; the run resumes",
+    ),
     EXIT_CONFIG: ("bad configuration", "fix the config; alert"),
 }
 EXIT_CODES = {code: meaning for code, (meaning, _) in EXIT_TABLE.items()}
@@ -90,6 +93,11 @@ class GateError(BigsmoothError):
 class LockHeldError(BigsmoothError):
     exit_code = EXIT_TEMPFAIL
     kind = "busy"
+
+
+class EngineUnavailableError(BigsmoothError):
+    exit_code = EXIT_TEMPFAIL
+    kind = "engine unavailable"
 
 
 def examples(values, limit=5):

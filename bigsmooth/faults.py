@@ -5,9 +5,13 @@
     BIGSMOOTH_FAULT=checkpoint:write=oserror      raise OSError(ENOSPC) there instead
     BIGSMOOTH_FAULT=stage:graph:start=stop        SIGSTOP there (a test changes something, then SIGCONT)
     BIGSMOOTH_FAULT=embed:chunk:2,stage:audit:start   several points (the first one reached fires)
+    BIGSMOOTH_FAULT=graph:partition:3=kill-once:/tmp/x   SIGKILL the first time only (the file
+                                                  /tmp/x marks it done; for a task re-run elsewhere)
 
 Points (see :data:`POINTS`): ``stage:<name>:start`` (the stage marked running, nothing written)
 and ``stage:<name>:done`` (its outputs written, not yet marked done) for every stage;
+``graph:partition:<p>`` after partition p is searched, before its result is written (on the
+worker that runs the task: the Dask engine hands the driver's armed faults to its tasks);
 ``embed:chunk:<i>`` after the i-th chunk (counted from 1 over both passes); ``solve:sweep:<i>``
 after sweep i, before its checkpoint; ``checkpoint:write`` inside the checkpoint write, after the
 temporary file is complete and before it replaces the old one; ``publish:file:<i>`` after the i-th
@@ -29,6 +33,7 @@ POINTS = (
     "stage:<name>:start",
     "stage:<name>:done",
     "embed:chunk:<i>",
+    "graph:partition:<p>",
     "solve:sweep:<i>",
     "checkpoint:write",
     "publish:file:<i>",
@@ -56,6 +61,13 @@ def point(name):
         return
     if action == "oserror":
         raise OSError(errno.ENOSPC, f"No space left on device (injected by {ENV} at {name})")
+    if action.startswith("kill-once:"):
+        sentinel = action.split(":", 1)[1]
+        try:
+            os.close(os.open(sentinel, os.O_CREAT | os.O_EXCL | os.O_WRONLY))
+        except FileExistsError:
+            return
+        os.kill(os.getpid(), signal.SIGKILL)
     if action == "stop":
         os.kill(os.getpid(), signal.SIGSTOP)
         return

@@ -170,6 +170,87 @@ class ProcessPool:
 
 EXECUTORS = {"threads": Threads, "processes": ProcessPool}
 
+# environment a task takes from the driver: the armed test faults, the compiled-kernel cache
+TASK_ENV = ("BIGSMOOTH_FAULT", "NUMBA_CACHE_DIR")
+
+
+def _run_task(fn, env, args):
+    """A task on a Dask worker: the driver's TASK_ENV for the duration of the call, then fn(*args)."""
+    old = {k: os.environ.get(k) for k in env}
+    os.environ.update(env)
+    try:
+        return fn(*args)
+    finally:
+        for k, v in old.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+def task_key(fn, call):
+    """A deterministic key for a task: the function's name and a hash of its arguments (the run
+    root, artifact keys, row ranges), so the same task submitted again is the same task."""
+    import hashlib
+
+    digest = hashlib.sha256(repr((fn.__module__, fn.__qualname__, call)).encode()).hexdigest()[:20]
+    return f"bigsmooth-{fn.__name__}-{digest}"
+
+
+class DaskTasks:
+    """Tasks on a dask.distributed cluster (run.engine = "dask").
+
+    A call holds the run root, artifact keys and row ranges; the task reads its inputs from the run
+    directory (storage every worker mounts at the same path) and writes its outputs atomically, so a
+    task that runs twice (its worker died and the scheduler ran it again) writes the same files.
+    Results come back in the order of the calls; the caller combines them in that order."""
+
+    def __init__(self, client, address):
+        self.client = client
+        self.address = address
+
+    @classmethod
+    def connect(cls, address="", timeout=10):
+        from .errors import ConfigError, EngineUnavailableError
+
+        address = address or os.environ.get("DASK_SCHEDULER_ADDRESS", "")
+        if not address:
+            raise ConfigError(
+                'run.engine = "dask" needs the scheduler\'s address: set run.dask_scheduler (e.g. '
+                '"tcp://10.0.0.5:8786") or the DASK_SCHEDULER_ADDRESS environment variable'
+            )
+        try:
+            from distributed import Client
+        except ImportError:
+            raise ConfigError(
+                'run.engine = "dask" needs dask.distributed: pip install "bigsmooth[dask]"'
+            ) from None
+        try:
+            client = Client(address, timeout=timeout, set_as_default=False)
+        except (OSError, TimeoutError) as exc:
+            raise EngineUnavailableError(
+                f"cannot reach the Dask scheduler at {address} within {timeout} s ({exc}); nothing "
+                "was lost: run the job again once the cluster is up and it resumes"
+            ) from None
+        return cls(client, address)
+
+    def describe(self):
+        workers = self.client.scheduler_info(n_workers=-1).get("workers", {})
+        return f"the Dask cluster at {self.address} ({len(workers)} workers)"
+
+    def map_calls(self, fn, calls, order=None, sizes=None):
+        order = list(range(len(calls))) if order is None else order
+        env = {k: os.environ[k] for k in TASK_ENV if k in os.environ}
+        futures = {
+            j: self.client.submit(_run_task, fn, env, calls[j], key=task_key(fn, calls[j]), pure=False)
+            for j in order
+        }
+        results = self.client.gather([futures[j] for j in range(len(calls))])
+        return list(results)
+
+    def shutdown(self, wait=True):
+        self.client.close()
+
 
 def make_executor(workers, backend):
     """The executor named ``backend`` with ``workers`` workers, or None (serial) for one worker.

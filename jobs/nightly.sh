@@ -15,7 +15,7 @@
 #    66  input path missing, unreadable or not Parquet (also corrupt data pages)
 #    70  internal error
 #    73  cannot write the run directory or the output (also a full disk)
-#    75  another run holds the lock; retry later
+#    75  another run holds the lock, or the Dask cluster (run.engine = "dask") cannot be reached
 #    78  bad configuration
 # exit-codes:end
 # Running it again after an interruption resumes the same run.

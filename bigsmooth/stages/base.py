@@ -107,6 +107,17 @@ class Context:
 
         return parallel.make_executor(workers, backend)
 
+    def task_executor(self):
+        """Where tasks go (functions of the run root, artifact keys and row ranges, see
+        :mod:`bigsmooth.parallel`): a Dask cluster when run.engine = "dask", else None (they run
+        here, one after another)."""
+        from .. import parallel
+
+        run = self.cfg["run"]
+        if run["engine"] == "dask":
+            return parallel.DaskTasks.connect(run["dask_scheduler"])
+        return None
+
 
 SPECS = (
     StageSpec("scan", ("input.*", "graph.neighbours"), True, reads=(), writes=("scan.info",)),

@@ -13,7 +13,7 @@ import time
 import numpy as np
 
 from .. import artifacts as art
-from .. import streams
+from .. import faults, streams
 from ..kernels import graph as gk
 from ..kernels import partition
 
@@ -36,6 +36,7 @@ def search_task(root, p, k):
     ptr = art.GRAPH_PARTS.load(root, member="ptr", mmap=True)
     rows = np.asarray(art.GRAPH_PARTS.load(root, member="rows", mmap=True)[ptr[p] : ptr[p + 1]])
     ind, dist = partition.search_partition(E, rows, k)
+    faults.point(f"graph:partition:{p}")
     art.GRAPH_PARTS.save(root, dist, member=_part_name(p) + "-dist")
     art.GRAPH_PARTS.save(root, ind, member=_part_name(p) + "-ind")  # written last: marks it done
     return p
@@ -70,7 +71,7 @@ def _partitioned(ctx, E, k, g):
         time.monotonic() - t0,
     )
     order = sorted(range(parts), key=lambda p: (-int(sizes[p]), p))
-    executor = ctx.executor(1, "threads")
+    executor = ctx.task_executor()
     calls = [(rundir.path, p, k) for p in range(parts)]
     try:
         if executor is None:
@@ -79,6 +80,7 @@ def _partitioned(ctx, E, k, g):
                 if (j + 1) % 50 == 0:
                     log.info("partitions searched: %d of %d", j + 1, parts)
         else:
+            log.info("partitions: %d tasks on %s", parts, executor.describe())
             executor.map_calls(search_task, calls, order, [int(x) for x in sizes])
     finally:
         if executor is not None:
