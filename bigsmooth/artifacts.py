@@ -148,6 +148,13 @@ GRAPH_PARTS = _a(
     "partitioned build: membership (n, overlap), rows and ptr of each partition, and each partition's "
     "search result p<NNNNNN>-ind / -dist",
 )
+GRAPH_SCRATCH = _a(
+    "graph.scratch",
+    "graph",
+    "graph/scratch",
+    "dir",
+    "the graph stage's working files (candidate lists, edge shards); removed when the stage is done",
+)
 GRAPH_INFO = _a("graph.info", "graph", "graph/graph.json", "json", "edges, degrees, sigma, isolated rows")
 ORDER_PERM = _a("order.perm", "order", "order/order.npy", "npy", "solver row order: position -> input row")
 ORDER_GROUPS = _a(

@@ -189,3 +189,35 @@ def sampled_recall(E, ind, sample_rows, rng, chunk=8192):
         true = c[starts[j] : starts[j] + k]
         hits += len(np.intersect1d(true, lists[j]))
     return float(hits / (len(s) * k))
+
+
+def heat_edges(indices, distances, sigma, lo=0):
+    """The directed heat-kernel edges of rows lo .. lo + len(indices): (rows, cols, w) with
+    w = exp(-d^2 / (sigma_i sigma_j)), the same numbers as :func:`heat_kernel_graph`, without the
+    edges whose weight underflows to 0 or that join a row to itself."""
+    b, k = indices.shape
+    rows = np.repeat(np.arange(lo, lo + b), k)
+    cols = np.asarray(indices).ravel()
+    d = np.asarray(distances).ravel()
+    w = np.exp(-(d * d) / (sigma[rows] * sigma[cols]))
+    keep = (w != 0) & (rows != cols)
+    return rows[keep], cols[keep], w[keep]
+
+
+def max_merge_rows(rows, cols, w, lo, hi):
+    """CSR rows lo..hi of the symmetrised graph from every directed edge that starts or ends in them
+    (each edge given in both directions): one entry per (row, col) with the larger weight, columns
+    ascending. Returns (indptr (hi - lo + 1,) int64 from 0, indices int64, data float64).
+
+    The rows of a table can be merged shard by shard this way in bounded memory; put together they
+    equal :func:`heat_kernel_graph` (the reference in tests/kernels/test_graph.py)."""
+    order = np.lexsort((cols, rows))
+    r, c, v = rows[order], cols[order], w[order]
+    new = np.ones(len(r), dtype=bool)
+    new[1:] = (r[1:] != r[:-1]) | (c[1:] != c[:-1])
+    starts = np.flatnonzero(new)
+    data = np.maximum.reduceat(v, starts) if len(v) else v
+    r, c = r[starts], c[starts]
+    indptr = np.zeros(hi - lo + 1, dtype=np.int64)
+    np.cumsum(np.bincount(r - lo, minlength=hi - lo), out=indptr[1:])
+    return indptr, c.astype(np.int64), data

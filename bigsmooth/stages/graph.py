@@ -8,12 +8,15 @@ A partition whose result file exists is not searched again, so a killed stage re
 """
 
 import logging
+import os
+import shutil
 import time
 
 import numpy as np
+import scipy.sparse as sp
 
 from .. import artifacts as art
-from .. import faults, streams
+from .. import atomic, faults, streams
 from ..kernels import graph as gk
 from ..kernels import partition
 
@@ -87,8 +90,10 @@ def _partitioned(ctx, E, k, g):
             executor.shutdown()
     log.info("partitions searched in %.1f s; merging", time.monotonic() - t0)
     m = membership.shape[1]
-    cand_ind = np.full((n, m * k), -1, dtype=np.int64)
-    cand_dist = np.full((n, m * k), np.inf)
+    # every row's candidates from its partitions, in files (the kernel's pages to evict)
+    art.GRAPH_SCRATCH.folder(rundir)
+    cand_ind = atomic.new_memmap(art.GRAPH_SCRATCH.path(rundir, "cand-ind"), np.int64, (n, m * k))
+    cand_dist = atomic.new_memmap(art.GRAPH_SCRATCH.path(rundir, "cand-dist"), np.float64, (n, m * k))
     rows_all = art.GRAPH_PARTS.load(rundir, member="rows", mmap=True)
     for p in range(parts):  # a fixed order, whatever order the tasks finished in
         rows = np.asarray(rows_all[ptr[p] : ptr[p + 1]])
@@ -106,10 +111,80 @@ def _partitioned(ctx, E, k, g):
             cand_ind[s : s + step], cand_dist[s : s + step], k
         )
     del cand_ind, cand_dist
+    for p in range(parts):  # the merged lists replace them; the plan stays (membership, rows, ptr)
+        for what in ("-ind", "-dist"):
+            path = art.GRAPH_PARTS.path(rundir, _part_name(p) + what)
+            if os.path.exists(path):
+                os.unlink(path)
     missing = int(np.sum(ind < 0))
     if missing:
         raise RuntimeError(f"the partitioned build left {missing} neighbour slots empty (a bug)")
     return ind, dist, {"partitions": parts, "partition_rows_max": int(sizes.max()), "overlap": m}
+
+
+def write_weights(rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows=None):
+    """Write the symmetric heat-kernel weight matrix (the graph.weights CSR files) in bounded memory:
+    the directed edges go to shard files by row range (each edge in both directions), each shard is
+    merged on its own (:func:`kernels.graph.max_merge_rows`), and the shards are copied into the
+    CSR files in row order. Equals :func:`kernels.graph.heat_kernel_graph` (tested). Returns
+    (stored entries, row sums)."""
+    n, k = ind.shape
+    # a shard holds about 2 k edges per row at 24 bytes each; a quarter of the budget for one shard
+    shard_rows = shard_rows or max(65_536, memory_mb * (1 << 20) // 4 // (2 * k * 24 * 3))
+    bounds = list(range(0, n, shard_rows)) + [n]
+    folder = art.GRAPH_SCRATCH.folder(rundir)
+    files = {}
+    try:
+        for lo in range(0, n, block):
+            r, c, w = gk.heat_edges(ind[lo : lo + block], dist[lo : lo + block], sigma, lo)
+            R, C, V = np.concatenate([r, c]), np.concatenate([c, r]), np.concatenate([w, w])
+            shard = R // shard_rows
+            order = np.argsort(shard, kind="stable")
+            cuts = np.searchsorted(shard[order], np.arange(len(bounds)))
+            for j in range(len(bounds) - 1):
+                sel = order[cuts[j] : cuts[j + 1]]
+                if not len(sel):
+                    continue
+                for name, arr in (("r", R), ("c", C), ("w", V)):
+                    key = (j, name)
+                    if key not in files:
+                        files[key] = open(os.path.join(folder, f"shard{j:05d}-{name}.bin"), "wb")
+                    arr[sel].tofile(files[key])
+    finally:
+        for fh in files.values():
+            fh.close()
+    merged = []
+    deg = np.empty(n)
+    for j in range(len(bounds) - 1):
+        lo, hi = bounds[j], bounds[j + 1]
+        parts = []
+        for name, dt in (("r", np.int64), ("c", np.int64), ("w", np.float64)):
+            path = os.path.join(folder, f"shard{j:05d}-{name}.bin")
+            parts.append(np.fromfile(path, dtype=dt) if os.path.exists(path) else np.empty(0, dt))
+        indptr, indices, data = gk.max_merge_rows(*parts, lo, hi)
+        del parts
+        # row sums as scipy computes them (the same loop over each row's entries)
+        deg[lo:hi] = np.asarray(
+            sp.csr_matrix((data, indices, indptr), shape=(hi - lo, n)).sum(axis=1)
+        ).ravel()
+        np.save(os.path.join(folder, f"merged{j:05d}-indices.npy"), indices)
+        np.save(os.path.join(folder, f"merged{j:05d}-data.npy"), data)
+        merged.append(indptr)
+    nnz = int(sum(int(p[-1]) for p in merged))
+    art.GRAPH_WEIGHTS.folder(rundir)
+    with atomic.open_memmap(art.GRAPH_WEIGHTS.path(rundir, "indptr"), np.int64, (n + 1,)) as out:
+        out[0], at = 0, 0
+        for j, p in enumerate(merged):
+            out[bounds[j] + 1 : bounds[j + 1] + 1] = p[1:] + at
+            at += int(p[-1])
+    for member, dt in (("indices", np.int64), ("data", np.float64)):
+        with atomic.open_memmap(art.GRAPH_WEIGHTS.path(rundir, member), dt, (nnz,)) as out:
+            at = 0
+            for j, p in enumerate(merged):
+                piece = np.load(os.path.join(folder, f"merged{j:05d}-{member}.npy"))
+                out[at : at + len(piece)] = piece
+                at += len(piece)
+    return nnz, deg
 
 
 def run(ctx):
@@ -131,13 +206,13 @@ def run(ctx):
     elif exact:
         ind, dist = gk.exact_knn(np.asarray(E), k)
     else:
-        search = g["search_neighbours"] or int(np.ceil(1.5 * k))
+        wanted = g["search_neighbours"] or int(np.ceil(1.5 * k))
         ind, dist = gk.approx_knn(
             np.asarray(E),
             k,
             seed=streams.seed_of(cfg["run"]["seed"], "graph.index"),
             n_trees=g["index_trees"],
-            search=max(search, k),
+            search=max(wanted, k),
             threads=g["index_threads"],
         )
     if search != "exact" and g["recall_rows"]:
@@ -160,8 +235,10 @@ def run(ctx):
                 RECALL_WARN,
             )
     sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"])
-    W = gk.heat_kernel_graph(ind, dist, sigma)
-    deg = np.asarray(W.sum(axis=1)).ravel()
+    art.GRAPH_NEIGHBOURS.save(rundir, ind)
+    art.GRAPH_DISTANCES.save(rundir, dist.astype(np.float32))
+    nnz, deg = write_weights(rundir, ind, dist, sigma, cfg["run"]["memory_mb"])
+    shutil.rmtree(art.GRAPH_SCRATCH.path(rundir), ignore_errors=True)
     isolated = int(np.sum(deg == 0))
     zero_dist = int(np.sum(dist == 0))
     if isolated:
@@ -169,17 +246,14 @@ def run(ctx):
             "%d rows have no neighbour with non-zero weight (isolated): their scores stay as they are",
             isolated,
         )
-    art.GRAPH_NEIGHBOURS.save(rundir, ind)
-    art.GRAPH_DISTANCES.save(rundir, dist.astype(np.float32))
-    art.GRAPH_WEIGHTS.save(rundir, W)
     info = {
         "rows": n,
         "neighbours": k,
         "search": search,
-        "edges": int(W.nnz // 2),
+        "edges": int(nnz // 2),
         "mean_degree": float(deg.mean()),
         "max_degree": float(deg.max()),
-        "mean_neighbours_after_symmetrising": float(W.nnz / n),
+        "mean_neighbours_after_symmetrising": float(nnz / n),
         "isolated_rows": isolated,
         "zero_distance_pairs": zero_dist,
         "kernel_scale": g["kernel_scale"],

@@ -72,3 +72,39 @@ def test_drop_self_when_self_is_not_listed():
     i2, d2 = gk.drop_self(ind, dist, 2)
     assert i2.tolist() == [[1, 2], [0, 2], [5, 0]]
     assert d2.tolist() == [[0.1, 0.2], [0.0, 0.4], [0.1, 0.2]]
+
+
+def test_sharded_weights_equal_the_in_memory_symmetrised_graph(rng, tmp_path):
+    """The graph stage writes W shard by shard (write_weights); the reference is
+    kernels.graph.heat_kernel_graph (scipy's maximum(W, W.T) in memory), bit for bit."""
+    from bigsmooth import artifacts as art
+    from bigsmooth.stages.graph import write_weights
+
+    E = rng.normal(size=(5000, 4))
+    ind, dist = gk.exact_knn(E, 7)
+    for rule in ("global", "local"):
+        sigma = gk.kernel_scale(dist, rule)
+        W = gk.heat_kernel_graph(ind, dist, sigma)
+        nnz, deg = write_weights(tmp_path, ind, dist, sigma, 256, block=700, shard_rows=900)
+        got = art.GRAPH_WEIGHTS.load(tmp_path)
+        assert nnz == W.nnz
+        for a in ("indptr", "indices", "data"):
+            np.testing.assert_array_equal(getattr(got, a), getattr(W, a))
+        np.testing.assert_array_equal(deg, np.asarray(W.sum(axis=1)).ravel())
+
+
+def test_edges_merged_shard_by_shard_equal_the_in_memory_graph(rng):
+    E = rng.normal(size=(3000, 4))
+    ind, dist = gk.exact_knn(E, 6)
+    sigma = gk.kernel_scale(dist, "local")
+    W = gk.heat_kernel_graph(ind, dist, sigma)
+    r, c, w = gk.heat_edges(ind, dist, sigma)
+    R, C, V = np.concatenate([r, c]), np.concatenate([c, r]), np.concatenate([w, w])
+    for lo in range(0, 3000, 700):
+        hi = min(lo + 700, 3000)
+        m = (R >= lo) & (R < hi)
+        indptr, indices, data = gk.max_merge_rows(R[m], C[m], V[m], lo, hi)
+        piece = W[lo:hi]
+        np.testing.assert_array_equal(indptr, piece.indptr)
+        np.testing.assert_array_equal(indices, piece.indices)
+        np.testing.assert_array_equal(data, piece.data)
