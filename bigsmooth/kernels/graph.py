@@ -166,14 +166,20 @@ def sampled_recall(E, ind, sample_rows, rng, chunk=8192):
             axis=2,
         )
     )
-    # a margin for the round-off of the expanded form ||q||^2 + ||x||^2 - 2 q.x
+    # the filter ranks by ||x||^2 - 2 q.x in float32 against r^2 - ||q||^2, with a margin for the
+    # round-off of that expanded form (a superset of the rows within the radius; the distances of
+    # the kept rows are then computed directly in float64)
     qq = np.einsum("ij,ij->i", Q, Q)
-    radius2 = a.max(axis=1) ** 2 * (1 + 1e-6) + 1e-9 * (1 + qq)
+    Qm2 = (-2.0 * Q).astype(np.float32)
+    limit = (a.max(axis=1) ** 2 - qq) + 1e-4 * (1.0 + qq + a.max(axis=1) ** 2)
+    limit = limit.astype(np.float32)
     found_r, found_c = [], []
     for lo in range(0, n, chunk):
-        X = np.asarray(E[lo : lo + chunk], dtype=np.float64)
-        d2 = qq[:, None] + np.einsum("ij,ij->i", X, X)[None, :] - 2.0 * Q @ X.T
-        r, c = np.nonzero(d2 <= radius2[:, None])
+        X = np.asarray(E[lo : lo + chunk], dtype=np.float32)
+        xx = np.einsum("ij,ij->i", X, X)
+        g = Qm2 @ X.T
+        g += xx[None, :]
+        r, c = np.nonzero(g <= limit[:, None])
         c = c + lo
         keep = c != s[r]  # a row is not its own neighbour
         found_r.append(r[keep])
@@ -211,10 +217,14 @@ def max_merge_rows(rows, cols, w, lo, hi):
 
     The rows of a table can be merged shard by shard this way in bounded memory; put together they
     equal :func:`heat_kernel_graph` (the reference in tests/kernels/test_graph.py)."""
-    order = np.lexsort((cols, rows))
-    r, c, v = rows[order], cols[order], w[order]
+    n = max(int(cols.max()) + 1, hi) if len(cols) else hi
+    # one int64 key per (row, col); the order among equal keys does not matter for a maximum
+    key = (rows - lo) * n + cols
+    order = np.argsort(key)
+    key, v = key[order], w[order]
+    r, c = rows[order], cols[order]
     new = np.ones(len(r), dtype=bool)
-    new[1:] = (r[1:] != r[:-1]) | (c[1:] != c[:-1])
+    new[1:] = key[1:] != key[:-1]
     starts = np.flatnonzero(new)
     data = np.maximum.reduceat(v, starts) if len(v) else v
     r, c = r[starts], c[starts]

@@ -25,27 +25,51 @@ def _sq(X):
     return np.einsum("ij,ij->i", X, X)
 
 
-def nearest_centres(E, centres, m, chunk=131_072):
+def nearest_centres(E, centres, m, chunk=65_536):
     """(n, m) int32: each row's m nearest centres, nearest first (ties by centre index)."""
     n = E.shape[0]
     m = min(m, len(centres))
+    centres = np.asarray(centres, dtype=np.float64)
     cc = _sq(centres)
+    Cm2 = -2.0 * centres.T
     out = np.empty((n, m), dtype=np.int32)
-    idx = np.arange(len(centres))
+    ind = np.empty((chunk, m), dtype=np.int64)
+    val = np.empty((chunk, m))
+    select = _selector()
+    never = -(n + len(centres) + 1)  # no column is the row itself
     for s in range(0, n, chunk):
         X = np.asarray(E[s : s + chunk], dtype=np.float64)
-        d2 = cc[None, :] - 2.0 * X @ centres.T
-        part = np.argpartition(d2, m - 1, axis=1)[:, :m] if m < len(centres) else np.tile(idx, (len(X), 1))
-        order = np.lexsort((part, np.take_along_axis(d2, part, axis=1)), axis=1)
-        out[s : s + chunk] = np.take_along_axis(part, order, axis=1)
+        g = X @ Cm2
+        g += cc[None, :]
+        b = len(X)
+        select(g=g, skip_offset=never, kk=m, out_ind=ind[:b], out_val=val[:b])
+        out[s : s + b] = ind[:b]
     return out
+
+
+def kmeans_pp(X, k, rng):
+    """k-means++ starting centres (each next centre drawn with probability proportional to the
+    squared distance to the nearest centre so far), keeping that distance up to date: O(k n d).
+    (scipy's kmeans2 "++" recomputes the distances to every centre so far for each new one, O(k^2 n d):
+    36 of 43 s of planning 250 partitions at 1M rows, measured.)"""
+    n = len(X)
+    centres = np.empty((k, X.shape[1]))
+    first = int(rng.integers(n))
+    centres[0] = X[first]
+    d2 = np.sum((X - X[first]) ** 2, axis=1)
+    for j in range(1, k):
+        total = d2.sum()
+        i = int(rng.choice(n, p=d2 / total)) if total > 0 else int(rng.integers(n))
+        centres[j] = X[i]
+        np.minimum(d2, np.sum((X - X[i]) ** 2, axis=1), out=d2)
+    return centres
 
 
 def _kmeans(X, k, rng):
     k = max(1, min(k, len(X)))
     if k == 1:
         return X.mean(axis=0, keepdims=True)
-    centres, labels = kmeans2(X, k, minit="++", seed=rng, iter=10)
+    centres, labels = kmeans2(X, kmeans_pp(X, k, rng), minit="matrix", iter=10)
     used = np.unique(labels)  # an empty centre is dropped
     return centres[used]
 

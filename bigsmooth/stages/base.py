@@ -9,6 +9,7 @@ run's outputs of those stages instead of computing them again (see :func:`bigsmo
 
 import hashlib
 import json
+import os
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
 
@@ -109,14 +110,14 @@ class Context:
 
     def task_executor(self):
         """Where tasks go (functions of the run root, artifact keys and row ranges, see
-        :mod:`bigsmooth.parallel`): a Dask cluster when run.engine = "dask", else None (they run
-        here, one after another)."""
+        :mod:`bigsmooth.parallel`): a Dask cluster when run.engine = "dask", else a thread per core
+        here (None on one core: they run one after another)."""
         from .. import parallel
 
         run = self.cfg["run"]
         if run["engine"] == "dask":
             return parallel.DaskTasks.connect(run["dask_scheduler"])
-        return None
+        return parallel.make_executor(os.cpu_count() or 1, "threads")
 
 
 SPECS = (

@@ -16,7 +16,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .. import artifacts as art
-from .. import atomic, faults, streams
+from .. import atomic, faults, parallel, streams
 from ..kernels import graph as gk
 from ..kernels import partition
 
@@ -84,7 +84,8 @@ def _partitioned(ctx, E, k, g):
                     log.info("partitions searched: %d of %d", j + 1, parts)
         else:
             log.info("partitions: %d tasks on %s", parts, executor.describe())
-            executor.map_calls(search_task, calls, order, [int(x) for x in sizes])
+            with parallel.one_blas_thread():
+                executor.map_calls(search_task, calls, order, [int(x) for x in sizes])
     finally:
         if executor is not None:
             executor.shutdown()
