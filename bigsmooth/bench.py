@@ -230,6 +230,92 @@ def solver_race(rundir, cfg, lam_degrees, workers, repeat=1, backends=("threads"
     return out
 
 
+def exact_script(rundir, rows=None):
+    """The contender: what a careful user would write with numpy, scipy and scikit-learn in memory,
+    from the same fair-space embedding and raw scores (it skips reading the table and learning the
+    fair space, which favours it): exact neighbours by scikit-learn's brute force, the heat-kernel
+    weights with the job's global scale rule, max-symmetrised, scipy's csgraph Laplacian, and
+    (I + lam L) f = y (or the random-walk system) by scipy's CG with a Jacobi preconditioner to a
+    relative residual of 1e-6. ``rows``: only the first rows (to measure its growth). Returns
+    (adjusted scores of the first score column, seconds)."""
+    import scipy.sparse as sp
+    from scipy.sparse.csgraph import laplacian
+    from scipy.sparse.linalg import LinearOperator, cg
+    from sklearn.neighbors import NearestNeighbors
+
+    from .config import load_config
+
+    cfg = load_config(os.path.join(os.path.dirname(os.path.dirname(rundir)), "bigsmooth.toml"))
+    k, lam = cfg["graph"]["neighbours"], cfg["solve"]["lam"]
+    t0 = time.perf_counter()
+    E = np.asarray(art.EMBED_EMBEDDING.load(rundir, mmap=True)[:rows], dtype=np.float64)
+    y = np.asarray(art.EMBED_SCORES.load(rundir, mmap=True)[:rows, 0], dtype=np.float64)
+    n = len(E)
+    dist, ind = NearestNeighbors(n_neighbors=k, algorithm="brute").fit(E).kneighbors()
+    sigma = float(np.median(dist[dist > 0])) * cfg["graph"]["scale_factor"]
+    W = sp.csr_matrix(
+        (np.exp(-(dist.ravel() ** 2) / sigma**2), (np.repeat(np.arange(n), k), ind.ravel())), (n, n)
+    )
+    W = W.maximum(W.T).tocsr()
+    L = laplacian(W)
+    C = sp.diags(
+        np.asarray(W.sum(axis=1)).ravel() if cfg["solve"]["laplacian"] == "random_walk" else np.ones(n)
+    )
+    A = (C + lam * L).tocsr()
+    d = A.diagonal()
+    M = LinearOperator((n, n), matvec=lambda v: v / d)
+    f, info = cg(A, C @ y, x0=y, rtol=1e-6, M=M, maxiter=10_000)
+    return f, time.perf_counter() - t0
+
+
+def _script_child(rundir, rows, out):
+    f, seconds = exact_script(rundir, rows)
+    np.save(out, f)
+    return seconds
+
+
+def compare_with_script(rundir, rows, max_rows):
+    """Run :func:`exact_script` in a fresh child process (imports included, as for the job) on the
+    whole table when it has at most ``max_rows`` rows, and compare its scores with the job's
+    (correlation, decisions agreeing at the job's select rate). Above that, time it on the first
+    max_rows / 4 and max_rows / 2 rows and extrapolate with the fitted power of n (marked so)."""
+    adjusted = art.SOLVE_ADJUSTED.load(rundir, mmap=True)
+    cfg_rate = art.AUDIT_REPORT_JSON.load(rundir)["select_rate"]
+
+    def child(m):
+        out = os.path.join(os.path.dirname(os.path.dirname(rundir)), f"script-{m}.npy")
+        code = (
+            "import sys, time; t0 = time.perf_counter(); from bigsmooth.bench import _script_child; "
+            f"_script_child({rundir!r}, {m}, {out!r}); print(time.perf_counter() - t0)"
+        )
+        t0 = time.perf_counter()
+        proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+        if proc.returncode != 0:
+            raise SystemExit(f"the contender script failed:\n{proc.stderr[-2000:]}")
+        return time.perf_counter() - t0, np.load(out)
+
+    if rows <= max_rows:
+        seconds, f = child(rows)
+        ours = np.asarray(adjusted[:, 0])
+        sel = lambda v: v >= np.quantile(v, 1 - cfg_rate)  # noqa: E731
+        return {
+            "script_seconds": seconds,
+            "script_extrapolated": False,
+            "script_correlation": float(np.corrcoef(f, ours)[0, 1]),
+            "script_decisions_agree": float(np.mean(sel(f) == sel(ours))),
+            "script_max_abs_difference": float(np.max(np.abs(f - ours))),
+        }
+    sizes = [max_rows // 4, max_rows // 2]
+    times = [child(m)[0] for m in sizes]
+    power = float(np.log(times[1] / times[0]) / np.log(sizes[1] / sizes[0]))
+    return {
+        "script_seconds": times[1] * (rows / sizes[1]) ** power,
+        "script_extrapolated": True,
+        "script_measured": dict(zip(map(str, sizes), times)),
+        "script_growth_power": power,
+    }
+
+
 def _job(args, base):
     """Generate the data if needed, run the job in a child process, measure recall; the table's
     job part and the run directory."""
@@ -314,6 +400,22 @@ def _print(table, args, out):
             f"{js['workers']} workers, {js['groups']} groups"
         )
         print(f"neighbour recall@k vs exact on {args.sample} rows: {table['recall_at_k']:.4f}")
+    if "script_seconds" in table:
+        how = (
+            "extrapolated from "
+            + ", ".join(f"{int(m):,} rows {t:.1f} s" for m, t in table.get("script_measured", {}).items())
+            if table["script_extrapolated"]
+            else "measured"
+        )
+        line = f"in-memory exact script: {table['script_seconds']:.1f} s ({how})"
+        if "job_seconds" in table:
+            line += f"; job / script {table['job_seconds'] / table['script_seconds']:.3f}"
+        if not table["script_extrapolated"]:
+            line += (
+                f"; scores correlate {table['script_correlation']:.6f}, decisions agree "
+                f"{table['script_decisions_agree']:.4f}, max |difference| {table['script_max_abs_difference']:.2e}"
+            )
+        print(line)
     for r in table.get("solver_race", []):
         print(
             f"best of {r['repeat']}, lam*deg {r['lam_times_mean_degree']}: CG-Jacobi {r['cg_seconds']:.2f} s "
@@ -347,6 +449,13 @@ def main(argv=None):
     p.add_argument("--sample", type=int, default=2000, help="rows in the recall sample (default 2000)")
     p.add_argument("--seed", type=int, default=7)
     p.add_argument("--no-race", action="store_true", help="skip the solver comparison")
+    p.add_argument(
+        "--script-max-rows",
+        type=int,
+        default=300_000,
+        help="run the in-memory exact contender script on the whole table up to this many rows; "
+        "above, time it on a quarter and a half of this and extrapolate (default 300000; 0 = skip)",
+    )
     p.add_argument(
         "--race-only",
         action="store_true",
@@ -391,6 +500,8 @@ def main(argv=None):
         "workers": args.workers,
         "backends": args.backends,
     }
+    if not args.race_only and args.script_max_rows:
+        table.update(compare_with_script(rundir, args.rows, args.script_max_rows))
     if not args.no_race:
         table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers, args.repeat, args.backends)
     out = args.json or os.path.join(args.dir, f"bench-{args.rows}{'-race' if args.race_only else ''}.json")
