@@ -241,6 +241,12 @@ class DaskTasks:
             raise ConfigError(
                 'run.engine = "dask" needs dask.distributed: pip install "bigsmooth[dask]"'
             ) from None
+        from threadpoolctl import ThreadpoolController
+
+        # connecting a client sets this process's BLAS to one thread; the driver's own figures (the
+        # audit's CG and norms) must come out as with the local engine, so the count is put back
+        controller = ThreadpoolController()
+        before = {p.prefix: p.num_threads for p in controller.lib_controllers}
         try:
             client = Client(address, timeout=timeout, set_as_default=False)
         except (OSError, TimeoutError) as exc:
@@ -248,6 +254,10 @@ class DaskTasks:
                 f"cannot reach the Dask scheduler at {address} within {timeout} s ({exc}); nothing "
                 "was lost: run the job again once the cluster is up and it resumes"
             ) from None
+        finally:
+            for lib in controller.lib_controllers:
+                if lib.prefix in before and lib.num_threads != before[lib.prefix]:
+                    lib.set_num_threads(before[lib.prefix])
         return cls(client, address)
 
     def describe(self):

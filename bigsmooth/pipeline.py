@@ -6,7 +6,7 @@ import os
 import shutil
 import time
 
-from . import artifacts
+from . import artifacts, parallel
 from . import config as config_mod
 from .atomic import read_json
 from .errors import DataError, GateError, InputMissingError, OutputError
@@ -225,7 +225,11 @@ def run_stages(ctx, upto=None, fresh=False):
             if name in READS_INPUT:
                 verify_unchanged(fp, f"before stage {name}")
             try:
-                record.update(_reading(name, fp, lambda: spec.module().run(ctx.for_stage(name))))
+                # one BLAS thread for the stage's own array work: BLAS reductions (dot products in
+                # the audit's CG, norms) split by thread count, and the results must not depend on
+                # the machine's cores (tasks on other executors run with one BLAS thread too)
+                with parallel.one_blas_thread():
+                    record.update(_reading(name, fp, lambda: spec.module().run(ctx.for_stage(name))))
             except OSError as exc:
                 raise os_error(exc, name, rd, cfg, fp) from None
 

@@ -81,3 +81,25 @@ def test_the_build_does_not_depend_on_the_order_partitions_are_searched(rng):
     b = _build(E, cap=1000, overlap=2, k=5, reverse=True)
     np.testing.assert_array_equal(a[0], b[0])
     np.testing.assert_array_equal(a[1], b[1])
+
+
+def test_eight_partitions_give_the_solution_of_one(rng):
+    """On data whose clusters are farther apart than any neighbour distance, eight or more
+    partitions find every row's exact neighbours, so the smoothed scores equal those of the
+    one-partition (exact) graph; the reference solve is scipy's spsolve on both graphs."""
+    import scipy.sparse as sp
+    from scipy.sparse.linalg import spsolve
+
+    E = _clustered(rng, n=4000, d=6, centres=10) * np.float32(8.0)
+    k = 8
+    one = _build(E, cap=12000, overlap=3, k=k)  # n x overlap rows fit in one partition
+    many = _build(E, cap=1400, overlap=3, k=k)
+    assert len(one[3]) == 1 and len(many[3]) >= 8
+    y = rng.random(len(E))
+    sols = []
+    for ind, dist, _, _ in (one, many):
+        sigma = gk.kernel_scale(dist, "global")
+        W = gk.heat_kernel_graph(ind, dist, sigma)
+        L = sp.diags(np.asarray(W.sum(axis=1)).ravel()) - W
+        sols.append(spsolve((sp.identity(len(E)) + 2.0 * L).tocsc(), y))
+    np.testing.assert_allclose(sols[1], sols[0], rtol=0, atol=1e-8)
