@@ -213,6 +213,28 @@ def task_key(fn, call):
     return f"bigsmooth-{fn.__name__}-{digest}"
 
 
+def _probe(address, timeout):
+    """Fail at once when nothing listens at a tcp:// scheduler address (a refused connection), instead
+    of retrying until the timeout; other schemes and other errors are left to the client."""
+    import socket
+    from urllib.parse import urlsplit
+
+    from .errors import EngineUnavailableError
+
+    parts = urlsplit(address)
+    if parts.scheme != "tcp" or not parts.hostname or not parts.port:
+        return
+    try:
+        socket.create_connection((parts.hostname, parts.port), timeout=timeout).close()
+    except ConnectionRefusedError:
+        raise EngineUnavailableError(
+            f"cannot reach the Dask scheduler at {address}: connection refused (is the scheduler "
+            "running?); nothing was lost: run the job again once the cluster is up and it resumes"
+        ) from None
+    except OSError:
+        return  # the client says more
+
+
 class DaskTasks:
     """Tasks on a dask.distributed cluster (run.engine = "dask").
 
@@ -245,6 +267,7 @@ class DaskTasks:
 
         # connecting a client sets this process's BLAS to one thread; the driver's own figures (the
         # audit's CG and norms) must come out as with the local engine, so the count is put back
+        _probe(address, timeout)
         controller = ThreadpoolController()
         before = {p.prefix: p.num_threads for p in controller.lib_controllers}
         try:

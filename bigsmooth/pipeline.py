@@ -3,6 +3,7 @@
 import errno
 import logging
 import os
+import resource
 import shutil
 import time
 
@@ -230,6 +231,9 @@ def run_stages(ctx, upto=None, fresh=False):
                 # the machine's cores (tasks on other executors run with one BLAS thread too)
                 with parallel.one_blas_thread():
                     record.update(_reading(name, fp, lambda: spec.module().run(ctx.for_stage(name))))
+                # the process's peak resident memory so far (it only grows: a stage's own peak is
+                # at most this, and at least the rise over the stage before)
+                record["peak_rss_mb"] = round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
             except OSError as exc:
                 raise os_error(exc, name, rd, cfg, fp) from None
 

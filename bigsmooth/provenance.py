@@ -58,10 +58,23 @@ def record(rundir, cfg, fp, version, gates):
         "lam": cfg["solve"]["lam"],
         "laplacian": cfg["solve"]["laplacian"],
         "neighbours": cfg["graph"]["neighbours"],
+        **_graph_record(rundir),
         "output_path": cfg["output"]["path"],
         "output_version": version if status == "published" else None,
         "status": status,
         "failed_gates": failed,
+    }
+
+
+def _graph_record(rundir):
+    """How the neighbour graph was built and its sampled recall (None for an exact search)."""
+    from . import artifacts as art
+
+    info = art.GRAPH_INFO.load(rundir) if art.GRAPH_INFO.exists(rundir) else {}
+    return {
+        "graph_search": info.get("search"),
+        "graph_recall": info.get("sampled_recall"),
+        "graph_recall_rows": info.get("recall_rows"),
     }
 
 

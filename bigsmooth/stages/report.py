@@ -169,6 +169,16 @@ def pct(v):
     return f"{100 * v:.2f}%" if v is not None and np.isfinite(v) else "-"
 
 
+def _search_line(prov):
+    search = prov.get("graph_search") or "not recorded"
+    if prov.get("graph_recall") is None:
+        return search + (" (all neighbours found)" if search == "exact" else "")
+    return (
+        f"{search}; recall@k {prov['graph_recall']:.3f} against an exact search on "
+        f"{prov['graph_recall_rows']:,} sampled rows (warned below 0.95)"
+    )
+
+
 def _table(header, rows, cls=""):
     h = "".join(f"<th>{html.escape(str(c))}</th>" for c in header)
     body = "".join(
@@ -238,6 +248,7 @@ def render(report, plots, tune=None, applied_lam=None):
             ["lam applied", f"{prov['lam']:g}"],
             ["Laplacian", prov["laplacian"]],
             ["neighbours k", prov["neighbours"]],
+            ["neighbour search", _search_line(prov)],
         ]
         parts += [
             "<section id='provenance'><h2>Where these figures come from</h2>",

@@ -32,6 +32,7 @@ def test_exact_knn_with_duplicate_points_excludes_only_self(rng):
     assert np.all(dist[:, 4:] > 0)
 
 
+@pytest.mark.slow  # pynndescent compiles for about 20 s in a new process; no longer the default build
 def test_approximate_neighbours_recall_against_exact(rng):
     # common practice: an approximate index is acceptable at recall@k >= 0.95
     centres = rng.normal(scale=4, size=(30, 10))
