@@ -4,8 +4,9 @@
     threads     a thread pool; the compiled kernels release the GIL
     processes   joblib's loky worker processes; np.memmap arguments travel as file handles
 
-Each executor has ``map_calls(fn, calls, order, sizes)``: fn(*call) for every call, results in the
-order of ``calls`` whatever the order of completion (partial floating-point results are then
+Each executor has ``map_calls(fn, calls, order, sizes[, done])``: fn(*call) for every call, results
+in the order of ``calls`` whatever the order of completion (``done(j)``, where given, is called as
+call j finishes: for progress lines) (partial floating-point results are then
 combined by the caller in that fixed order), ``order`` the order in which calls are handed out.
 The seam for a distributed engine is the same method: its workers must be handed file handles,
 artifact keys and row ranges, never arrays in memory or host-bound handles (which is what
@@ -47,9 +48,18 @@ class Threads:
     def map(self, fn, *iterables):
         return self._ex.map(fn, *iterables)
 
-    def map_calls(self, fn, calls, order=None, sizes=None):
+    def map_calls(self, fn, calls, order=None, sizes=None, done=None):
         order = list(range(len(calls))) if order is None else order
-        return _ordered(lambda cs: self._ex.map(fn, *zip(*cs)), calls, order)
+        if done is None:
+            return _ordered(lambda cs: self._ex.map(fn, *zip(*cs)), calls, order)
+
+        def run(j):
+            out = fn(*calls[j])
+            done(j)
+            return out
+
+        futures = {j: self._ex.submit(run, j) for j in order}
+        return [futures[j].result() for j in range(len(calls))]
 
     def shutdown(self, wait=True):
         self._ex.shutdown(wait=wait)
@@ -287,13 +297,22 @@ class DaskTasks:
         workers = self.client.scheduler_info(n_workers=-1).get("workers", {})
         return f"the Dask cluster at {self.address} ({len(workers)} workers)"
 
-    def map_calls(self, fn, calls, order=None, sizes=None):
+    def map_calls(self, fn, calls, order=None, sizes=None, done=None):
+        """``done(j)`` (optional) is called here as call j finishes, in completion order (for
+        progress only; results still come back in the order of the calls)."""
         order = list(range(len(calls))) if order is None else order
         env = {k: os.environ[k] for k in TASK_ENV if k in os.environ}
         futures = {
             j: self.client.submit(_run_task, fn, env, calls[j], key=task_key(fn, calls[j]), pure=False)
             for j in order
         }
+        if done is not None:
+            from distributed import as_completed
+
+            index = {f.key: j for j, f in futures.items()}
+            for f in as_completed(list(futures.values()), loop=self.client.loop):
+                if f.status == "finished":
+                    done(index[f.key])
         results = self.client.gather([futures[j] for j in range(len(calls))])
         return list(results)
 

@@ -1,5 +1,6 @@
 """Progress of long stages as log lines, at most one every few seconds (plus the last)."""
 
+import threading
 import time
 
 
@@ -8,8 +9,13 @@ class Progress:
         self.log, self.what, self.total, self.every = log, what, total, every
         self.done = 0
         self.t0 = self.last = time.monotonic()
+        self._lock = threading.Lock()  # tasks on a thread pool report as they finish
 
     def update(self, k):
+        with self._lock:
+            self._update(k)
+
+    def _update(self, k):
         self.done += k
         now = time.monotonic()
         if now - self.last >= self.every or self.done >= self.total:

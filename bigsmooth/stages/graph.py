@@ -19,6 +19,7 @@ from .. import artifacts as art
 from .. import atomic, faults, parallel, streams
 from ..kernels import graph as gk
 from ..kernels import partition
+from ..progress import Progress
 
 log = logging.getLogger("bigsmooth.graph")
 
@@ -76,16 +77,22 @@ def _partitioned(ctx, E, k, g):
     order = sorted(range(parts), key=lambda p: (-int(sizes[p]), p))
     executor = ctx.task_executor()
     calls = [(rundir.path, p, k) for p in range(parts)]
+    prog = Progress(log, "partition search (rows x overlap)", int(sizes.sum()))
     try:
         if executor is None:
-            for j, p in enumerate(order):
+            for p in order:
                 search_task(*calls[p])
-                if (j + 1) % 50 == 0:
-                    log.info("partitions searched: %d of %d", j + 1, parts)
+                prog.update(int(sizes[p]))
         else:
             log.info("partitions: %d tasks on %s", parts, executor.describe())
             with parallel.one_blas_thread():
-                executor.map_calls(search_task, calls, order, [int(x) for x in sizes])
+                executor.map_calls(
+                    search_task,
+                    calls,
+                    order,
+                    [int(x) for x in sizes],
+                    done=lambda p: prog.update(int(sizes[p])),
+                )
     finally:
         if executor is not None:
             executor.shutdown()
