@@ -194,7 +194,7 @@ def test_unwritable_output_is_refused_before_any_work(tmp_path):
     assert (tmp_path / "blocker").read_text() == "not a folder"
 
 
-def _variants(demo_run, tmp_path, variants, exact_below):
+def _variants(demo_run, tmp_path, variants, exact_below, build="auto"):
     base, _ = demo_run
     text = (base / "bigsmooth.toml").read_text().replace("data/applicants", str(base / "data" / "applicants"))
     outs = []
@@ -203,7 +203,10 @@ def _variants(demo_run, tmp_path, variants, exact_below):
         cfg.write_text(
             text.replace('path = "output"', f'path = "out{i}"')
             .replace('dir = "runs"', f'dir = "runs{i}"')
-            .replace('kernel_scale = "global"', f'kernel_scale = "global"\nexact_below = {exact_below}')
+            .replace(
+                'kernel_scale = "global"',
+                f'kernel_scale = "global"\nexact_below = {exact_below}\nbuild = "{build}"',
+            )
             .replace("tol = 1e-6", f'tol = 1e-6\nworkers = {workers}\nbackend = "{backend}"')
         )
         res = cli("run", str(cfg))
@@ -226,7 +229,11 @@ def test_output_is_bit_identical_for_one_and_two_workers(demo_run, tmp_path):
 def test_output_is_bit_identical_on_the_approximate_path_across_workers_and_repeats(demo_run, tmp_path):
     # as above with pynndescent forced, and a repeat of the first run (same seed): same bits
     outs = _variants(
-        demo_run, tmp_path, [(1, "threads"), (2, "threads"), (2, "processes"), (1, "threads")], exact_below=0
+        demo_run,
+        tmp_path,
+        [(1, "threads"), (2, "threads"), (2, "processes"), (1, "threads")],
+        exact_below=0,
+        build="whole",
     )
     for o in outs[1:]:
         assert np.array_equal(o, outs[0])

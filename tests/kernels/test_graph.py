@@ -45,6 +45,7 @@ def test_approximate_neighbours_recall_against_exact(rng):
     assert not np.any(ind == np.arange(len(X))[:, None])
 
 
+@pytest.mark.slow  # pynndescent (graph.build = "whole") compiles for about 20 s in a new process
 @pytest.mark.parametrize("threads", [1, 2])
 def test_approximate_neighbours_same_seed_same_graph(rng, threads):
     X = rng.normal(size=(3000, 5)).astype(np.float32)
