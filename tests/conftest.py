@@ -16,6 +16,27 @@ def random_graph(n, density, rng):
     return (W + W.T).tocsr()
 
 
+def pytest_configure(config):
+    """Compile the numba kernels once, before the test processes start (the xdist controller, or a
+    plain run): a small demo in a child process writes numba's on-disk cache, which the many
+    command-line runs of the suite then load instead of each compiling the same kernels."""
+    import subprocess
+    import sys
+    import tempfile
+
+    if hasattr(config, "workerinput") or config.getoption("collectonly", False):
+        return
+    from helpers import ROOT
+
+    with tempfile.TemporaryDirectory() as d:
+        subprocess.run(
+            [sys.executable, "-m", "bigsmooth", "-q", "demo", "--rows", "600", "--dir", d],
+            capture_output=True,
+            env={**os.environ, "PYTHONPATH": ROOT},
+            timeout=600,
+        )
+
+
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
