@@ -78,7 +78,8 @@ def plan(E, cap, overlap, k, rng, max_rounds=6, log=None):
     """Balanced centres for partitions of at most ``cap`` rows (counting every row in each of its
     ``overlap`` partitions). Plain k-means leaves some partitions several times the mean, so a
     partition over the cap is split by k-means on its members in the sample, and all rows are
-    assigned again; a partition with no more than k members is merged away.
+    assigned again; a partition with no more than k members is merged away. After ``max_rounds``
+    the plan is taken as it is (the stage logs the largest partition).
 
     Returns (centres (P, d), membership (n, overlap) int32, sizes (P,) int64)."""
     n = E.shape[0]
@@ -89,8 +90,8 @@ def plan(E, cap, overlap, k, rng, max_rounds=6, log=None):
     Xs = np.asarray(E[sample], dtype=np.float64)
     centres = _kmeans(Xs, math.ceil(overlap * n / (FILL * cap)), rng)
     for rnd in range(max_rounds):
+        # the sample's memberships choose the rows a split is trained on; sizes count every row
         member_s = nearest_centres(Xs, centres, overlap)
-        # sizes over the whole table are estimated from the sample, then counted exactly
         near = nearest_centres(E, centres, overlap)
         sizes = np.bincount(near.ravel(), minlength=len(centres))
         primary = np.bincount(near[:, 0], minlength=len(centres))
