@@ -189,9 +189,13 @@ TASK_ENV = ("BIGSMOOTH_FAULT", "NUMBA_CACHE_DIR")
 
 @contextlib.contextmanager
 def one_blas_thread():
-    """Limit BLAS to one thread in this process (threadpoolctl) while tasks run side by side, one
-    per core: measured on the partition searches at 300k rows, 2 tasks with one BLAS thread each
-    took 12.6 s against 18.2 s for one task at a time with BLAS on both cores."""
+    """Limit BLAS to one thread in this process (threadpoolctl). The runner holds it around every
+    stage and a Dask task around its call: BLAS reductions (dot products, norms) split their sums by
+    thread count, so results would otherwise depend on the machine's cores (a job started from a
+    process that had started a Dask LocalCluster inherits OPENBLAS_NUM_THREADS=1, and two audit
+    figures differed in the last bit). It is also faster for tasks run one per core: on the
+    partition searches at 300k rows, 2 tasks with one BLAS thread each took 12.6 s against 18.2 s
+    for one task at a time with BLAS on both cores."""
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):
@@ -273,13 +277,7 @@ class DaskTasks:
             raise ConfigError(
                 'run.engine = "dask" needs dask.distributed: pip install "bigsmooth[dask]"'
             ) from None
-        from threadpoolctl import ThreadpoolController
-
-        # connecting a client sets this process's BLAS to one thread; the driver's own figures (the
-        # audit's CG and norms) must come out as with the local engine, so the count is put back
         _probe(address, timeout)
-        controller = ThreadpoolController()
-        before = {p.prefix: p.num_threads for p in controller.lib_controllers}
         try:
             client = Client(address, timeout=timeout, set_as_default=False)
         except (OSError, TimeoutError) as exc:
@@ -287,10 +285,6 @@ class DaskTasks:
                 f"cannot reach the Dask scheduler at {address} within {timeout} s ({exc}); nothing "
                 "was lost: run the job again once the cluster is up and it resumes"
             ) from None
-        finally:
-            for lib in controller.lib_controllers:
-                if lib.prefix in before and lib.num_threads != before[lib.prefix]:
-                    lib.set_num_threads(before[lib.prefix])
         return cls(client, address)
 
     def describe(self):

@@ -16,7 +16,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .. import artifacts as art
-from .. import atomic, faults, parallel, streams
+from .. import atomic, faults, streams
 from ..kernels import graph as gk
 from ..kernels import partition
 from ..progress import Progress
@@ -85,14 +85,15 @@ def _partitioned(ctx, E, k, g):
                 prog.update(int(sizes[p]))
         else:
             log.info("partitions: %d tasks on %s", parts, executor.describe())
-            with parallel.one_blas_thread():
-                executor.map_calls(
-                    search_task,
-                    calls,
-                    order,
-                    [int(x) for x in sizes],
-                    done=lambda p: prog.update(int(sizes[p])),
-                )
+            # the runner already limits BLAS to one thread per stage (pipeline.run_stages), so the
+            # tasks on local threads run one per core with one BLAS thread each
+            executor.map_calls(
+                search_task,
+                calls,
+                order,
+                [int(x) for x in sizes],
+                done=lambda p: prog.update(int(sizes[p])),
+            )
     finally:
         if executor is not None:
             executor.shutdown()
