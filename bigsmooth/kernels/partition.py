@@ -187,6 +187,17 @@ def search_partition(E, rows, k):
     return ind, dist
 
 
+def place(cand_ind, cand_dist, membership, p, rows, ind, dist):
+    """Put partition p's result (``ind``, ``dist`` for its ``rows``) into the candidate lists
+    (n, overlap * k): each row's block of k columns at the position of p among its partitions, so
+    the lists do not depend on the order partitions are placed in."""
+    k = ind.shape[1]
+    slot = np.argmax(membership[rows] == p, axis=1)
+    cols = slot[:, None] * k + np.arange(k)[None, :]
+    cand_ind[rows[:, None], cols] = ind
+    cand_dist[rows[:, None], cols] = dist
+
+
 def merge(cand_ind, cand_dist, k):
     """Per row, the k best distinct candidates by (distance, row) from (n, c) candidate lists
     (-1 / inf for none). The same pair found in two partitions has the same distance (computed

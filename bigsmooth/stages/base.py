@@ -193,6 +193,7 @@ SPECS = (
     ),
 )
 BY_NAME = {s.name: s for s in SPECS}
+STAGE_INDEX = {s.name: i for i, s in enumerate(SPECS)}
 
 
 def _keys(pattern):
@@ -207,13 +208,11 @@ def allowed_settings(name, cfg):
     every stage before it (their identities chain into its own). A stage whose outputs are never
     shared (audit, publish, a warm-started solve) belongs to its run alone, whose id hashes every
     setting, so it sees everything; so does a name that is not a stage (a command on top)."""
-    out = set()
-    if name in BY_NAME and not shareable(name, cfg):
-        return {(s, k) for s, rules in RULES.items() for k in rules}
-    for spec in SPECS:
-        out.update(sk for p in spec.settings for sk in _keys(p))
-        if spec.name == name:
-            return out
+    if name in BY_NAME and shareable(name, cfg):
+        out = set()
+        for spec in SPECS[: STAGE_INDEX[name] + 1]:
+            out.update(sk for p in spec.settings for sk in _keys(p))
+        return out
     return {(s, k) for s, rules in RULES.items() for k in rules}
 
 

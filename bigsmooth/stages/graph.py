@@ -108,10 +108,15 @@ def _partitioned(ctx, E, k, g):
         rows = np.asarray(rows_all[ptr[p] : ptr[p + 1]])
         if not len(rows):
             continue
-        slot = np.argmax(membership[rows] == p, axis=1)
-        cols = slot[:, None] * k + np.arange(k)[None, :]
-        cand_ind[rows[:, None], cols] = art.GRAPH_PARTS.load(rundir, member=_part_name(p) + "-ind")
-        cand_dist[rows[:, None], cols] = art.GRAPH_PARTS.load(rundir, member=_part_name(p) + "-dist")
+        partition.place(
+            cand_ind,
+            cand_dist,
+            membership,
+            p,
+            rows,
+            art.GRAPH_PARTS.load(rundir, member=_part_name(p) + "-ind"),
+            art.GRAPH_PARTS.load(rundir, member=_part_name(p) + "-dist"),
+        )
     ind = np.empty((n, k), dtype=np.int64)
     dist = np.empty((n, k))
     step = 262_144

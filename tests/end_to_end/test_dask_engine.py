@@ -26,13 +26,11 @@ def cluster():
 def _case(path, engine, address=""):
     path.mkdir()
     cfg = _write_case(path, _small_table(3000, seed=51), PARTITIONED)
-    text = cfg.read_text().replace("[graph]", '[graph]\nbuild = "partitioned"\npartition_rows = 900', 1)
-    if "[graph]" not in text:
-        text += '\n[graph]\nbuild = "partitioned"\npartition_rows = 900\n'
+    text = cfg.read_text()
+    assert "[graph]" in text and "[run]" in text  # the demo's config template has both sections
+    text = text.replace("[graph]", '[graph]\nbuild = "partitioned"\npartition_rows = 900', 1)
     if engine == "dask":
         text = text.replace("[run]", f'[run]\nengine = "dask"\ndask_scheduler = "{address}"', 1)
-        if 'engine = "dask"' not in text:
-            text += f'\n[run]\nengine = "dask"\ndask_scheduler = "{address}"\n'
     cfg.write_text(text)
     return cfg
 

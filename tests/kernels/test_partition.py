@@ -23,9 +23,7 @@ def _build(E, cap, overlap, k, seed=1, reverse=False):
     cd = np.full((n, m * k), np.inf)
     for p in range(parts)[::-1] if reverse else range(parts):
         r = rows[ptr[p] : ptr[p + 1]]
-        i, d = pt.search_partition(E, r, k)
-        cols = np.argmax(membership[r] == p, axis=1)[:, None] * k + np.arange(k)[None, :]
-        ci[r[:, None], cols], cd[r[:, None], cols] = i, d
+        pt.place(ci, cd, membership, p, r, *pt.search_partition(E, r, k))
     ind, dist = pt.merge(ci, cd, k)
     return ind, dist, membership, sizes
 
