@@ -83,6 +83,10 @@ class Artifact:
         with open(self.path(rundir), "rb") as fh:
             return fh.read()
 
+    def rows(self, rundir, member=None):
+        """A :class:`RowReader` on an ``npy`` (or ``dir`` member) artifact."""
+        return RowReader(self.path(rundir, member))
+
     def save(self, rundir, value, member=None):
         """Write atomically (temporary sibling, fsync, rename)."""
         self.folder(rundir)
@@ -92,10 +96,39 @@ class Artifact:
             atomic.save_npy(self.path(rundir, member), value)
         elif self.kind == "csr":
             atomic.save_npy(self.path(rundir, "indptr"), value.indptr.astype(np.int64))
-            atomic.save_npy(self.path(rundir, "indices"), value.indices.astype(np.int64))
+            atomic.save_npy(self.path(rundir, "indices"), value.indices.astype(index_dtype(value.shape[0])))
             atomic.save_npy(self.path(rundir, "data"), value.data)
         else:
             atomic.write_bytes(self.path(rundir), value)
+
+
+def index_dtype(n):
+    """The dtype of a stored CSR's column indices: int32 while the row count fits (scipy would
+    convert int64 indices to int32 on loading, a copy of the whole array), else int64."""
+    return np.int32 if n < np.iinfo(np.int32).max else np.int64
+
+
+class RowReader:
+    """Rows of a .npy file read on demand: each ``reader[key]`` maps the file, copies the rows
+    asked for and unmaps it, so a pass over a large array in blocks keeps only the current block
+    in the process's resident memory (a long-lived memory map would keep every page it touched).
+    Kernels take it like an array (``shape``, ``dtype``, ``len``, slices and index arrays)."""
+
+    def __init__(self, path):
+        self.path = path
+        m = np.load(path, mmap_mode="r")
+        self.shape, self.dtype = m.shape, m.dtype
+        del m
+
+    def __len__(self):
+        return self.shape[0]
+
+    def __getitem__(self, key):
+        m = np.load(self.path, mmap_mode="r")
+        try:
+            return np.array(m[key])
+        finally:
+            del m
 
 
 CATALOGUE = {}
@@ -153,7 +186,7 @@ GRAPH_SCRATCH = _a(
     "graph",
     "graph/scratch",
     "dir",
-    "the graph stage's working files (candidate lists, edge shards); removed when the stage is done",
+    "the graph stage's working files (float64 distances, edge shards); removed when the stage is done",
 )
 GRAPH_INFO = _a("graph.info", "graph", "graph/graph.json", "json", "edges, degrees, sigma, isolated rows")
 ORDER_PERM = _a("order.perm", "order", "order/order.npy", "npy", "solver row order: position -> input row")

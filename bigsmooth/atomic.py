@@ -104,6 +104,35 @@ def open_memmap(target, dtype, shape):
             del arr
 
 
+class NpyWriter:
+    """Appends rows to a .npy file of a known shape with plain writes (no memory map, so the rows
+    written do not stay in the writer's resident memory). Use through :func:`npy_writer`."""
+
+    def __init__(self, fh, dtype, shape):
+        self.fh, self.dtype, self.shape, self.rows = fh, np.dtype(dtype), tuple(shape), 0
+
+    def write(self, block):
+        block = np.ascontiguousarray(block, dtype=self.dtype)
+        if block.shape[1:] != self.shape[1:] or self.rows + len(block) > self.shape[0]:
+            raise ValueError(f"block of shape {block.shape} does not fit {self.shape} at row {self.rows}")
+        self.fh.write(block.tobytes())
+        self.rows += len(block)
+
+
+@contextlib.contextmanager
+def npy_writer(target, dtype, shape):
+    """Yield a :class:`NpyWriter` on a temporary sibling of ``target``; when every row has been
+    written, rename it into place (complete or absent, like every other write here)."""
+    with atomic_path(target) as tmp:
+        with open(tmp, "wb") as fh:
+            header = {"descr": np.lib.format.dtype_to_descr(np.dtype(dtype)), "fortran_order": False}
+            np.lib.format.write_array_header_2_0(fh, {**header, "shape": tuple(shape)})
+            out = NpyWriter(fh, dtype, shape)
+            yield out
+            if out.rows != shape[0]:
+                raise ValueError(f"{out.rows} rows written of {shape[0]}: {target}")
+
+
 def _json_default(obj):
     if isinstance(obj, np.integer):
         return int(obj)

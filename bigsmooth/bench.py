@@ -346,6 +346,10 @@ def _job(args, base):
     peak_kb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     rundir = _the_run(base)
     m = read_json(os.path.join(rundir, art.MANIFEST))
+    # the job resets its peak at each stage (per-stage figures in the manifest), so the child's
+    # getrusage maximum covers the last stage only: the job's peak is the largest of them
+    stage_peaks = {k: v.get("summary", {}).get("peak_rss_mb") for k, v in m["stages"].items()}
+    peak_kb = max([peak_kb] + [p * 1024 for p in stage_peaks.values() if p])
     solve = art.SOLVE_INFO.load(rundir)
     E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
     ind = art.GRAPH_NEIGHBOURS.load(rundir, mmap=True)
@@ -357,6 +361,7 @@ def _job(args, base):
         "job_seconds": t_job,
         "stage_seconds": {k: v.get("seconds") for k, v in m["stages"].items()},
         "peak_rss_gb": peak_kb * 1024 / 1e9,
+        "stage_peak_rss_mb": stage_peaks,
         "rss_bytes_per_row": peak_kb * 1024 / args.rows,
         "recall_at_k": recall,
         "recall_sample": args.sample,
@@ -389,6 +394,14 @@ def _print(table, args, out):
         print(
             f"job {table['job_seconds']:.1f} s (child process, incl. numba compilation); peak RSS "
             f"{table['peak_rss_gb']:.2f} GB ({table['rss_bytes_per_row']:.0f} B/row)"
+        )
+        print(
+            "stage peak RSS: "
+            + ", ".join(
+                f"{k} {v / 1024:.2f} GB"
+                for k, v in table.get("stage_peak_rss_mb", {}).items()
+                if v is not None
+            )
         )
         print(
             "stages: "

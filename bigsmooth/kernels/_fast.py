@@ -219,27 +219,115 @@ def inside_edges(indptr, indices, label, counts_only, ptr, out):
 
 
 @numba.njit(cache=True, nogil=True)
-def smallest_per_row(g, skip_offset, kk, out_ind, out_val):
-    """The kk smallest entries of each row of g (b, m), ascending by (value, column); column
-    i + skip_offset of row i is skipped (the row itself). One pass over g with a sorted insertion
-    list per row: a compare per entry, a shift only when an entry beats the list's last."""
+def smallest_merge(g, col_offset, skip_offset, out_ind, out_val):
+    """Merge the entries of g (b, m) into each row's list of the kk smallest so far (out_ind,
+    out_val of shape (b, kk), ascending by (value, column); empty places are -1 / inf). Entry j of
+    row i stands for column j + col_offset; column i + skip_offset of row i is skipped (the row
+    itself). Called on column tiles in ascending order, the lists end ascending by (value, column)
+    over all tiles. Entries are checked 64 at a time against the list's last (a loop the compiler
+    turns into vector compares; measured about 2x faster than one compare and branch per entry);
+    only a run holding a smaller entry is walked one by one, shifting the list where one beats it."""
     b, m = g.shape
+    kk = out_val.shape[1]
+    run = 64
     for i in range(b):
         vals = out_val[i]
         inds = out_ind[i]
-        for q in range(kk):
-            vals[q] = np.inf
-            inds[q] = -1
-        me = i + skip_offset
-        last = np.inf
-        for j in range(m):
-            v = g[i, j]
-            if v < last and j != me:
-                p = kk - 1
-                while p > 0 and vals[p - 1] > v:
-                    vals[p] = vals[p - 1]
-                    inds[p] = inds[p - 1]
-                    p -= 1
-                vals[p] = v
-                inds[p] = j
-                last = vals[kk - 1]
+        row = g[i]
+        me = i + skip_offset - col_offset
+        last = vals[kk - 1]
+        for j0 in range(0, m, run):
+            j1 = min(j0 + run, m)
+            hit = False
+            for j in range(j0, j1):
+                hit |= row[j] < last
+            if not hit:
+                continue
+            for j in range(j0, j1):
+                v = row[j]
+                if v < last and j != me:
+                    p = kk - 1
+                    while p > 0 and vals[p - 1] > v:
+                        vals[p] = vals[p - 1]
+                        inds[p] = inds[p - 1]
+                        p -= 1
+                    vals[p] = v
+                    inds[p] = j + col_offset
+                    last = vals[kk - 1]
+
+
+@numba.njit(cache=True, nogil=True)
+def max_merge_fill(rows, cols, w, lo, out_ptr, out_cols, out_w):
+    """Compiled twin of :func:`bigsmooth.kernels.twins.max_merge_fill`: per row lo.. (rows - lo
+    indexes out_ptr), one entry per column with the larger weight, columns ascending. out_ptr
+    (rows + 1) receives the merged row starts; out_cols / out_w (len(rows)) the entries, packed."""
+    nr = len(out_ptr) - 1
+    start = np.zeros(nr + 1, dtype=np.int64)
+    for e in range(len(rows)):
+        start[rows[e] - lo + 1] += 1
+    for i in range(nr):
+        start[i + 1] += start[i]
+    fill = start[:-1].copy()
+    bc = np.empty(len(rows), dtype=np.int64)
+    bw = np.empty(len(rows), dtype=np.float64)
+    for e in range(len(rows)):
+        r = rows[e] - lo
+        bc[fill[r]] = cols[e]
+        bw[fill[r]] = w[e]
+        fill[r] += 1
+    at = 0
+    out_ptr[0] = 0
+    for i in range(nr):
+        a, b = start[i], start[i + 1]
+        c = bc[a:b]
+        v = bw[a:b]
+        order = np.argsort(c, kind="mergesort")
+        prev = -1
+        for q in range(b - a):
+            j = c[order[q]]
+            x = v[order[q]]
+            if j == prev:
+                if x > out_w[at - 1]:
+                    out_w[at - 1] = x
+            else:
+                out_cols[at] = j
+                out_w[at] = x
+                at += 1
+                prev = j
+        out_ptr[i + 1] = at
+
+
+@numba.njit(cache=True, nogil=True)
+def merge_lists(cand_ind, cand_dist, out_ind, out_dist):
+    """Per row, the k = out_ind.shape[1] best distinct candidates of (b, c) candidate lists by
+    (distance, row), ascending; -1 / inf for none. A candidate is inserted into a sorted list of k
+    when it beats the list's last and is not in the list already."""
+    b, c = cand_ind.shape
+    k = out_ind.shape[1]
+    for i in range(b):
+        oi = out_ind[i]
+        od = out_dist[i]
+        for q in range(k):
+            oi[q] = -1
+            od[q] = np.inf
+        for j in range(c):
+            v = cand_ind[i, j]
+            d = cand_dist[i, j]
+            if v < 0:
+                continue
+            if not (d < od[k - 1] or (d == od[k - 1] and (oi[k - 1] < 0 or v < oi[k - 1]))):
+                continue
+            seen = False
+            for q in range(k):
+                if oi[q] == v:
+                    seen = True
+                    break
+            if seen:
+                continue
+            p = k - 1
+            while p > 0 and (od[p - 1] > d or (od[p - 1] == d and (oi[p - 1] < 0 or oi[p - 1] > v))):
+                oi[p] = oi[p - 1]
+                od[p] = od[p - 1]
+                p -= 1
+            oi[p] = v
+            od[p] = d

@@ -105,15 +105,55 @@ def approx_knn(X, k, seed, n_trees=0, search=None, threads=1):
     return ind[:, :k], dist[:, :k]
 
 
+def median_positive(distances, block=1 << 20):
+    """np.median of the positive entries of ``distances`` (any array-like of float64 read by row
+    slices, such as an artifact's RowReader), exactly and in memory bounded by ``block`` rows:
+    a radix selection on the float64 bit patterns, which order positive numbers as their values.
+    Pass 1 counts the entries by their top 16 bits, pass 2 by the next 16 inside the chosen
+    bucket, pass 3 collects the few entries that share the chosen top 32 bits and sorts them.
+    Returns None when no entry is positive. Reference: numpy.median (tests/kernels/test_graph.py)."""
+    n = distances.shape[0]
+
+    def bits():
+        for lo in range(0, n, block):
+            d = np.asarray(distances[lo : lo + block], dtype=np.float64).ravel()
+            yield d[d > 0].view(np.uint64)
+
+    top = np.zeros(1 << 16, dtype=np.int64)
+    for b in bits():
+        top += np.bincount((b >> np.uint64(48)).astype(np.int64), minlength=1 << 16)
+    total = int(top.sum())
+    if total == 0:
+        return None
+    ranks = [total // 2] if total % 2 else [total // 2 - 1, total // 2]
+    values = []
+    for r in ranks:
+        cum = np.cumsum(top)
+        hi16 = int(np.searchsorted(cum, r, side="right"))
+        r1 = r - (int(cum[hi16 - 1]) if hi16 else 0)
+        mid = np.zeros(1 << 16, dtype=np.int64)
+        for b in bits():
+            b = b[(b >> np.uint64(48)) == hi16]
+            mid += np.bincount(((b >> np.uint64(32)) & np.uint64(0xFFFF)).astype(np.int64), minlength=1 << 16)
+        cum2 = np.cumsum(mid)
+        lo16 = int(np.searchsorted(cum2, r1, side="right"))
+        r2 = r1 - (int(cum2[lo16 - 1]) if lo16 else 0)
+        prefix = np.uint64((hi16 << 16) | lo16)
+        same = np.sort(np.concatenate([b[(b >> np.uint64(32)) == prefix] for b in bits()]))
+        values.append(float(same.view(np.float64)[r2]))
+    return values[0] if len(values) == 1 else (values[0] + values[1]) / 2.0
+
+
 def kernel_scale(distances, rule="global", factor=1.0):
     """The heat-kernel scale.
 
     ``global``: one sigma, the median of the positive neighbour distances (times ``factor``).
     ``local``: sigma_i = distance to row i's min(7, k)-th neighbour (self-tuning scale), falling
     back to the global sigma where that distance is 0. Returns an array of shape (n,) either way.
+    ``distances`` may be an array or a RowReader (read in row blocks).
     """
-    pos = distances[distances > 0]
-    g = float(np.median(pos)) if pos.size else 1.0
+    g = median_positive(distances)
+    g = 1.0 if g is None else g
     n, k = distances.shape
     if rule == "global":
         return np.full(n, g * factor)
@@ -149,15 +189,25 @@ def heat_kernel_graph(indices, distances, sigma):
     return W
 
 
-def sampled_recall(E, ind, sample_rows, rng, chunk=8192):
-    """Recall@k of neighbour lists ``ind`` (n, k) against exact neighbours, on a random sample of rows.
+def recall_sample(n, sample_rows, rng):
+    """The rows a sampled recall is measured on (sorted, without repeats)."""
+    return np.sort(rng.choice(n, size=min(sample_rows, n), replace=False))
 
-    For a sampled row with list distances a_1..a_k, every true neighbour lies within max(a): one pass
-    over the table in chunks keeps only the rows within that radius (a compare after a matrix
-    product, no selection over the whole table), and the k nearest of those by (distance, row) are
-    the exact neighbours. Reference: sklearn's brute-force NearestNeighbors (tests)."""
-    n, k = ind.shape
-    s = np.sort(rng.choice(n, size=min(sample_rows, n), replace=False))
+
+def recall_hits(E, ind, rows, chunk=8192):
+    """How many of the listed neighbours ``ind[rows]`` are among the exact k nearest neighbours of
+    those rows (by (distance, row)); recall@k = hits / (len(rows) k). ``E`` and ``ind`` are arrays
+    or RowReaders.
+
+    For a row with list distances a_1..a_k, every true neighbour lies within max(a): one pass over
+    the table in chunks keeps only the rows within that radius (a compare after a matrix product,
+    no selection over the whole table), and the k nearest of those by (distance, row) are the
+    exact neighbours. Reference: sklearn's brute-force NearestNeighbors (tests)."""
+    s = np.asarray(rows)
+    n = E.shape[0]
+    k = ind.shape[1]
+    if not len(s):
+        return 0
     Q = np.asarray(E[s], dtype=np.float64)
     lists = np.asarray(ind[s])
     a = np.sqrt(
@@ -189,12 +239,18 @@ def sampled_recall(E, ind, sample_rows, rng, chunk=8192):
     d = np.sqrt(np.sum((Q[r] - np.asarray(E[c], dtype=np.float64)) ** 2, axis=1))
     order = np.lexsort((c, d, r))
     r, c = r[order], c[order]
+    # the first k of each row's run are its exact neighbours
     starts = np.searchsorted(r, np.arange(len(s)))
-    hits = 0
-    for j in range(len(s)):
-        true = c[starts[j] : starts[j] + k]
-        hits += len(np.intersect1d(true, lists[j]))
-    return float(hits / (len(s) * k))
+    rank = np.arange(len(r)) - starts[r]
+    r, c = r[rank < k], c[rank < k]
+    return int(np.sum((lists[r] == c[:, None]).any(axis=1)))
+
+
+def sampled_recall(E, ind, sample_rows, rng, chunk=8192):
+    """Recall@k of neighbour lists ``ind`` (n, k) against exact neighbours, on a random sample of
+    rows (:func:`recall_hits` on :func:`recall_sample`)."""
+    s = recall_sample(ind.shape[0], sample_rows, rng)
+    return float(recall_hits(E, ind, s, chunk) / (len(s) * ind.shape[1]))
 
 
 def heat_edges(indices, distances, sigma, lo=0):
@@ -216,18 +272,24 @@ def max_merge_rows(rows, cols, w, lo, hi):
     ascending. Returns (indptr (hi - lo + 1,) int64 from 0, indices int64, data float64).
 
     The rows of a table can be merged shard by shard this way in bounded memory; put together they
-    equal :func:`heat_kernel_graph` (the reference in tests/kernels/test_graph.py)."""
-    n = max(int(cols.max()) + 1, hi) if len(cols) else hi
-    # one int64 key per (row, col); the order among equal keys does not matter for a maximum
-    key = (rows - lo) * n + cols
-    order = np.argsort(key)
-    key, v = key[order], w[order]
-    r, c = rows[order], cols[order]
-    new = np.ones(len(r), dtype=bool)
-    new[1:] = key[1:] != key[:-1]
-    starts = np.flatnonzero(new)
-    data = np.maximum.reduceat(v, starts) if len(v) else v
-    r, c = r[starts], c[starts]
+    equal :func:`heat_kernel_graph` (the reference in tests/kernels/test_graph.py). The work is the
+    compiled ``max_merge_fill`` (a bucket per row, then each row's few columns sorted: linear in the
+    edges, where one sort of (row, col) keys took most of the weights' time), or its twin."""
+    try:
+        from ._fast import max_merge_fill
+    except ImportError:
+        from .twins import max_merge_fill
     indptr = np.zeros(hi - lo + 1, dtype=np.int64)
-    np.cumsum(np.bincount(r - lo, minlength=hi - lo), out=indptr[1:])
-    return indptr, c.astype(np.int64), data
+    out_cols = np.empty(len(rows), dtype=np.int64)
+    out_w = np.empty(len(rows), dtype=np.float64)
+    max_merge_fill(
+        rows=np.asarray(rows, dtype=np.int64),
+        cols=np.asarray(cols, dtype=np.int64),
+        w=np.asarray(w, dtype=np.float64),
+        lo=lo,
+        out_ptr=indptr,
+        out_cols=out_cols,
+        out_w=out_w,
+    )
+    m = int(indptr[-1])
+    return indptr, out_cols[:m].copy(), out_w[:m].copy()

@@ -25,25 +25,30 @@ def _sq(X):
     return np.einsum("ij,ij->i", X, X)
 
 
-def nearest_centres(E, centres, m, chunk=65_536):
-    """(n, m) int32: each row's m nearest centres, nearest first (ties by centre index)."""
+def nearest_centres(E, centres, m, chunk=65_536, map_fn=map):
+    """(n, m) int32: each row's m nearest centres, nearest first (ties by centre index). Chunks of
+    rows go through ``map_fn`` (e.g. a thread pool's map; results are placed by chunk, so the
+    output does not depend on it)."""
     n = E.shape[0]
     m = min(m, len(centres))
     centres = np.asarray(centres, dtype=np.float64)
     cc = _sq(centres)
     Cm2 = -2.0 * centres.T
     out = np.empty((n, m), dtype=np.int32)
-    ind = np.empty((chunk, m), dtype=np.int64)
-    val = np.empty((chunk, m))
-    select = _selector()
+    merge_into = _merger()
     never = -(n + len(centres) + 1)  # no column is the row itself
-    for s in range(0, n, chunk):
+
+    def one(s):
         X = np.asarray(E[s : s + chunk], dtype=np.float64)
         g = X @ Cm2
         g += cc[None, :]
-        b = len(X)
-        select(g=g, skip_offset=never, kk=m, out_ind=ind[:b], out_val=val[:b])
-        out[s : s + b] = ind[:b]
+        ind = np.full((len(X), m), -1, dtype=np.int64)
+        val = np.full((len(X), m), np.inf)
+        merge_into(g=g, col_offset=0, skip_offset=never, out_ind=ind, out_val=val)
+        out[s : s + len(X)] = ind
+
+    for _ in map_fn(one, range(0, n, chunk)):
+        pass
     return out
 
 
@@ -74,12 +79,14 @@ def _kmeans(X, k, rng):
     return centres[used]
 
 
-def plan(E, cap, overlap, k, rng, max_rounds=6, log=None):
+def plan(E, cap, overlap, k, rng, max_rounds=6, log=None, map_fn=map):
     """Balanced centres for partitions of at most ``cap`` rows (counting every row in each of its
     ``overlap`` partitions). Plain k-means leaves some partitions several times the mean, so a
     partition over the cap is split by k-means on its members in the sample, and all rows are
     assigned again; a partition with no more than k members is merged away. After ``max_rounds``
     the plan is taken as it is (the stage logs the largest partition).
+
+    ``map_fn`` maps the assignment of row chunks (see :func:`nearest_centres`).
 
     Returns (centres (P, d), membership (n, overlap) int32, sizes (P,) int64)."""
     n = E.shape[0]
@@ -92,7 +99,7 @@ def plan(E, cap, overlap, k, rng, max_rounds=6, log=None):
     for rnd in range(max_rounds):
         # the sample's memberships choose the rows a split is trained on; sizes count every row
         member_s = nearest_centres(Xs, centres, overlap)
-        near = nearest_centres(E, centres, overlap)
+        near = nearest_centres(E, centres, overlap, map_fn=map_fn)
         sizes = np.bincount(near.ravel(), minlength=len(centres))
         primary = np.bincount(near[:, 0], minlength=len(centres))
         small = primary <= k
@@ -112,7 +119,7 @@ def plan(E, cap, overlap, k, rng, max_rounds=6, log=None):
             new = Xs.mean(axis=0, keepdims=True)
         centres = new
     else:
-        near = nearest_centres(E, centres, overlap)
+        near = nearest_centres(E, centres, overlap, map_fn=map_fn)
         sizes = np.bincount(near.ravel(), minlength=len(centres))
     return centres, near, sizes
 
@@ -127,33 +134,42 @@ def members(membership, parts):
     return ptr, row[order]
 
 
-def exact_in(X, k, block=512, slack=3):
+def exact_in(X, k, row_block=256, col_block=2048, slack=3):
     """Exact k nearest neighbours among the rows of X (m, d), each row excluding itself:
     (local ind (m, k), dist (m, k) float64) ascending by (distance, index).
 
     Candidates are ranked by ||x_j||^2 - 2 x_i.x_j in float32 (the row's own ||x_i||^2 does not
-    change the ranking; the embedding is float32 to begin with): one matrix product and one
-    selection pass per block of rows keep the k + ``slack`` smallest, whose distances are then
-    computed directly in float64 and the best k kept, so round-off of the expanded form can only
-    matter for a neighbour tied within it at the k-th place. Reference: :func:`graph.exact_knn`
-    (tests/kernels/test_partition.py)."""
+    change the ranking; the embedding is float32 to begin with), computed as one matrix product of
+    [-2 x_i, 1] and [x_j, ||x_j||^2] per tile of ``row_block`` x ``col_block`` (small enough to stay
+    in the core's cache while the compiled pass merges it into each row's k + ``slack`` best). The
+    chosen distances are then computed directly in float64 and the best k kept, so round-off of the
+    expanded form can only matter for a neighbour tied within it at the k-th place. Reference:
+    :func:`graph.exact_knn` (tests/kernels/test_partition.py)."""
     m = X.shape[0]
     X32 = np.ascontiguousarray(X, dtype=np.float32)
     X64 = np.asarray(X, dtype=np.float64)
-    sq = np.einsum("ij,ij->i", X32, X32)
-    Xm2 = -2.0 * X32
+    A = np.empty((m, X32.shape[1] + 1), dtype=np.float32)
+    A[:, :-1] = -2.0 * X32
+    A[:, -1] = 1.0
+    B = np.empty((X32.shape[1] + 1, m), dtype=np.float32)
+    B[:-1] = X32.T
+    B[-1] = np.einsum("ij,ij->i", X32, X32)
     ind = np.empty((m, k), dtype=np.int64)
     dist = np.empty((m, k))
     kk = min(m - 1, k + slack)
-    part = np.empty((block, kk), dtype=np.int64)
-    val = np.empty((block, kk), dtype=np.float32)
-    select = _selector()
-    for s in range(0, m, block):
-        e = min(s + block, m)
-        g = X32[s:e] @ Xm2.T
-        g += sq[None, :]
-        select(g=g, skip_offset=s, kk=kk, out_ind=part[: e - s], out_val=val[: e - s])
-        part_b = part[: e - s]
+    part = np.empty((row_block, kk), dtype=np.int64)
+    val = np.empty((row_block, kk), dtype=np.float32)
+    g = np.empty((row_block, min(col_block, m)), dtype=np.float32)
+    merge_into = _merger()
+    for s in range(0, m, row_block):
+        e = min(s + row_block, m)
+        part_b, val_b = part[: e - s], val[: e - s]
+        part_b[:], val_b[:] = -1, np.inf
+        for c in range(0, m, col_block):
+            ce = min(c + col_block, m)
+            tile = g[: e - s, : ce - c]
+            np.matmul(A[s:e], B[:, c:ce], out=tile)
+            merge_into(g=tile, col_offset=c, skip_offset=s, out_ind=part_b, out_val=val_b)
         pd = np.sqrt(np.sum((X64[s:e, None, :] - X64[part_b]) ** 2, axis=2))
         order = np.lexsort((part_b, pd), axis=1)[:, :k]
         ind[s:e] = np.take_along_axis(part_b, order, axis=1)
@@ -161,13 +177,13 @@ def exact_in(X, k, block=512, slack=3):
     return ind, dist
 
 
-def _selector():
-    """The compiled row selection (kernels._fast.smallest_per_row), or its Python twin without numba."""
+def _merger():
+    """The compiled list merge (kernels._fast.smallest_merge), or its Python twin without numba."""
     try:
-        from ._fast import smallest_per_row
+        from ._fast import smallest_merge
     except ImportError:
-        from .twins import smallest_per_row
-    return smallest_per_row
+        from .twins import smallest_merge
+    return smallest_merge
 
 
 def search_partition(E, rows, k):
@@ -200,14 +216,14 @@ def place(cand_ind, cand_dist, membership, p, rows, ind, dist):
 
 def merge(cand_ind, cand_dist, k):
     """Per row, the k best distinct candidates by (distance, row) from (n, c) candidate lists
-    (-1 / inf for none). The same pair found in two partitions has the same distance (computed
-    from the same vectors), so duplicates sit side by side once sorted."""
-    order = np.lexsort((cand_ind, cand_dist), axis=1)
-    ci = np.take_along_axis(cand_ind, order, axis=1)
-    cd = np.take_along_axis(cand_dist, order, axis=1)
-    dup = np.zeros(ci.shape, dtype=bool)
-    dup[:, 1:] = (ci[:, 1:] == ci[:, :-1]) & (ci[:, 1:] >= 0)
-    cd = np.where(dup, np.inf, cd)
-    ci = np.where(dup, -1, ci)
-    order = np.lexsort((np.where(ci < 0, np.iinfo(np.int64).max, ci), cd), axis=1)[:, :k]
-    return np.take_along_axis(ci, order, axis=1), np.take_along_axis(cd, order, axis=1)
+    (-1 / inf for none): the compiled ``merge_lists``, or its twin (sorting each row's candidates)
+    without numba. The same pair found in two partitions has the same distance (computed from the
+    same vectors), so it is one candidate."""
+    try:
+        from ._fast import merge_lists
+    except ImportError:
+        from .twins import merge_lists
+    out_ind = np.empty((cand_ind.shape[0], k), dtype=np.int64)
+    out_dist = np.empty((cand_ind.shape[0], k))
+    merge_lists(cand_ind=cand_ind, cand_dist=cand_dist, out_ind=out_ind, out_dist=out_dist)
+    return out_ind, out_dist

@@ -68,15 +68,50 @@ def inside_edges(indptr, indices, label, counts_only, ptr, out):
             out[ptr[i] : ptr[i] + len(keep)] = keep
 
 
-def smallest_per_row(g, skip_offset, kk, out_ind, out_val):
+def smallest_merge(g, col_offset, skip_offset, out_ind, out_val):
     b, m = g.shape
+    kk = out_val.shape[1]
     for i in range(b):
-        v = g[i].copy()
-        if 0 <= i + skip_offset < m:
-            v[i + skip_offset] = np.inf
-        order = np.lexsort((np.arange(m), v))[:kk]
-        out_ind[i] = np.where(np.isfinite(v[order]), order, -1)
-        out_val[i] = v[order]
+        cols = np.arange(m) + col_offset
+        take = (cols != i + skip_offset) & (g[i] < np.inf)
+        have = out_val[i] < np.inf
+        v = np.concatenate([out_val[i][have], g[i][take]])
+        c = np.concatenate([out_ind[i][have], cols[take]])
+        order = np.lexsort((c, v))[:kk]
+        out_val[i] = np.inf
+        out_ind[i] = -1
+        out_val[i, : len(order)] = v[order]
+        out_ind[i, : len(order)] = c[order]
+
+
+def max_merge_fill(rows, cols, w, lo, out_ptr, out_cols, out_w):
+    nr = len(out_ptr) - 1
+    n = int(cols.max()) + 1 if len(cols) else 1
+    key = (rows - lo) * n + cols  # one int64 key per (row, col)
+    order = np.argsort(key, kind="stable")
+    key, v, r, c = key[order], w[order], rows[order], cols[order]
+    new = np.ones(len(r), dtype=bool)
+    new[1:] = key[1:] != key[:-1]
+    starts = np.flatnonzero(new)
+    m = len(starts)
+    out_w[:m] = np.maximum.reduceat(v, starts) if len(v) else v
+    out_cols[:m] = c[starts]
+    out_ptr[0] = 0
+    np.cumsum(np.bincount(r[starts] - lo, minlength=nr), out=out_ptr[1:])
+
+
+def merge_lists(cand_ind, cand_dist, out_ind, out_dist):
+    k = out_ind.shape[1]
+    order = np.lexsort((cand_ind, cand_dist), axis=1)
+    ci = np.take_along_axis(cand_ind, order, axis=1)
+    cd = np.take_along_axis(cand_dist, order, axis=1)
+    dup = np.zeros(ci.shape, dtype=bool)  # the same row twice sits side by side once sorted
+    dup[:, 1:] = (ci[:, 1:] == ci[:, :-1]) & (ci[:, 1:] >= 0)
+    cd = np.where(dup, np.inf, cd)
+    ci = np.where(dup, -1, ci)
+    order = np.lexsort((np.where(ci < 0, np.iinfo(np.int64).max, ci), cd), axis=1)[:, :k]
+    out_ind[:] = np.take_along_axis(ci, order, axis=1)
+    out_dist[:] = np.take_along_axis(cd, order, axis=1)
 
 
 def registry():
@@ -94,6 +129,8 @@ def registry():
         "split_matvec": split_matvec,
         "split_residual_sq": split_residual_sq,
         "inside_edges": inside_edges,
-        "smallest_per_row": smallest_per_row,
+        "smallest_merge": smallest_merge,
+        "max_merge_fill": max_merge_fill,
+        "merge_lists": merge_lists,
         "_split_row": None,  # inlined helper of split_matvec / split_residual_sq, tested through them
     }

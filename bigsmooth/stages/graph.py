@@ -7,6 +7,7 @@ may be a Dask cluster), its result written to graph/parts; the neighbours are th
 A partition whose result file exists is not searched again, so a killed stage resumes there.
 """
 
+import contextlib
 import logging
 import os
 import shutil
@@ -26,6 +27,19 @@ log = logging.getLogger("bigsmooth.graph")
 RECALL_WARN = 0.95
 
 
+@contextlib.contextmanager
+def _local_pool(ctx):
+    """(map, workers): a map over local threads, one per core (the builtin map on one core). The
+    stage's own passes use it; partition searches are tasks (``ctx.task_executor``)."""
+    workers = os.cpu_count() or 1
+    pool = ctx.executor(workers, "threads")
+    try:
+        yield (pool.map if pool is not None else map), workers
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+
 def _part_name(p):
     return f"p{p:06d}"
 
@@ -36,7 +50,7 @@ def search_task(root, p, k):
     it twice, or on another host that mounts the run directory, gives the same file)."""
     if art.GRAPH_PARTS.exists_member(root, _part_name(p) + "-ind"):
         return p
-    E = art.EMBED_EMBEDDING.load(root, mmap=True)
+    E = art.EMBED_EMBEDDING.rows(root)
     ptr = art.GRAPH_PARTS.load(root, member="ptr", mmap=True)
     rows = np.asarray(art.GRAPH_PARTS.load(root, member="rows", mmap=True)[ptr[p] : ptr[p + 1]])
     ind, dist = partition.search_partition(E, rows, k)
@@ -48,16 +62,22 @@ def search_task(root, p, k):
 
 def _partitioned(ctx, E, k, g):
     rundir = ctx.rundir
-    n = E.shape[0]
     t0 = time.monotonic()
     if art.GRAPH_PARTS.exists_member(rundir, "ptr"):
         membership = art.GRAPH_PARTS.load(rundir, member="membership")
         ptr = art.GRAPH_PARTS.load(rundir, member="ptr")
         log.info("partitions: %d, planned earlier (resuming)", len(ptr) - 1)
     else:
-        _, membership, _ = partition.plan(
-            E, g["partition_rows"], g["partition_overlap"], k, ctx.rng("graph.partition"), log=log.info
-        )
+        with _local_pool(ctx) as (map_fn, _):
+            _, membership, _ = partition.plan(
+                E,
+                g["partition_rows"],
+                g["partition_overlap"],
+                k,
+                ctx.rng("graph.partition"),
+                log=log.info,
+                map_fn=map_fn,
+            )
         parts = int(membership.max()) + 1
         ptr, rows = partition.members(membership, parts)
         art.GRAPH_PARTS.save(rundir, membership, member="membership")
@@ -98,53 +118,94 @@ def _partitioned(ctx, E, k, g):
         if executor is not None:
             executor.shutdown()
     log.info("partitions searched in %.1f s; merging", time.monotonic() - t0)
-    m = membership.shape[1]
-    # every row's candidates from its partitions, in files (the kernel's pages to evict)
-    art.GRAPH_SCRATCH.folder(rundir)
-    cand_ind = atomic.new_memmap(art.GRAPH_SCRATCH.path(rundir, "cand-ind"), np.int64, (n, m * k))
-    cand_dist = atomic.new_memmap(art.GRAPH_SCRATCH.path(rundir, "cand-dist"), np.float64, (n, m * k))
-    rows_all = art.GRAPH_PARTS.load(rundir, member="rows", mmap=True)
-    for p in range(parts):  # a fixed order, whatever order the tasks finished in
-        rows = np.asarray(rows_all[ptr[p] : ptr[p + 1]])
-        if not len(rows):
-            continue
-        partition.place(
-            cand_ind,
-            cand_dist,
-            membership,
-            p,
-            rows,
-            art.GRAPH_PARTS.load(rundir, member=_part_name(p) + "-ind"),
-            art.GRAPH_PARTS.load(rundir, member=_part_name(p) + "-dist"),
-        )
-    ind = np.empty((n, k), dtype=np.int64)
-    dist = np.empty((n, k))
-    step = 262_144
-    for s in range(0, n, step):
-        ind[s : s + step], dist[s : s + step] = partition.merge(
-            cand_ind[s : s + step], cand_dist[s : s + step], k
-        )
-    del cand_ind, cand_dist
+    _merge_parts(
+        rundir, membership, ptr, k, _block_rows(ctx.cfg["run"]["memory_mb"], membership.shape[1] * k)
+    )
     for p in range(parts):  # the merged lists replace them; the plan stays (membership, rows, ptr)
         for what in ("-ind", "-dist"):
             path = art.GRAPH_PARTS.path(rundir, _part_name(p) + what)
             if os.path.exists(path):
                 os.unlink(path)
-    missing = int(np.sum(ind < 0))
-    if missing:
-        raise RuntimeError(f"the partitioned build left {missing} neighbour slots empty (a bug)")
-    return ind, dist, {"partitions": parts, "partition_rows_max": int(sizes.max()), "overlap": m}
+    return {"partitions": parts, "partition_rows_max": int(sizes.max()), "overlap": membership.shape[1]}
 
 
-def write_weights(rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows=None):
+def _block_rows(memory_mb, width):
+    """Rows per block for a pass that holds about 40 bytes per column of a block (an eighth of the
+    memory budget; at least 65,536 rows)."""
+    return max(65_536, memory_mb * (1 << 20) // 8 // (40 * width))
+
+
+def _dist64(rundir):
+    return art.GRAPH_SCRATCH.path(rundir, "distances64")
+
+
+def _lists_writers(stack, rundir, n, k):
+    """Writers of the neighbour lists, their float32 distances (the artifact) and the float64
+    distances the weights are computed from (scratch)."""
+    art.GRAPH_SCRATCH.folder(rundir)
+    art.GRAPH_NEIGHBOURS.folder(rundir)
+    return [
+        stack.enter_context(atomic.npy_writer(path, dt, (n, k)))
+        for path, dt in (
+            (art.GRAPH_NEIGHBOURS.path(rundir), np.int64),
+            (art.GRAPH_DISTANCES.path(rundir), np.float32),
+            (_dist64(rundir), np.float64),
+        )
+    ]
+
+
+def _merge_parts(rundir, membership, ptr, k, block):
+    """Per block of rows, every row's results from its partitions (each partition's rows are
+    ascending, so a block is one slice of each partition's files), merged into its k best and
+    written out: memory holds one block of candidates, never the whole table's."""
+    n, m = membership.shape
+    parts = len(ptr) - 1
+    rows_all = art.GRAPH_PARTS.rows(rundir, "rows")
+    bounds = np.array(list(range(0, n, block)) + [n], dtype=np.int64)
+    cuts = np.empty((parts, len(bounds)), dtype=np.int64)
+    for p in range(parts):  # where each block starts in each partition
+        cuts[p] = ptr[p] + np.searchsorted(rows_all[ptr[p] : ptr[p + 1]], bounds)
+    with contextlib.ExitStack() as stack:
+        out_ind, out_dist32, out_dist = _lists_writers(stack, rundir, n, k)
+        for b in range(len(bounds) - 1):
+            lo, hi = int(bounds[b]), int(bounds[b + 1])
+            cand_ind = np.full((hi - lo, m * k), -1, dtype=np.int64)
+            cand_dist = np.full((hi - lo, m * k), np.inf)
+            local = membership[lo:hi]
+            for p in range(parts):  # a fixed order, whatever order the tasks finished in
+                a, e = int(cuts[p, b] - ptr[p]), int(cuts[p, b + 1] - ptr[p])
+                if a == e:
+                    continue
+                partition.place(
+                    cand_ind,
+                    cand_dist,
+                    local,
+                    p,
+                    rows_all[ptr[p] + a : ptr[p] + e] - lo,
+                    art.GRAPH_PARTS.rows(rundir, _part_name(p) + "-ind")[a:e],
+                    art.GRAPH_PARTS.rows(rundir, _part_name(p) + "-dist")[a:e],
+                )
+            ind, dist = partition.merge(cand_ind, cand_dist, k)
+            del cand_ind, cand_dist
+            missing = int(np.sum(ind < 0))
+            if missing:
+                raise RuntimeError(f"the partitioned build left {missing} neighbour slots empty (a bug)")
+            out_ind.write(ind)
+            out_dist32.write(dist.astype(np.float32))
+            out_dist.write(dist)
+
+
+def write_weights(rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows=None, map_fn=map, workers=1):
     """Write the symmetric heat-kernel weight matrix (the graph.weights CSR files) in bounded memory:
     the directed edges go to shard files by row range (each edge in both directions), each shard is
-    merged on its own (:func:`kernels.graph.max_merge_rows`), and the shards are copied into the
-    CSR files in row order. Equals :func:`kernels.graph.heat_kernel_graph` (tested). Returns
-    (stored entries, row sums)."""
+    merged on its own (:func:`kernels.graph.max_merge_rows`), and the shards are appended to the
+    CSR files in row order. ``ind`` and ``dist`` are arrays or RowReaders (read in blocks); shards
+    are merged through ``map_fn`` (a thread pool's map merges one shard per thread, so the budget
+    is shared among ``workers`` shards). Equals
+    :func:`kernels.graph.heat_kernel_graph` (tested). Returns (stored entries, row sums)."""
     n, k = ind.shape
     # a shard holds about 2 k edges per row at 24 bytes each; a quarter of the budget for one shard
-    shard_rows = shard_rows or max(65_536, memory_mb * (1 << 20) // 4 // (2 * k * 24 * 3))
+    shard_rows = shard_rows or max(65_536, memory_mb * (1 << 20) // 4 // workers // (2 * k * 24 * 3))
     bounds = list(range(0, n, shard_rows)) + [n]
     folder = art.GRAPH_SCRATCH.folder(rundir)
     files = {}
@@ -167,37 +228,41 @@ def write_weights(rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows
     finally:
         for fh in files.values():
             fh.close()
-    merged = []
     deg = np.empty(n)
-    for j in range(len(bounds) - 1):
+
+    def merge_shard(j):
         lo, hi = bounds[j], bounds[j + 1]
         parts = []
         for name, dt in (("r", np.int64), ("c", np.int64), ("w", np.float64)):
             path = os.path.join(folder, f"shard{j:05d}-{name}.bin")
             parts.append(np.fromfile(path, dtype=dt) if os.path.exists(path) else np.empty(0, dt))
+            if os.path.exists(path):
+                os.unlink(path)
         indptr, indices, data = gk.max_merge_rows(*parts, lo, hi)
         del parts
         # row sums as scipy computes them (the same loop over each row's entries)
         deg[lo:hi] = np.asarray(
             sp.csr_matrix((data, indices, indptr), shape=(hi - lo, n)).sum(axis=1)
         ).ravel()
-        np.save(os.path.join(folder, f"merged{j:05d}-indices.npy"), indices)
-        np.save(os.path.join(folder, f"merged{j:05d}-data.npy"), data)
-        merged.append(indptr)
+        indices.astype(art.index_dtype(n)).tofile(os.path.join(folder, f"merged{j:05d}-indices.bin"))
+        data.tofile(os.path.join(folder, f"merged{j:05d}-data.bin"))
+        return indptr
+
+    merged = list(map_fn(merge_shard, range(len(bounds) - 1)))
     nnz = int(sum(int(p[-1]) for p in merged))
     art.GRAPH_WEIGHTS.folder(rundir)
-    with atomic.open_memmap(art.GRAPH_WEIGHTS.path(rundir, "indptr"), np.int64, (n + 1,)) as out:
-        out[0], at = 0, 0
-        for j, p in enumerate(merged):
-            out[bounds[j] + 1 : bounds[j + 1] + 1] = p[1:] + at
+    with atomic.npy_writer(art.GRAPH_WEIGHTS.path(rundir, "indptr"), np.int64, (n + 1,)) as out:
+        out.write(np.zeros(1, dtype=np.int64))
+        at = 0
+        for p in merged:
+            out.write(p[1:] + at)
             at += int(p[-1])
-    for member, dt in (("indices", np.int64), ("data", np.float64)):
-        with atomic.open_memmap(art.GRAPH_WEIGHTS.path(rundir, member), dt, (nnz,)) as out:
-            at = 0
-            for j, p in enumerate(merged):
-                piece = np.load(os.path.join(folder, f"merged{j:05d}-{member}.npy"))
-                out[at : at + len(piece)] = piece
-                at += len(piece)
+    for member, dt in (("indices", art.index_dtype(n)), ("data", np.float64)):
+        with atomic.npy_writer(art.GRAPH_WEIGHTS.path(rundir, member), dt, (nnz,)) as out:
+            for j in range(len(merged)):
+                path = os.path.join(folder, f"merged{j:05d}-{member}.bin")
+                out.write(np.fromfile(path, dtype=dt))
+                os.unlink(path)
     return nnz, deg
 
 
@@ -205,7 +270,7 @@ def run(ctx):
     """The graph stage (see the module docstring)."""
     rundir, cfg = ctx.rundir, ctx.cfg
     g = cfg["graph"]
-    E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
+    E = art.EMBED_EMBEDDING.rows(rundir)  # read in blocks: the stage never maps the whole table
     n = E.shape[0]
     k = g["neighbours"]
     exact = n < g["exact_below"]
@@ -216,22 +281,36 @@ def run(ctx):
     log.info("neighbours: %s search for k=%d over %d rows x %d dims", search, k, n, E.shape[1])
     extra = {}
     if build == "partitioned":
-        ind, dist, extra = _partitioned(ctx, E, k, g)
-    elif exact:
-        ind, dist = gk.exact_knn(np.asarray(E), k)
+        extra = _partitioned(ctx, E, k, g)
     else:
-        wanted = g["search_neighbours"] or int(np.ceil(1.5 * k))
-        ind, dist = gk.approx_knn(
-            np.asarray(E),
-            k,
-            seed=streams.seed_of(cfg["run"]["seed"], "graph.index"),
-            n_trees=g["index_trees"],
-            search=max(wanted, k),
-            threads=g["index_threads"],
-        )
+        if exact:
+            ind, dist = gk.exact_knn(E[:], k)
+        else:
+            wanted = g["search_neighbours"] or int(np.ceil(1.5 * k))
+            ind, dist = gk.approx_knn(
+                E[:],
+                k,
+                seed=streams.seed_of(cfg["run"]["seed"], "graph.index"),
+                n_trees=g["index_trees"],
+                search=max(wanted, k),
+                threads=g["index_threads"],
+            )
+        with contextlib.ExitStack() as stack:
+            for out, arr in zip(_lists_writers(stack, rundir, n, k), (ind, dist, dist)):
+                out.write(arr)
+        del ind, dist
+    ind = art.GRAPH_NEIGHBOURS.rows(rundir)
+    dist = art.RowReader(_dist64(rundir))
     if search != "exact" and g["recall_rows"]:
         t0 = time.monotonic()
-        recall = gk.sampled_recall(E, ind, g["recall_rows"], ctx.rng("graph.recall"))
+        s = gk.recall_sample(n, g["recall_rows"], ctx.rng("graph.recall"))
+        # a share of the sample per local thread (each pass reads the table; hits are integers,
+        # so the figure does not depend on how the sample is cut)
+        with _local_pool(ctx) as (map_fn, workers):
+            hits = list(
+                map_fn(lambda part: gk.recall_hits(E, ind, part), [s[j::workers] for j in range(workers)])
+            )
+        recall = float(sum(hits) / (len(s) * k))
         extra["sampled_recall"] = recall
         extra["recall_rows"] = min(n, g["recall_rows"])
         log.info(
@@ -248,13 +327,16 @@ def run(ctx):
                 recall,
                 RECALL_WARN,
             )
+    t0 = time.monotonic()
     sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"])
-    art.GRAPH_NEIGHBOURS.save(rundir, ind)
-    art.GRAPH_DISTANCES.save(rundir, dist.astype(np.float32))
-    nnz, deg = write_weights(rundir, ind, dist, sigma, cfg["run"]["memory_mb"])
+    with _local_pool(ctx) as (map_fn, workers):
+        nnz, deg = write_weights(
+            rundir, ind, dist, sigma, cfg["run"]["memory_mb"], map_fn=map_fn, workers=workers
+        )
+    zero_dist = sum(int(np.sum(dist[lo : lo + (1 << 20)] == 0)) for lo in range(0, n, 1 << 20))
     shutil.rmtree(art.GRAPH_SCRATCH.path(rundir), ignore_errors=True)
+    log.info("weights: %d entries written in %.1f s", nnz, time.monotonic() - t0)
     isolated = int(np.sum(deg == 0))
-    zero_dist = int(np.sum(dist == 0))
     if isolated:
         log.warning(
             "%d rows have no neighbour with non-zero weight (isolated): their scores stay as they are",

@@ -17,7 +17,8 @@ def test_partitioned_build_at_200k_rows_keeps_recall_and_memory(tmp_path):
     # recall@10 against exact neighbours of 2,000 sampled rows (the bar: 0.95)
     assert graph["sampled_recall"] >= 0.95, graph["sampled_recall"]
     stages = json.loads((run_dir / "manifest.json").read_text())["stages"]
-    # the process's peak resident memory up to the end of the graph stage; measured this session:
-    # 0.90 GB for the whole 200k job (the bound leaves room for another machine's libraries)
+    # the graph stage's own peak resident memory (the process's peak so far where the kernel
+    # cannot reset it); measured: 0.90 GB for the whole 200k job in session 6 (the bound leaves
+    # room for another machine's libraries)
     assert stages["graph"]["summary"]["peak_rss_mb"] < 1500, stages["graph"]["summary"]["peak_rss_mb"]
     assert not (run_dir / "graph" / "scratch").exists()  # working files removed

@@ -93,9 +93,36 @@ def _inputs(name, rng):
             counts,
             [W.indptr, W.indices, label, False, ptr, np.zeros(ptr[-1], np.int64)],
         ), None
-    if name == "smallest_per_row":
-        g = rng.random((40, 300))
-        return [g, 100, 12, np.zeros((40, 12), np.int64), np.zeros((40, 12))], [3, 4]
+    if name == "smallest_merge":
+        # lists filled from a first tile (columns 0..299), then this tile (300..599) merged in;
+        # row i's own column is i + 280, so rows 20.. skip one column of this tile
+        g0, g = rng.random((40, 300)), rng.random((40, 300))
+        g[:, 5] = g[:, 7]  # equal values: the lower column first
+        ind, val = np.full((40, 12), -1, np.int64), np.full((40, 12), np.inf)
+        twins.smallest_merge(g0, 0, 280, ind, val)
+        return [g, 300, 280, ind, val], [3, 4]
+    if name == "max_merge_fill":
+        # directed edges of rows 50..250 in both directions, some pairs repeated with other weights
+        r = rng.integers(50, 250, 3000)
+        c = rng.integers(0, 300, 3000)
+        r, c = np.concatenate([r, r[:500]]), np.concatenate([c, c[:500]])
+        w = rng.random(len(r))
+        nr = 200
+        return [r, c, w, 50, np.zeros(nr + 1, np.int64), np.zeros(len(r), np.int64), np.zeros(len(r))], [
+            4,
+            5,
+            6,
+        ]
+    if name == "merge_lists":
+        # per row, three blocks of 6 candidates out of 40 rows; a row's distance to a candidate is
+        # the same wherever it appears (as two partitions give it), rounded so that distances tie;
+        # the third block repeats the first in part, then -1 / inf pads
+        ind = rng.integers(0, 40, (50, 18))
+        dist = np.round(rng.random((50, 40)), 1)[np.arange(50)[:, None], ind]
+        ind[:, 12:16] = ind[:, :4]
+        dist[:, 12:16] = dist[:, :4]
+        ind[:, 16:], dist[:, 16:] = -1, np.inf
+        return [ind, dist, np.zeros((50, 5), np.int64), np.zeros((50, 5))], [2, 3]
     raise KeyError(name)
 
 
