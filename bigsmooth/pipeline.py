@@ -2,6 +2,7 @@
 
 import errno
 import logging
+import gc
 import os
 import resource
 import shutil
@@ -229,6 +230,7 @@ def run_stages(ctx, upto=None, fresh=False):
                 # one BLAS thread for the stage's own array work: BLAS reductions (dot products in
                 # the audit's CG, norms) split by thread count, and the results must not depend on
                 # the machine's cores (tasks on other executors run with one BLAS thread too)
+                gc.collect()  # arrays the last stage left in reference cycles: not this stage's peak
                 own = reset_peak_rss()
                 with parallel.one_blas_thread():
                     record.update(_reading(name, fp, lambda: spec.module().run(ctx.for_stage(name))))

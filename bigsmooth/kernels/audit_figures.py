@@ -9,7 +9,7 @@ import numpy as np
 
 from . import influence, laplacian, metrics
 
-CHUNK = 1_000_000
+CHUNK = 262_144  # rows a pass holds at a time (neighbour lists and their temporaries)
 
 
 def chunked_consistency(decisions, nb):

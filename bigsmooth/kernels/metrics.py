@@ -31,7 +31,7 @@ def quantile_cutoff(scores, select_rate):
     return float(np.quantile(np.asarray(scores, dtype=np.float64), 1.0 - select_rate, method="higher"))
 
 
-def edge_disagreement(indptr, indices, data, f):
+def edge_disagreement(indptr, indices, data, f, block=262_144):
     """Weighted mean squared difference over graph edges: sum w_ij (f_i - f_j)^2 / sum w_ij.
 
     ``f`` has shape (n,) or (n, c); the squared difference is summed over columns.
@@ -40,10 +40,16 @@ def edge_disagreement(indptr, indices, data, f):
     total = float(np.sum(data))
     if total == 0:
         return 0.0
-    f = np.asarray(f, dtype=np.float64).reshape(len(indptr) - 1, -1)
-    rows = np.repeat(np.arange(len(indptr) - 1), np.diff(indptr))
-    diff = f[rows] - f[indices]
-    return float(np.sum(data * np.sum(diff * diff, axis=1)) / total)
+    n = len(indptr) - 1
+    f = np.asarray(f, dtype=np.float64).reshape(n, -1)
+    acc = 0.0
+    for lo in range(0, n, block):  # rows in blocks: temporaries of one block's edges, not all
+        hi = min(lo + block, n)
+        a, b = int(indptr[lo]), int(indptr[hi])
+        rows = np.repeat(np.arange(lo, hi), np.diff(indptr[lo : hi + 1]))
+        diff = f[rows] - f[np.asarray(indices[a:b])]
+        acc += float(np.sum(np.asarray(data[a:b]) * np.sum(diff * diff, axis=1)))
+    return acc / total
 
 
 def group_table(codes, levels, scores, selected, min_rows):

@@ -19,7 +19,7 @@ def inside_share(W, labels):
     total = 0.0
     inside = 0.0
     indptr, indices, data = W.indptr, W.indices, W.data
-    step = 1_000_000
+    step = 262_144  # rows at a time: temporaries of one block's edges
     for s in range(0, W.shape[0], step):
         e = min(s + step, W.shape[0])
         rows = np.repeat(np.arange(s, e), np.diff(indptr[s : e + 1]))

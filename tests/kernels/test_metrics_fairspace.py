@@ -32,6 +32,8 @@ def test_edge_disagreement_matches_dense_formula(rng):
     D = W.toarray()
     expect = (D * (f[:, None] - f[None, :]) ** 2).sum() / D.sum()
     assert np.isclose(metrics.edge_disagreement(W.indptr, W.indices, W.data, f), expect)
+    # rows taken in blocks (bounded memory) give the same figure
+    assert np.isclose(metrics.edge_disagreement(W.indptr, W.indices, W.data, f, block=7), expect)
 
 
 def test_four_fifths_flag():
