@@ -93,6 +93,41 @@ def test_sharded_weights_equal_the_in_memory_symmetrised_graph(rng, tmp_path):
         for a in ("indptr", "indices", "data"):
             np.testing.assert_array_equal(getattr(got, a), getattr(W, a))
         np.testing.assert_array_equal(deg, np.asarray(W.sum(axis=1)).ravel())
+    # lists read from files in blocks, shards merged on two threads: the same matrix
+    from concurrent.futures import ThreadPoolExecutor
+
+    np.save(tmp_path / "ind.npy", ind)
+    np.save(tmp_path / "dist.npy", dist)
+    sigma = gk.kernel_scale(art.RowReader(str(tmp_path / "dist.npy")), "global")
+    W = gk.heat_kernel_graph(ind, dist, sigma)
+    with ThreadPoolExecutor(2) as pool:
+        write_weights(
+            tmp_path,
+            art.RowReader(str(tmp_path / "ind.npy")),
+            art.RowReader(str(tmp_path / "dist.npy")),
+            sigma,
+            256,
+            block=700,
+            shard_rows=900,
+            map_fn=pool.map,
+            workers=2,
+        )
+    got = art.GRAPH_WEIGHTS.load(tmp_path)
+    for a in ("indptr", "indices", "data"):
+        np.testing.assert_array_equal(getattr(got, a), getattr(W, a))
+    assert got.indices.dtype == np.int32  # stored as int32: scipy loads it without a copy
+
+
+@pytest.mark.parametrize("odd", [True, False])
+def test_median_of_positive_distances_in_blocks_equals_numpy(rng, odd):
+    """The kernel scale's median, taken over row blocks by radix selection, against numpy.median,
+    with ties and zeros (duplicates) among the distances."""
+    d = np.round(rng.gamma(2.0, 0.5, size=(1001 if odd else 1000, 7)), 3)
+    d[rng.random(d.shape) < 0.05] = 0.0
+    ref = float(np.median(d[d > 0]))
+    for block in (1, 13, 5000):
+        assert gk.median_positive(d, block=block) == ref
+    assert gk.median_positive(np.zeros((5, 3))) is None
 
 
 def test_edges_merged_shard_by_shard_equal_the_in_memory_graph(rng):

@@ -1,8 +1,11 @@
 """The artifact catalogue is the only place that spells a run directory's file names, and every
-artifact the job writes is declared in it."""
+artifact the job writes is declared in it; the readers and writers of large arrays."""
 
 import os
 import re
+
+import numpy as np
+import pytest
 
 from bigsmooth import artifacts
 from helpers import ROOT, _small_table, _write_case, cli
@@ -89,3 +92,35 @@ def test_a_stage_whose_outputs_are_gone_is_done_again(tmp_path):
     assert res.returncode == 0, res.stderr[-2000:]
     assert "stage graph is marked done but graph.distances are missing; doing it again" in res.stderr
     assert (run_dir / "graph" / "distances.npy").exists()
+
+
+def test_npy_writer_appends_blocks_and_refuses_a_short_file(tmp_path, rng):
+    """atomic.npy_writer: blocks written one after another make the same file as numpy.save; a
+    writer left short raises and leaves no file (complete or absent)."""
+    from bigsmooth import atomic
+
+    a = rng.normal(size=(1000, 3))
+    target = tmp_path / "a.npy"
+    with atomic.npy_writer(target, np.float64, a.shape) as out:
+        for lo in range(0, 1000, 333):
+            out.write(a[lo : lo + 333])
+    np.testing.assert_array_equal(np.load(target), a)
+    short = tmp_path / "short.npy"
+    with pytest.raises(ValueError, match="rows written"):
+        with atomic.npy_writer(short, np.float64, a.shape) as out:
+            out.write(a[:10])
+    assert not short.exists()
+    with pytest.raises(ValueError, match="does not fit"):
+        with atomic.npy_writer(short, np.float64, (5, 3)) as out:
+            out.write(a[:6])
+    assert not short.exists()
+
+
+def test_row_reader_reads_what_numpy_reads(tmp_path, rng):
+    a = rng.integers(0, 100, size=(500, 4))
+    np.save(tmp_path / "a.npy", a)
+    r = artifacts.RowReader(str(tmp_path / "a.npy"))
+    assert r.shape == a.shape and r.dtype == a.dtype and len(r) == 500
+    idx = rng.integers(0, 500, 50)
+    for key in (slice(10, 90), idx, (slice(None), 2), slice(490, 600)):
+        np.testing.assert_array_equal(r[key], a[key])
