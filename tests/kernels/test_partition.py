@@ -2,6 +2,7 @@
 NearestNeighbors and the whole-table exact search (graph.exact_knn)."""
 
 import numpy as np
+import pytest
 from sklearn.neighbors import NearestNeighbors
 
 from bigsmooth.kernels import graph as gk
@@ -101,3 +102,18 @@ def test_eight_partitions_give_the_solution_of_one(rng):
         L = sp.diags(np.asarray(W.sum(axis=1)).ravel()) - W
         sols.append(spsolve((sp.identity(len(E)) + 2.0 * L).tocsc(), y))
     np.testing.assert_allclose(sols[1], sols[0], rtol=0, atol=1e-8)
+
+
+@pytest.mark.filterwarnings("ignore:One of the clusters is empty")
+def test_lloyd_rounds_equal_scipy_kmeans2(rng):
+    """The plan's k-means rounds against scipy.cluster.vq.kmeans2 from the same starting centres
+    (minit='matrix'), including a centre that starts far from every row (it stays empty)."""
+    from scipy.cluster.vq import kmeans2
+
+    X = np.vstack([rng.normal(loc=c, size=(300, 3)) for c in (0.0, 4.0, 8.0)])
+    init = X[rng.choice(len(X), 6, replace=False)].copy()
+    init[5] = 100.0
+    ref, _ = kmeans2(X, init.copy(), minit="matrix", iter=7, missing="warn")
+    got, labels = pt.lloyd(X, init, rounds=7)
+    np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-12)
+    assert 5 not in labels  # the far centre has no row
