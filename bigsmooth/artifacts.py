@@ -116,9 +116,10 @@ class RowReader:
 
     def __init__(self, path):
         self.path = path
-        m = np.load(path, mmap_mode="r")
-        self.shape, self.dtype = m.shape, m.dtype
-        del m
+        with open(path, "rb") as fh:  # the header only: readers are made once per block in loops
+            major, _ = np.lib.format.read_magic(fh)
+            read = np.lib.format.read_array_header_1_0 if major == 1 else np.lib.format.read_array_header_2_0
+            self.shape, _, self.dtype = read(fh)
 
     def __len__(self):
         return self.shape[0]
