@@ -331,3 +331,61 @@ def merge_lists(cand_ind, cand_dist, out_ind, out_dist):
                 p -= 1
             oi[p] = v
             od[p] = d
+
+
+@numba.njit(cache=True, nogil=True)
+def refine_lists(E, frozen, rows, out_ind, out_dist):
+    """One neighbour-of-neighbour round for the given rows: every neighbour's neighbour c of row i
+    (in the frozen lists, -1 skipped) that is not i and not in i's list yet is a candidate at the
+    float64 distance from E (float32 rows, summed over dimensions in order), inserted into i's list
+    (out_ind[i], out_dist[i], ascending by (distance, row)) when it beats the last entry. Only the
+    given rows of out_ind / out_dist are written and only frozen is read for the neighbours' lists,
+    so calls on disjoint rows may run at once in any order. Returns the number of entries of the
+    final lists that the frozen lists did not hold (out_ind starts as a copy of frozen)."""
+    k = out_ind.shape[1]
+    kf = frozen.shape[1]
+    d = E.shape[1]
+    inserted = 0
+    for r in range(len(rows)):
+        i = rows[r]
+        oi = out_ind[i]
+        od = out_dist[i]
+        for a in range(kf):
+            j = frozen[i, a]
+            if j < 0:
+                continue
+            for b in range(kf):
+                c = frozen[j, b]
+                if c < 0 or c == i:
+                    continue
+                seen = False
+                for q in range(k):
+                    if oi[q] == c:
+                        seen = True
+                        break
+                if seen:
+                    continue
+                s = 0.0
+                for t in range(d):
+                    z = np.float64(E[i, t]) - np.float64(E[c, t])
+                    s += z * z
+                v = np.sqrt(s)
+                last = od[k - 1]
+                if not (v < last or (v == last and (oi[k - 1] < 0 or c < oi[k - 1]))):
+                    continue
+                p = k - 1
+                while p > 0 and (od[p - 1] > v or (od[p - 1] == v and (oi[p - 1] < 0 or oi[p - 1] > c))):
+                    oi[p] = oi[p - 1]
+                    od[p] = od[p - 1]
+                    p -= 1
+                oi[p] = c
+                od[p] = v
+        for q in range(k):
+            new = oi[q] >= 0
+            for a in range(kf):
+                if frozen[i, a] == oi[q]:
+                    new = False
+                    break
+            if new:
+                inserted += 1
+    return inserted

@@ -114,6 +114,30 @@ def merge_lists(cand_ind, cand_dist, out_ind, out_dist):
     out_dist[:] = np.take_along_axis(cd, order, axis=1)
 
 
+def refine_lists(E, frozen, rows, out_ind, out_dist):
+    k = out_ind.shape[1]
+    inserted = 0
+    for i in rows:
+        have = [(out_dist[i, q], out_ind[i, q]) for q in range(k)]
+        listed = set(int(c) for c in out_ind[i])
+        new = set()
+        for j in frozen[i]:
+            if j >= 0:
+                new |= {int(c) for c in frozen[j] if c >= 0 and c != i and c not in listed}
+        for c in new:
+            s = 0.0
+            for t in range(E.shape[1]):
+                z = float(E[i, t]) - float(E[c, t])
+                s += z * z
+            have.append((float(np.sqrt(s)), c))
+        # the k smallest by (distance, row); an empty place (-1 / inf) sorts after every row
+        have.sort(key=lambda e: (e[0], e[1] < 0, e[1]))
+        for q, (v, c) in enumerate(have[:k]):
+            out_dist[i, q], out_ind[i, q] = v, c
+        inserted += sum(1 for _, c in have[:k] if c >= 0 and c not in set(frozen[i].tolist()))
+    return inserted
+
+
 def registry():
     """{compiled kernel name: its Python twin} for every kernel in ``_fast``."""
     from . import solver, sweepcg
@@ -132,5 +156,6 @@ def registry():
         "smallest_merge": smallest_merge,
         "max_merge_fill": max_merge_fill,
         "merge_lists": merge_lists,
+        "refine_lists": refine_lists,
         "_split_row": None,  # inlined helper of split_matvec / split_residual_sq, tested through them
     }
