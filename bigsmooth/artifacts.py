@@ -84,7 +84,10 @@ class Artifact:
             return fh.read()
 
     def rows(self, rundir, member=None):
-        """A :class:`RowReader` on an ``npy`` (or ``dir`` member) artifact."""
+        """A :class:`RowReader` on an ``npy`` (or ``dir`` member) artifact; for a ``csr`` artifact a
+        :class:`CsrReader`."""
+        if self.kind == "csr":
+            return CsrReader(*(self.path(rundir, m) for m in CSR_PARTS))
         return RowReader(self.path(rundir, member))
 
     def save(self, rundir, value, member=None):
@@ -130,6 +133,19 @@ class RowReader:
             return np.array(m[key])
         finally:
             del m
+
+
+class CsrReader:
+    """A stored CSR matrix for passes over row blocks: ``indptr`` in memory, ``indices`` and
+    ``data`` as :class:`RowReader` (sliced by a block's entry range), ``shape`` and ``nnz``."""
+
+    def __init__(self, indptr, indices, data):
+        self.indptr = np.load(indptr)
+        self.indices = RowReader(indices)
+        self.data = RowReader(data)
+        n = len(self.indptr) - 1
+        self.shape = (n, n)
+        self.nnz = int(self.indptr[-1])
 
 
 CATALOGUE = {}

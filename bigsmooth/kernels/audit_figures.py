@@ -157,7 +157,9 @@ def random_graph_control(W, y, lam, kind, tol, rng, target_sd, max_solves=24, se
 
     n = W.shape[0]
     half = max(1, int(round(W.nnz / (2 * n))))
-    weight = float(W.data.mean()) if W.nnz else 0.0
+    # the mean weight over blocks of entries (W.data may be a RowReader: never read whole)
+    step = 1 << 24
+    weight = sum(float(np.sum(W.data[a : a + step])) for a in range(0, W.nnz, step)) / W.nnz if W.nnz else 0.0
     R = RandomRegularGraph(n, half, weight, rng)
     sd_y = float(np.std(y))
     if target_sd >= sd_y or R.degree == 0 or sd_y == 0:

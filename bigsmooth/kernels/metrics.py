@@ -36,20 +36,21 @@ def edge_disagreement(indptr, indices, data, f, block=262_144):
 
     ``f`` has shape (n,) or (n, c); the squared difference is summed over columns.
     Each undirected edge counts once (the CSR holds both directions, which cancels in the ratio).
+    ``indices`` and ``data`` are arrays or RowReaders (read one block of rows' entries at a time).
     """
-    total = float(np.sum(data))
-    if total == 0:
-        return 0.0
     n = len(indptr) - 1
     f = np.asarray(f, dtype=np.float64).reshape(n, -1)
     acc = 0.0
+    total = 0.0
     for lo in range(0, n, block):  # rows in blocks: temporaries of one block's edges, not all
         hi = min(lo + block, n)
         a, b = int(indptr[lo]), int(indptr[hi])
         rows = np.repeat(np.arange(lo, hi), np.diff(indptr[lo : hi + 1]))
         diff = f[rows] - f[np.asarray(indices[a:b])]
-        acc += float(np.sum(np.asarray(data[a:b]) * np.sum(diff * diff, axis=1)))
-    return acc / total
+        w = np.asarray(data[a:b])
+        total += float(np.sum(w))
+        acc += float(np.sum(w * np.sum(diff * diff, axis=1)))
+    return acc / total if total != 0 else 0.0
 
 
 def group_table(codes, levels, scores, selected, min_rows):

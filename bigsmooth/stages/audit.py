@@ -37,7 +37,9 @@ CAUTION = (
 
 
 def _knn(rundir):
-    return art.GRAPH_NEIGHBOURS.load(rundir, mmap=True), art.GRAPH_DISTANCES.load(rundir, mmap=True)
+    """The neighbour lists and their distances, read in blocks (RowReaders: a pass over the table
+    keeps only its current block resident, where a memory map would keep every page it touched)."""
+    return art.GRAPH_NEIGHBOURS.rows(rundir), art.GRAPH_DISTANCES.rows(rundir)
 
 
 def figures(s, W, nb, dist, pairs, labels, rate, constant, lo, hi):
@@ -195,10 +197,10 @@ def run(ctx):
     """The audit stage (see the module docstring)."""
     rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
     inp, a = cfg["input"], cfg["audit"]
-    W = art.GRAPH_WEIGHTS.load(rundir, mmap=True)
+    W = art.GRAPH_WEIGHTS.rows(rundir)  # passes read one block of rows' edges at a time
     Y = art.EMBED_SCORES.load(rundir)
     F = art.SOLVE_ADJUSTED.load(rundir)
-    E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
+    E = art.EMBED_EMBEDDING.rows(rundir)  # only the sampled pairs' rows are read
     codes = art.EMBED_PROTECTED.load(rundir)
     labels = art.EMBED_LABEL.load(rundir) if inp["label"] else None
     scan = art.SCAN_INFO.load(rundir)
@@ -228,7 +230,14 @@ def run(ctx):
     if inp["counterfactual_score"]:
         rows = _sample(n, a["counterfactual_rows"], ctx.rng("audit.counterfactual"))
         counterfactual = counterfactual_figures(
-            W, y, f, other[:, -1], cfg["solve"], rate, rows, tol=a["counterfactual_tol"]
+            art.GRAPH_WEIGHTS.load(rundir, mmap=True),
+            y,
+            f,
+            other[:, -1],
+            cfg["solve"],
+            rate,
+            rows,
+            tol=a["counterfactual_tol"],
         )
     pairs_fig = pair_figures(fp, cfg, y, f, rate) if inp["pairs"] else None
     if inp["compare_scores"]:

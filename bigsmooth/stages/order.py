@@ -32,7 +32,7 @@ log = logging.getLogger("bigsmooth.order")
 def run(ctx):
     """The order stage (see the module docstring)."""
     rundir, cfg = ctx.rundir, ctx.cfg
-    E = art.EMBED_EMBEDDING.load(rundir, mmap=True)
+    E = art.EMBED_EMBEDDING.rows(rundir)  # read in chunks, never resident as a whole
     labels, groups = cluster_labels(
         E, cfg["solve"]["groups"], streams.seed_of(cfg["run"]["seed"], "order.kmeans")
     )

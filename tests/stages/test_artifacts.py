@@ -5,6 +5,7 @@ import os
 import re
 
 import numpy as np
+import scipy.sparse as sp
 import pytest
 
 from bigsmooth import artifacts
@@ -124,3 +125,22 @@ def test_row_reader_reads_what_numpy_reads(tmp_path, rng):
     idx = rng.integers(0, 500, 50)
     for key in (slice(10, 90), idx, (slice(None), 2), slice(490, 600)):
         np.testing.assert_array_equal(r[key], a[key])
+
+
+def test_csr_reader_holds_the_stored_matrix_and_gives_the_in_memory_edge_disagreement(tmp_path, rng):
+    # a scipy CSR saved as the graph-weights artifact, read back in row blocks
+    from bigsmooth.kernels import metrics
+
+    W = sp.random(300, 300, density=0.05, random_state=np.random.RandomState(3), format="csr")
+    W = (W + W.T).tocsr()
+    artifacts.GRAPH_WEIGHTS.save(str(tmp_path), W)
+    r = artifacts.GRAPH_WEIGHTS.rows(str(tmp_path))
+    assert r.shape == W.shape and r.nnz == W.nnz
+    np.testing.assert_array_equal(r.indptr, W.indptr)
+    np.testing.assert_array_equal(r.indices[:], W.indices)
+    np.testing.assert_array_equal(r.data[:], W.data)
+    f = rng.random(300)
+    D = W.toarray()  # the dense formula 2 f'Lf / sum(w) written out with numpy
+    expect = (D * (f[:, None] - f[None, :]) ** 2).sum() / D.sum()
+    got = metrics.edge_disagreement(r.indptr, r.indices, r.data, f, block=17)
+    assert np.isclose(got, expect)
