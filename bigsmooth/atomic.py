@@ -7,6 +7,7 @@ that looks finished.
 
 import contextlib
 import json
+import mmap
 import os
 import tempfile
 
@@ -35,6 +36,24 @@ def new_memmap(path, dtype, shape):
     finally:
         os.close(fd)
     return arr
+
+
+def release_pages(arr):
+    """Drop the pages of a memory-mapped array (np.load(mmap_mode=...), :func:`new_memmap`) from
+    this process's resident memory: written pages are flushed to the file first, then
+    madvise(MADV_DONTNEED) unmaps them; they stay in the kernel's page cache and the next access
+    maps them again, so the array's contents are unchanged. A long pass over large memory maps
+    calls this between blocks so that its resident memory holds one block, not every page it
+    touched. Returns False (and does nothing) for an array that is not memory-mapped."""
+    base = arr
+    while base is not None and not isinstance(base, mmap.mmap):
+        base = getattr(base, "base", None)
+    if base is None:
+        return False
+    if arr.flags.writeable:
+        base.flush()
+    base.madvise(mmap.MADV_DONTNEED)
+    return True
 
 
 def fsync_dir(path):

@@ -123,11 +123,10 @@ def split_counts(indptr, indices, perm, pos, group, Lc, Uc, Oc):
 
 
 @numba.njit(cache=True, parallel=True)
-def split_fill(indptr, indices, data, perm, pos, group, Lp, Li, Lw, Up, Ui, Uw, Op, Oi, Ow, degree):
+def split_fill(indptr, indices, data, perm, pos, group, Lp, Li, Lw, Up, Ui, Uw, Op, Oi, Ow, degree, lo, hi):
     """Fill the three triplets (offsets from :func:`split_counts`) with positions and raw weights in
-    the graph's column order, and the permuted degrees."""
-    n = len(perm)
-    for r in numba.prange(n):
+    the graph's column order, and the permuted degrees, for the positions lo <= r < hi."""
+    for r in numba.prange(lo, hi):
         i = perm[r]
         gr = group[r]
         a = np.int64(Lp[r])

@@ -205,13 +205,16 @@ def _default_alloc(name, size, dtype):
     return np.empty(size, dtype=dtype)
 
 
-def split_graph(W, perm, bounds, alloc=None):
+def split_graph(W, perm, bounds, alloc=None, block=None, release=None):
     """Permute W (CSR, symmetric, empty diagonal) by ``perm`` (``perm[r]`` = input row at position r)
     and split it by the group ``bounds``, in two parallel O(nnz) passes without assembling anything.
 
     ``alloc(name, size, dtype)`` may supply the arrays (e.g. memmaps). Entries within a row keep the
     graph's column order, so the result is deterministic. Reference: :func:`prepare` on the
-    assembled, permuted matrix.
+    assembled, permuted matrix. The fill runs over ``block`` positions at a time (default: all);
+    ``release(array)``, if given, is called on W's arrays and on every output after each block
+    and after the counts (the order stage drops memory-mapped pages it no longer needs, so its
+    resident memory holds about one block's pages instead of both whole matrices).
     """
     from . import _fast
 
@@ -239,27 +242,46 @@ def split_graph(W, perm, bounds, alloc=None):
     )
     for p in ptrs:
         np.cumsum(p, out=p)
+    done = _releaser(release, W)
+    done(*ptrs)
     parts = [
         (p, alloc(f"{name}-indices", int(p[-1]), np.uint32), alloc(f"{name}-weight", int(p[-1]), np.float64))
         for name, p in zip("LUO", ptrs)
     ]
     degree = alloc("degree", n, np.float64)
-    _fast.split_fill(
-        indptr=W.indptr,
-        indices=W.indices,
-        data=W.data,
-        perm=perm,
-        pos=pos,
-        group=group,
-        **triplet_kwargs("w", L=parts[0], U=parts[1], O=parts[2]),
-        degree=degree,
-    )
+    step = max(1, int(block or n))
+    for lo in range(0, n, step):
+        _fast.split_fill(
+            indptr=W.indptr,
+            indices=W.indices,
+            data=W.data,
+            perm=perm,
+            pos=pos,
+            group=group,
+            **triplet_kwargs("w", L=parts[0], U=parts[1], O=parts[2]),
+            degree=degree,
+            lo=lo,
+            hi=min(lo + step, n),
+        )
+        done(degree, *(a for part in parts for a in part))
     return SplitGraph(degree, bounds, *parts)
 
 
-def scale_split(split, lam, c, alloc=None):
+def _releaser(release, W):
+    """``done(*arrays)``: ``release`` called on W's arrays and the given ones (nothing without it)."""
+
+    def done(*arrays):
+        if release is not None:
+            for a in (W.indptr, W.indices, W.data, *arrays):
+                release(a)
+
+    return done
+
+
+def scale_split(split, lam, c, alloc=None, release=None):
     """The Jacobi-scaled system of A = C + lam L from a :class:`SplitGraph`; ``c`` is diag(C) in the
-    split's row order. One parallel pass over the entries."""
+    split's row order. One parallel pass over the entries. ``release(array)``, if given, is called
+    on each raw weight array once its part is scaled (the stage drops its memory-mapped pages)."""
     from . import _fast
 
     alloc = alloc or _default_alloc
@@ -270,6 +292,8 @@ def scale_split(split, lam, c, alloc=None):
     for name, (ptr, ind, w) in zip("LUO", (split.L, split.U, split.O)):
         out = alloc(f"{name}-data", len(w), np.float64)
         _fast.scale_triplet(ptr=ptr, ind=ind, w=w, s=s, lam=float(lam), out=out)
+        if release is not None:
+            release(w)
         parts.append((ptr, ind, out))
     return Grouped(s, split.bounds, *parts)
 

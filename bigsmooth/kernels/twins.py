@@ -18,8 +18,9 @@ def split_counts(indptr, indices, perm, pos, group, Lc, Uc, Oc):
         Oc[r + 1] = np.sum(~same)
 
 
-def split_fill(indptr, indices, data, perm, pos, group, Lp, Li, Lw, Up, Ui, Uw, Op, Oi, Ow, degree):
-    for r, i in enumerate(perm):
+def split_fill(indptr, indices, data, perm, pos, group, Lp, Li, Lw, Up, Ui, Uw, Op, Oi, Ow, degree, lo, hi):
+    for r in range(lo, hi):
+        i = perm[r]
         a, b, e = Lp[r], Up[r], Op[r]
         degree[r] = 0.0
         for q in range(indptr[i], indptr[i + 1]):

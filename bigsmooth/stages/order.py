@@ -10,7 +10,9 @@ the rows inside each group for locality, and split the graph for the solver.
 3. The graph is permuted into that order and split into couplings inside groups (lower, upper) and
    between groups, with raw weights (:func:`bigsmooth.kernels.sweepcg.split_graph`); it does not
    depend on lam, so the solve stage only scales it. Written as memory-mapped .npy files in
-   ``order/split/``.
+   ``order/split/``, in blocks of positions: after each block the mapped pages of the graph and
+   of the outputs are dropped from the process (flushed first), so the stage's resident memory
+   holds about a block's pages, not the whole graph and the whole split.
 
 The groups are the units the solver's workers sweep; the 'blocks' solver cuts the same ordering
 into blocks of ``solve.block_rows``.
@@ -27,6 +29,8 @@ from ..kernels import sweepcg
 from ..kernels.ordering import cluster_labels, inside_share, local_order
 
 log = logging.getLogger("bigsmooth.order")
+
+SPLIT_BLOCKS = 64  # blocks of the split's fill
 
 
 def run(ctx):
@@ -48,13 +52,18 @@ def run(ctx):
         100 * share,
     )
     perm = local_order(W, labels)
+    for a in (W.indices, W.data):  # the passes above touched every page of the graph
+        atomic.release_pages(a)
     art.ORDER_SPLIT.folder(rundir)
     with contextlib.ExitStack() as files:
 
         def alloc(name, size, dtype):
             return files.enter_context(atomic.open_memmap(art.ORDER_SPLIT.path(rundir, name), dtype, (size,)))
 
-        split = sweepcg.split_graph(W, perm, bounds, alloc)
+        # in blocks of positions, dropping the graph's and the outputs' mapped pages after each
+        # (the fill reads the graph's rows scattered and writes the outputs in order)
+        block = max(65_536, -(-W.shape[0] // SPLIT_BLOCKS))
+        split = sweepcg.split_graph(W, perm, bounds, alloc, block=block, release=atomic.release_pages)
         between = int(split.O[0][-1])
     art.ORDER_PERM.save(rundir, perm)
     art.ORDER_GROUPS.save(rundir, bounds)

@@ -151,8 +151,12 @@ def _sweep_cg(pb):
     def alloc(name, size, dtype):
         return atomic.new_memmap(art.SOLVE_SYSTEM.path(rundir, name), dtype, (size,))
 
-    system = sweepcg.scale_split(split, s["lam"], pb.cvec[perm], alloc=alloc)
+    # the raw weights leave the resident memory part by part as they are scaled (the sweeps read
+    # only the scaled copy)
+    system = sweepcg.scale_split(split, s["lam"], pb.cvec[perm], alloc=alloc, release=atomic.release_pages)
     bounds = split.bounds
+    atomic.release_pages(split.degree)
+    del split
     with contextlib.ExitStack() as stack:
         if s["backend"] == "processes":
             # process workers map the solver's vectors as files too

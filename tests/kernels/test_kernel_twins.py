@@ -77,7 +77,9 @@ def _inputs(name, rng):
         for cnt in counts:
             ptr = np.cumsum(cnt)
             bufs += [ptr, np.zeros(ptr[-1], np.int64), np.zeros(ptr[-1])]
-        return [W.indptr, W.indices, W.data, perm, pos, group, *bufs, np.zeros(n)], [7, 8, 10, 11, 13, 14, 15]
+        # positions from n // 3 on: a block of the order stage's blocked fill (the rest stays zero)
+        outs = [7, 8, 10, 11, 13, 14, 15]
+        return [W.indptr, W.indices, W.data, perm, pos, group, *bufs, np.zeros(n), n // 3, n], outs
     if name == "scale_triplet":
         W = _graph(rng, n)
         return [W.indptr, W.indices, W.data, rng.uniform(0.5, 2.0, n), 3.0, np.zeros(W.nnz)], [5]

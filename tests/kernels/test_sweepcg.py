@@ -259,9 +259,15 @@ def test_split_graph_degrees_and_thread_count(rng):
         numba.set_num_threads(threads)
         got.append(sweepcg.split_graph(W, perm, bounds))
     numba.set_num_threads(numba.config.NUMBA_NUM_THREADS)
+    # the order stage's blocked fill (37 positions at a time, a release after each block) is the same
+    released = []
+    got.append(sweepcg.split_graph(W, perm, bounds, block=37, release=released.append))
+    assert len(released) == 3 + 3 + -(-300 // 37) * (3 + 1 + 9)  # W's arrays and every output
     np.testing.assert_allclose(got[0].degree, np.asarray(W.sum(axis=1)).ravel()[perm], rtol=1e-14)
-    for a, b in zip((*got[0].L, *got[0].U, *got[0].O), (*got[1].L, *got[1].U, *got[1].O)):
-        assert np.array_equal(a, b)
+    for other in got[1:]:
+        np.testing.assert_array_equal(got[0].degree, other.degree)
+        for a, b in zip((*got[0].L, *got[0].U, *got[0].O), (*other.L, *other.U, *other.O)):
+            assert np.array_equal(a, b)
 
 
 def test_fast_matvec_matches_scipy(rng):

@@ -8,7 +8,7 @@ import numpy as np
 import scipy.sparse as sp
 import pytest
 
-from bigsmooth import artifacts
+from bigsmooth import artifacts, atomic
 from helpers import ROOT, _small_table, _write_case, cli
 
 
@@ -98,7 +98,6 @@ def test_a_stage_whose_outputs_are_gone_is_done_again(tmp_path):
 def test_npy_writer_appends_blocks_and_refuses_a_short_file(tmp_path, rng):
     """atomic.npy_writer: blocks written one after another make the same file as numpy.save; a
     writer left short raises and leaves no file (complete or absent)."""
-    from bigsmooth import atomic
 
     a = rng.normal(size=(1000, 3))
     target = tmp_path / "a.npy"
@@ -144,3 +143,38 @@ def test_csr_reader_holds_the_stored_matrix_and_gives_the_in_memory_edge_disagre
     expect = (D * (f[:, None] - f[None, :]) ** 2).sum() / D.sum()
     got = metrics.edge_disagreement(r.indptr, r.indices, r.data, f, block=17)
     assert np.isclose(got, expect)
+
+
+def _mapped_rss_kb(path):
+    """Resident kB of this process's mappings of ``path`` (Linux /proc/self/smaps, proc(5))."""
+    total, inside = 0, False
+    with open("/proc/self/smaps") as fh:
+        for line in fh:
+            head = line.split()
+            if "-" in head[0] and len(head) >= 5:  # a mapping's first line: address range ... path
+                inside = line.rstrip().endswith(str(path))
+            elif inside and head[0] == "Rss:":
+                total += int(head[1])
+    return total
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/smaps"), reason="needs Linux /proc/self/smaps")
+def test_release_pages_empties_the_resident_map_and_keeps_the_contents(tmp_path, rng):
+    a = rng.random(2_000_000)  # 16 MB
+    np.save(tmp_path / "r.npy", a)
+    m = np.load(tmp_path / "r.npy", mmap_mode="r")
+    assert float(m.sum()) == float(a.sum())  # every page touched
+    assert _mapped_rss_kb(tmp_path / "r.npy") > 15_000
+    assert atomic.release_pages(m[10:20])  # a view finds its map
+    assert _mapped_rss_kb(tmp_path / "r.npy") < 1_000
+    np.testing.assert_array_equal(m, a)  # mapped again on access, unchanged
+    # a written map: flushed, dropped, and what was written is in the file
+    w = atomic.new_memmap(tmp_path / "w.npy", np.float64, (2_000_000,))
+    w[:] = a
+    assert atomic.release_pages(w)
+    assert _mapped_rss_kb(tmp_path / "w.npy") < 1_000
+    w[0] = -1.0
+    del w
+    back = np.load(tmp_path / "w.npy")
+    assert back[0] == -1.0 and np.array_equal(back[1:], a[1:])
+    assert not atomic.release_pages(a)  # not a memory map: nothing to do
