@@ -119,6 +119,19 @@ def test_lloyd_rounds_equal_scipy_kmeans2(rng):
     assert 5 not in labels  # the far centre has no row
 
 
+def test_nearest_centres_equal_a_direct_numpy_search_whatever_the_chunk(rng, monkeypatch):
+    # reference: squared distances to every centre by numpy broadcasting, argsort (ties by index)
+    X = rng.normal(size=(3000, 5))
+    C = rng.normal(size=(40, 5))
+    d2 = ((X[:, None, :] - C[None, :, :]) ** 2).sum(axis=2)
+    ref = np.argsort(d2, axis=1, kind="stable")[:, :3]
+    np.testing.assert_array_equal(pt.nearest_centres(X, C, 3), ref)
+    # many centres make small chunks (the values held per chunk are bounded): same lists
+    monkeypatch.setattr(pt, "PRODUCT_VALUES", 40 * 300)
+    np.testing.assert_array_equal(pt.nearest_centres(X, C, 3), ref)
+    np.testing.assert_array_equal(pt.nearest_centres(X, C, 3, chunk=97), ref)
+
+
 def test_refinement_raises_recall_and_keeps_exact_distances(rng):
     """A weak partitioned build (uniform points in 8 dimensions, small partitions, each row in two:
     recall about 0.90) refined by neighbours of neighbours: recall against sklearn's exact
