@@ -398,7 +398,7 @@ def _print(table, args, out):
         print(
             "stage peak RSS: "
             + ", ".join(
-                f"{k} {v / 1024:.2f} GB"
+                f"{k} {v * 2**20 / 1e9:.2f} GB"
                 for k, v in table.get("stage_peak_rss_mb", {}).items()
                 if v is not None
             )

@@ -359,8 +359,8 @@ def run(ctx):
         )
         if recall < RECALL_WARN:
             log.warning(
-                "neighbour recall %.3f is below %.2f: raise graph.partition_overlap or "
-                "graph.partition_rows (partitioned build) or graph.search_neighbours (pynndescent)",
+                "neighbour recall %.3f is below %.2f: raise graph.refine_rounds, graph.partition_overlap "
+                "or graph.partition_rows (partitioned build) or graph.search_neighbours (pynndescent)",
                 recall,
                 RECALL_WARN,
             )
