@@ -44,11 +44,12 @@ def release_pages(arr):
     madvise(MADV_DONTNEED) unmaps them; they stay in the kernel's page cache and the next access
     maps them again, so the array's contents are unchanged. A long pass over large memory maps
     calls this between blocks so that its resident memory holds one block, not every page it
-    touched. Returns False (and does nothing) for an array that is not memory-mapped."""
+    touched. Returns False (and does nothing) for an array that is not memory-mapped, or where the
+    platform has no madvise (then only the memory bound is lost, never data)."""
     base = arr
     while base is not None and not isinstance(base, mmap.mmap):
         base = getattr(base, "base", None)
-    if base is None:
+    if base is None or not hasattr(mmap, "MADV_DONTNEED"):
         return False
     if arr.flags.writeable:
         base.flush()
