@@ -242,7 +242,12 @@ def split_graph(W, perm, bounds, alloc=None, block=None, release=None):
     )
     for p in ptrs:
         np.cumsum(p, out=p)
-    done = _releaser(release, W)
+
+    def done(*arrays):  # after the counts and after each block of the fill
+        if release is not None:
+            for a in (W.indptr, W.indices, W.data, *arrays):
+                release(a)
+
     done(*ptrs)
     parts = [
         (p, alloc(f"{name}-indices", int(p[-1]), np.uint32), alloc(f"{name}-weight", int(p[-1]), np.float64))
@@ -265,17 +270,6 @@ def split_graph(W, perm, bounds, alloc=None, block=None, release=None):
         )
         done(degree, *(a for part in parts for a in part))
     return SplitGraph(degree, bounds, *parts)
-
-
-def _releaser(release, W):
-    """``done(*arrays)``: ``release`` called on W's arrays and the given ones (nothing without it)."""
-
-    def done(*arrays):
-        if release is not None:
-            for a in (W.indptr, W.indices, W.data, *arrays):
-                release(a)
-
-    return done
 
 
 def scale_split(split, lam, c, alloc=None, release=None):
