@@ -123,13 +123,39 @@ def test_nearest_centres_equal_a_direct_numpy_search_whatever_the_chunk(rng, mon
     # reference: squared distances to every centre by numpy broadcasting, argsort (ties by index)
     X = rng.normal(size=(3000, 5))
     C = rng.normal(size=(40, 5))
+    C[7] = C[3]  # a tie between two centres: the lower number comes first
     d2 = ((X[:, None, :] - C[None, :, :]) ** 2).sum(axis=2)
     ref = np.argsort(d2, axis=1, kind="stable")[:, :3]
-    np.testing.assert_array_equal(pt.nearest_centres(X, C, 3), ref)
-    # many centres make small chunks (the values held per chunk are bounded): same lists
-    monkeypatch.setattr(pt, "PRODUCT_VALUES", 40 * 300)
-    np.testing.assert_array_equal(pt.nearest_centres(X, C, 3), ref)
+    ind, val = pt.nearest_centres(X, C, 3, values=True)
+    np.testing.assert_array_equal(ind, ref)
+    np.testing.assert_allclose(val, np.take_along_axis(d2, ref, axis=1), rtol=1e-12)
     np.testing.assert_array_equal(pt.nearest_centres(X, C, 3, chunk=97), ref)
+    # small tiles: many column tiles and row blocks per chunk, and a thread pool's map
+    from concurrent.futures import ThreadPoolExecutor
+
+    monkeypatch.setattr(pt, "ROW_BLOCK", 16)
+    monkeypatch.setattr(pt, "COL_BLOCK", 6)
+    with ThreadPoolExecutor(3) as pool:
+        np.testing.assert_array_equal(pt.nearest_centres(X, C, 3, chunk=500, map_fn=pool.map), ref)
+
+
+def test_kmeans_pp_draws_centres_in_proportion_to_the_squared_distance(rng):
+    """k-means++'s second centre is row i with probability d2(i) / sum(d2) (Arthur and
+    Vassilvitskii's D^2 weighting, the textbook definition): a chi-square test of the draws against
+    those probabilities (scipy.stats.chisquare)."""
+    from scipy.stats import chisquare
+
+    X = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 2.0], [3.0, 0.0], [0.0, 0.0]])
+    draws = []
+    for seed in range(4000):
+        r = np.random.default_rng(seed)
+        c = pt.kmeans_pp(X, 2, r)
+        if (c[0] == 0.0).all():  # first centre at the origin (rows 0 or 4)
+            draws.append(int(np.flatnonzero((X == c[1]).all(axis=1))[0]))
+    d2 = np.array([0.0, 1.0, 4.0, 9.0, 0.0])
+    counts = np.bincount(draws, minlength=5)
+    assert counts[0] == 0 and counts[4] == 0  # a row at distance 0 is never drawn
+    assert chisquare(counts[1:4], d2[1:4] / d2.sum() * counts.sum()).pvalue > 1e-3
 
 
 def test_refinement_raises_recall_and_keeps_exact_distances(rng):
