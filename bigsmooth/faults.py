@@ -13,9 +13,12 @@ and ``stage:<name>:done`` (its outputs written, not yet marked done) for every s
 ``graph:partition:<p>`` after partition p is searched, before its result is written (on the
 worker that runs the task: the Dask engine hands the driver's armed faults to its tasks);
 ``embed:chunk:<i>`` after the i-th chunk (counted from 1 over both passes); ``solve:sweep:<i>``
-after sweep i, before its checkpoint; ``checkpoint:write`` inside the checkpoint write, after the
+after sweep i, before its checkpoint; ``solve:task:<i>`` in each task of the i-th map of group
+sweeps on the Dask engine (counted from 1), after the task marks itself started and before it
+writes; ``checkpoint:write`` inside the checkpoint write, after the
 temporary file is complete and before it replaces the old one; ``publish:file:<i>`` after the i-th
-output file (from 1); ``publish:before-rename``; ``publish:before-pointer`` (version folder in
+output file (from 1) is written under its temporary name, before it is renamed (in the task that
+writes it: on a Dask worker with the Dask engine); ``publish:before-rename``; ``publish:before-pointer`` (version folder in
 place, CURRENT not yet replaced); ``publish:before-link`` (CURRENT replaced, the ``current``
 symlink not yet).
 
@@ -35,6 +38,7 @@ POINTS = (
     "embed:chunk:<i>",
     "graph:partition:<p>",
     "solve:sweep:<i>",
+    "solve:task:<i>",
     "checkpoint:write",
     "publish:file:<i>",
     "publish:before-rename",

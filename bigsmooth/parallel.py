@@ -117,6 +117,12 @@ def _resolve(a):
         return a
     m = _MAPPED.get(a)
     if m is None:
+        st = os.stat(a.path)  # FileNotFoundError on a host that does not mount the file
+        if (st.st_ino, st.st_size) != (a.inode, a.size):
+            raise RuntimeError(
+                f"{a.path} here is not the file the driver mapped (another inode or size): the "
+                "worker must mount the run directory at the same path as the driver"
+            )
         # drop files that were replaced or removed (so their pages can go)
         for old in [h for h in _MAPPED if h.path == a.path or not os.path.exists(h.path)]:
             del _MAPPED[old]
@@ -218,6 +224,25 @@ def _run_task(fn, env, args):
                 os.environ[k] = v
 
 
+class TaskRerun(RuntimeError):
+    """A task that writes in place (not safe to run twice) found it had started before: its worker
+    died and the scheduler ran it again. The caller goes back to its last checkpoint."""
+
+
+def _call_once(folder, name, fault, fn, args):
+    """fn(*args) after marking the task ``name`` started (a file created exclusively in
+    ``folder``); :class:`TaskRerun` if it had started before. ``fault`` is the fault point fired
+    after the mark, before fn writes anything (tests)."""
+    from . import faults
+
+    try:
+        os.close(os.open(os.path.join(folder, name), os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644))
+    except FileExistsError:
+        raise TaskRerun(f"task {name} had started before (its worker died)") from None
+    faults.point(fault)
+    return _call_mapped(fn, args)
+
+
 def task_key(fn, call):
     """A deterministic key for a task: the function's name and a hash of its arguments (the run
     root, artifact keys, row ranges), so the same task submitted again is the same task."""
@@ -249,6 +274,18 @@ def _probe(address, timeout):
         return  # the client says more
 
 
+def _host_identity():
+    """This host's boot id (/proc/sys/kernel/random/boot_id, new at every boot of a Linux host and
+    shared by its containers), or its name where there is none."""
+    import socket
+
+    try:
+        with open("/proc/sys/kernel/random/boot_id") as fh:
+            return fh.read().strip()
+    except OSError:
+        return socket.gethostname()
+
+
 class DaskTasks:
     """Tasks on a dask.distributed cluster (run.engine = "dask").
 
@@ -260,6 +297,19 @@ class DaskTasks:
     def __init__(self, client, address):
         self.client = client
         self.address = address
+        self.batches = 0  # map_calls so far: part of each task's key
+        self.once = None  # (folder, fault prefix): tasks write in place, see run_once
+
+    def run_once(self, folder, fault):
+        """Tasks from now on write in place (the solver's group sweeps update its vectors), so a
+        task must not run twice: each marks itself started in ``folder`` (emptied here) and one
+        that finds its mark raises :class:`TaskRerun`; the fault point ``<fault>:<map number>``
+        fires after the mark (tests)."""
+        import shutil
+
+        shutil.rmtree(folder, ignore_errors=True)
+        os.makedirs(folder)
+        self.once = (folder, fault)
 
     @classmethod
     def connect(cls, address="", timeout=10):
@@ -287,17 +337,41 @@ class DaskTasks:
             ) from None
         return cls(client, address)
 
+    def on_this_host(self):
+        """Whether every worker runs on this host (the same Linux boot id, else the same host
+        name): then memory-mapped files in the run directory are shared through one page cache."""
+        here = _host_identity()
+        found = self.client.run(_host_identity)
+        return bool(found) and all(v == here for v in found.values())
+
     def describe(self):
         workers = self.client.scheduler_info(n_workers=-1).get("workers", {})
         return f"the Dask cluster at {self.address} ({len(workers)} workers)"
 
     def map_calls(self, fn, calls, order=None, sizes=None, done=None):
         """``done(j)`` (optional) is called here as call j finishes, in completion order (for
-        progress only; results still come back in the order of the calls)."""
+        progress only; results still come back in the order of the calls). Arrays that are
+        whole-file memory maps travel as :class:`MapHandle` (the solver's group sweeps: a worker
+        maps the run directory's files and writes its rows into them, as the process workers do).
+        A task's key is the function, its arguments and the number of this map on this executor
+        (one stage's executor numbers its maps in the same order in every run, so the keys are
+        deterministic, and two maps with equal arguments, such as two sweeps, stay two tasks)."""
         order = list(range(len(calls))) if order is None else order
         env = {k: os.environ[k] for k in TASK_ENV if k in os.environ}
+        self.batches += 1
+        b = self.batches
+        handles = [_handle(tuple(c)) for c in calls]
+
+        def task(j):
+            if self.once is None:
+                return _call_mapped, (fn, handles[j])
+            folder, fault = self.once
+            return _call_once, (folder, f"{b}-{j}", f"{fault}:{b}", fn, handles[j])
+
         futures = {
-            j: self.client.submit(_run_task, fn, env, calls[j], key=task_key(fn, calls[j]), pure=False)
+            j: self.client.submit(
+                _run_task, task(j)[0], env, task(j)[1], key=task_key(fn, (b, handles[j])), pure=False
+            )
             for j in order
         }
         if done is not None:
@@ -307,8 +381,19 @@ class DaskTasks:
             for f in as_completed(list(futures.values()), loop=self.client.loop):
                 if f.status == "finished":
                     done(index[f.key])
-        results = self.client.gather([futures[j] for j in range(len(calls))])
-        return list(results)
+        ordered = [futures[j] for j in range(len(calls))]
+        if self.once is not None:
+            # every task of the map ends (finishes or fails) before the caller may go back to a
+            # checkpoint, so that none still writes into the vectors afterwards (exception()
+            # waits for the task's end and raises nothing for a failed one)
+            for f in ordered:
+                f.exception()
+        results = list(self.client.gather(ordered))
+        if self.once is not None:
+            for j in range(len(calls)):
+                with contextlib.suppress(OSError):
+                    os.unlink(os.path.join(self.once[0], f"{b}-{j}"))
+        return results
 
     def shutdown(self, wait=True):
         self.client.close()
@@ -342,14 +427,16 @@ def shm_key(path):
 
 
 @contextlib.contextmanager
-def work_files(n, c, key, fallback):
+def work_files(n, c, key, fallback, shared_memory=True):
     """The solver's vectors as memory-mapped files for process workers: in shared memory
     (``/dev/shm/bigsmooth-<key>``) when it has room for them twice over, else in ``fallback``.
     New pages of a file on disk cost a block allocation at their first write (measured here on
     ext4 at 1M rows: about 95 ms for the first sweep's four vectors, against 21 ms for the sweep),
     and the vectors are scratch (the checkpoint is written separately), so shared memory is the
     place for them. The shared-memory folder is removed afterwards (and, if a killed run left
-    one, before)."""
+    one, before). ``shared_memory=False`` keeps them in ``fallback`` (workers on a Dask cluster
+    map the files by their path in the run directory, which every worker mounts; /dev/shm is the
+    driver host's own)."""
     import dataclasses
     import shutil
 
@@ -357,12 +444,11 @@ def work_files(n, c, key, fallback):
 
     need = len(dataclasses.fields(Work)) * n * c * 8
     folder = fallback
-    try:
-        st = os.statvfs(SHM)
-        if st.f_bavail * st.f_frsize >= 2 * need:
-            folder = os.path.join(SHM, f"bigsmooth-{key}")
-    except OSError:
-        pass
+    if shared_memory:
+        with contextlib.suppress(OSError):
+            st = os.statvfs(SHM)
+            if st.f_bavail * st.f_frsize >= 2 * need:
+                folder = os.path.join(SHM, f"bigsmooth-{key}")
     if folder != fallback:
         shutil.rmtree(folder, ignore_errors=True)
     os.makedirs(folder, exist_ok=True)

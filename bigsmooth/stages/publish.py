@@ -65,6 +65,43 @@ def _write_file(src_path, dst_path, cols, inp, out, Y, F, lo, hi, offset, batch_
     return pos - offset
 
 
+def file_task(root, staging, spec, i):
+    """Write output file ``i`` (numbered from 1 in the input's file order) of the run at ``root``
+    into the folder ``staging`` (a task: it reads the raw and adjusted scores from the run
+    directory and the input file from its path, and writes its file under a temporary name, then
+    renames it, so a task run twice, or on another host that mounts both, leaves one whole file).
+    ``spec`` holds the file list and what the stage read from the config. Returns the rows written."""
+    e = spec["files"][i - 1]
+    dst = os.path.join(staging, os.path.relpath(e["path"], spec["input_root"]))
+    os.makedirs(os.path.dirname(dst), exist_ok=True)
+    Y = art.EMBED_SCORES.load(root, mmap=True)
+    F = art.SOLVE_ADJUSTED.load(root, mmap=True)
+    tmp = dst + ".part"
+    got = _write_file(
+        e["path"],
+        tmp,
+        spec["cols"],
+        spec["input"],
+        spec["output"],
+        Y,
+        F,
+        *spec["range"],
+        e["offset"],
+        spec["batch_rows"],
+        spec["meta"],
+    )
+    if got != e["rows"]:
+        raise RuntimeError(f"{e['path']}: wrote {got} rows, the footer says {e['rows']}")
+    written = os.path.exists(tmp)  # a file without rows has no output file
+    if written:
+        with open(tmp, "rb") as fh:
+            os.fsync(fh.fileno())
+    faults.point(f"publish:file:{i}")
+    if written:
+        os.replace(tmp, dst)
+    return got
+
+
 def _clear_leftovers(root):
     for name in os.listdir(root):
         p = os.path.join(root, name)
@@ -139,31 +176,37 @@ def run(ctx):
             return {"version": version, "rows": fp["rows"], "files": len(fp["files"])}
     except OSError as exc:
         raise OutputError(f"cannot write the output under {root}: {exc}") from None
-    Y = art.EMBED_SCORES.load(rundir, mmap=True)
-    F = art.SOLVE_ADJUSTED.load(rundir, mmap=True)
-    lo, hi = inp["score_range"]
     cols = output_columns(inp, out)
     meta = {
         provenance.PARQUET_KEY: json.dumps(_refresh_audit(rundir, cfg, fp, version), sort_keys=True).encode()
     }
-    batch_rows = cfg["embed"]["batch_rows"] or batch_rows_for(
-        cfg["run"]["memory_mb"], len(cols) + 2 * len(inp["scores"])
-    )
+    spec = {
+        "files": [{k: e[k] for k in ("path", "offset", "rows")} for e in fp["files"]],
+        "input_root": fp["root"],
+        "cols": cols,
+        "input": {"scores": list(inp["scores"])},
+        "output": {"suffix": out["suffix"]},
+        "range": tuple(inp["score_range"]),
+        "batch_rows": cfg["embed"]["batch_rows"]
+        or batch_rows_for(cfg["run"]["memory_mb"], len(cols) + 2 * len(inp["scores"])),
+        "meta": meta,
+    }
     try:
         os.makedirs(staging, exist_ok=False)
     except OSError as exc:
         raise OutputError(f"cannot create the output folder {staging}: {exc.strerror}") from None
     try:
-        written = 0
-        for i, e in enumerate(fp["files"], 1):
-            rel = os.path.relpath(e["path"], fp["root"])
-            dst = os.path.join(staging, rel)
-            os.makedirs(os.path.dirname(dst), exist_ok=True)
-            got = _write_file(e["path"], dst, cols, inp, out, Y, F, lo, hi, e["offset"], batch_rows, meta)
-            if got != e["rows"]:
-                raise RuntimeError(f"{e['path']}: wrote {got} rows, the footer says {e['rows']}")
-            written += got
-            faults.point(f"publish:file:{i}")
+        calls = [(rundir.path, staging, spec, i) for i in range(1, len(fp["files"]) + 1)]
+        if cfg["run"]["engine"] == "dask":
+            executor = ctx.task_executor()
+            try:
+                log.info("writing %d files as tasks on %s", len(calls), executor.describe())
+                got = executor.map_calls(file_task, calls, None, [e["rows"] for e in fp["files"]])
+            finally:
+                executor.shutdown()
+        else:
+            got = [file_task(*call) for call in calls]
+        written = int(sum(got))
         if written != fp["rows"]:
             raise RuntimeError(f"wrote {written} rows; the input has {fp['rows']}")
         shutil.copyfile(art.AUDIT_REPORT_JSON.path(rundir), os.path.join(staging, art.OUTPUT_AUDIT))

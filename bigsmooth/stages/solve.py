@@ -4,7 +4,9 @@ The system is permuted into the order stage's group ordering and solved by
 
 - ``sweep-cg`` (default): conjugate gradients preconditioned by symmetric Gauss-Seidel sweeps over
   the block groups (:mod:`bigsmooth.kernels.sweepcg`), groups swept in parallel by joblib workers
-  (threads or loky processes over memmaps in the run directory);
+  (threads or loky processes over memmaps in the run directory), or as tasks on the Dask cluster
+  when run.engine = "dask" (the vectors are memory-mapped files in the run directory; a sweep
+  task that runs twice because its worker died sends the solver back to its last checkpoint);
 - ``blocks``: plain blocked coordinate descent (block Gauss-Seidel);
 - ``direct``: a sparse direct solve (small tables; the reference).
 
@@ -22,9 +24,12 @@ import numpy as np
 
 from .. import artifacts as art
 from .. import atomic, faults, parallel
+from ..errors import EngineUnavailableError
 from ..kernels import laplacian, solver, sweepcg
 
 log = logging.getLogger("bigsmooth.solve")
+
+TASK_RERUNS = 3  # returns to the checkpoint after group-sweep tasks ran twice, before giving up (exit 75)
 
 
 def _fast_gs():
@@ -137,6 +142,30 @@ class Problem:
     cold: bool
     ck_path: str
     make_executor: object = parallel.make_executor  # (workers, backend) -> executor; the context's
+    task_executor: object = (
+        None  # () -> a Dask executor when run.engine = "dask" (the group sweeps are its tasks)
+    )
+
+
+def _sweep_tasks(ctx):
+    """The Dask executor for the group sweeps (a function that connects), or None for local
+    workers: run.engine = "dask" and run.dask_solve allows it (see the rule)."""
+    run = ctx.cfg["run"]
+    if run["engine"] != "dask" or run["dask_solve"] == "never":
+        return None
+    if run["dask_solve"] == "same-host":
+        ex = ctx.task_executor()
+        try:
+            here = ex.on_this_host()
+        finally:
+            ex.shutdown()
+        if not here:
+            log.info(
+                "group sweeps run here: some Dask workers run on other hosts, and the sweeps share "
+                "memory-mapped files (run.dask_solve = 'same-host'; see its rule)"
+            )
+            return None
+    return ctx.task_executor
 
 
 def _sweep_cg(pb):
@@ -158,14 +187,34 @@ def _sweep_cg(pb):
     atomic.release_pages(split.degree)
     del split
     with contextlib.ExitStack() as stack:
-        if s["backend"] == "processes":
-            # process workers map the solver's vectors as files too
+        if s["backend"] == "processes" or pb.task_executor is not None:
+            # process workers and Dask workers map the solver's vectors as files too (Dask's in
+            # the run directory, which every worker mounts)
             work = stack.enter_context(
-                parallel.work_files(n, c, parallel.shm_key(rundir.path), art.SOLVE_WORK.path(rundir))
+                parallel.work_files(
+                    n,
+                    c,
+                    parallel.shm_key(rundir.path),
+                    art.SOLVE_WORK.path(rundir),
+                    shared_memory=pb.task_executor is None,
+                )
             )
         else:
             work = sweepcg.Work.allocate(n, c)
-        return _sweep_cg_on(pb, system, bounds, work)
+        for attempt in range(TASK_RERUNS + 1):
+            try:
+                return _sweep_cg_on(pb, system, bounds, work)
+            except parallel.TaskRerun as exc:
+                if attempt == TASK_RERUNS:
+                    raise EngineUnavailableError(
+                        f"group-sweep tasks were run twice {attempt + 1} times ({exc}): Dask workers "
+                        "keep dying; the run resumes from the solver's last checkpoint when started again"
+                    ) from None
+                log.warning(
+                    "%s: a group sweep may be half done, so the solver goes back to its last "
+                    "checkpoint (or the start)",
+                    exc,
+                )
 
 
 def _sweep_cg_on(pb, system, bounds, work):
@@ -207,7 +256,13 @@ def _sweep_cg_on(pb, system, bounds, work):
             log.info("sweep %d: preconditioned residual %.3e", st["sweep"], st["residuals"][-1])
 
     nw = workers_for(s)
-    executor = pb.make_executor(nw, s["backend"])
+    if pb.task_executor is not None:
+        executor = pb.task_executor()
+        # a sweep updates the vectors in place: a task must not run twice (see _sweep_cg)
+        executor.run_once(os.path.join(art.SOLVE_WORK.path(pb.rundir), "started"), "solve:task")
+        log.info("group sweeps: %d groups a phase as tasks on %s", len(bounds) - 1, executor.describe())
+    else:
+        executor = pb.make_executor(nw, s["backend"])
     try:
         # a cold start (the raw scores) is scaled to the multiple closest to the solution; a warm
         # start (last night's adjusted scores) is taken as it is
@@ -347,7 +402,8 @@ def run(ctx):
             # decided from the warm-start record, not from X0's identity: a resumed run reads X0
             # back from solve/x0.npy
             cold = not info.get("warm_start", {}).get("used", False)
-            Xp, more = _sweep_cg(Problem(rundir, s, Y, cvec, b, perm, X0, cold, ck_path, ctx.executor))
+            tasks = _sweep_tasks(ctx)
+            Xp, more = _sweep_cg(Problem(rundir, s, Y, cvec, b, perm, X0, cold, ck_path, ctx.executor, tasks))
         else:
             A, _ = laplacian.system(W, s["lam"], s["laplacian"])
             Xp, more = _blocks(Problem(rundir, s, Y, cvec, b, perm, X0, False, ck_path), A)

@@ -3,6 +3,7 @@ processes, one thread each, as the issue asks. The reference is the local engine
 same config: bit-identical, every row exactly once, also when a worker dies mid-stage."""
 
 import numpy as np
+import pyarrow.parquet as pq
 import pytest
 
 from helpers import _small_table, _write_case, cli, read_output
@@ -24,8 +25,13 @@ def cluster():
 
 
 def _case(path, engine, address=""):
+    """3,000 rows in three input files (so publishing is three tasks)."""
     path.mkdir()
     cfg = _write_case(path, _small_table(3000, seed=51), PARTITIONED)
+    whole = pq.read_table(path / "in" / "part-0.parquet")
+    (path / "in" / "part-0.parquet").unlink()
+    for i, lo in enumerate((0, 1000, 2000)):
+        pq.write_table(whole.slice(lo, 1000), path / "in" / f"part-{i}.parquet")
     text = cfg.read_text()
     assert "[graph]" in text and "[run]" in text  # the demo's config template has both sections
     text = text.replace("[graph]", '[graph]\nbuild = "partitioned"\npartition_rows = 900', 1)
@@ -61,7 +67,27 @@ def test_the_job_on_dask_publishes_what_the_local_engine_publishes(cluster, loca
     res = cli("run", str(cfg))
     assert res.returncode == 0, res.stderr[-3000:]
     assert "tasks on the Dask cluster at " + cluster.scheduler_address in res.stderr
+    # the partition searches, the solver's group sweeps and the output files all ran as tasks
+    assert "partitions: " in res.stderr and " tasks on the Dask cluster" in res.stderr
+    assert "group sweeps: " in res.stderr and "writing 3 files as tasks on the Dask cluster" in res.stderr
     _assert_same(_published(tmp_path / "case"), local_output)
+
+
+@pytest.mark.parametrize("point", ["publish:file:2", "solve:task:4"])
+def test_a_worker_killed_in_publish_or_in_a_sweep_costs_nothing(cluster, local_output, tmp_path, point):
+    """A publish task is safe to run twice (it writes its file under a temporary name, then
+    renames it). A group-sweep task writes the solver's vectors in place: its second run finds its
+    start mark and the solver goes back to its checkpoint; the result is still bit-identical."""
+    cfg = _case(tmp_path / "case", "dask", cluster.scheduler_address)
+    sentinel = tmp_path / "killed-once"
+    res = cli("run", str(cfg), env={"BIGSMOOTH_FAULT": f"{point}=kill-once:{sentinel}"})
+    assert res.returncode == 0, res.stderr[-3000:]
+    assert sentinel.exists()
+    if point.startswith("solve"):
+        assert "goes back to its last checkpoint" in res.stderr, res.stderr[-3000:]
+    got = _published(tmp_path / "case")
+    assert len(got["applicant_id"]) == 3000 and len(set(got["applicant_id"].tolist())) == 3000
+    _assert_same(got, local_output)
 
 
 def test_a_worker_killed_mid_stage_costs_only_its_task(cluster, local_output, tmp_path):
