@@ -247,8 +247,13 @@ def task_key(fn, call):
     """A deterministic key for a task: the function's name and a hash of its arguments (the run
     root, artifact keys, row ranges), so the same task submitted again is the same task."""
     import hashlib
+    import pickle
 
-    digest = hashlib.sha256(repr((fn.__module__, fn.__qualname__, call)).encode()).hexdigest()[:20]
+    try:  # the arguments' full content (numpy's repr elides long arrays)
+        text = pickle.dumps((fn.__module__, fn.__qualname__, call), protocol=4)
+    except (pickle.PicklingError, TypeError, AttributeError):
+        text = repr((fn.__module__, fn.__qualname__, call)).encode()
+    digest = hashlib.sha256(text).hexdigest()[:20]
     return f"bigsmooth-{fn.__name__}-{digest}"
 
 

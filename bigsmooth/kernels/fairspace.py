@@ -49,6 +49,16 @@ class Moments:
         self.ss += np.asarray(S.sum(axis=0)).ravel()
         self.sxs += np.asarray((S.T @ Xc).T)
 
+    def add(self, other):
+        """Add the statistics of other rows, taken with the same shift."""
+        if not np.array_equal(self.shift, other.shift):
+            raise ValueError("moments taken with different shifts cannot be added")
+        self.n += other.n
+        self.sx += other.sx
+        self.sxx += other.sxx
+        self.ss += other.ss
+        self.sxs += other.sxs
+
 
 @dataclass
 class FairSpace:

@@ -5,6 +5,10 @@ the per-row arrays the later stages need (scores, labels, protected-level codes)
 learned from the statistics. Pass 2 writes the embedding as a float32 memmap, one row per input row
 at its stable row index. Finally a linear probe on a sample measures how well the raw features and
 the fair space still predict each protected attribute (the leakage figure).
+
+Each pass is one task per input file (here, or on the Dask cluster with run.engine = "dask"): a
+task streams its file in the same fixed chunks, writes its rows into the stage's temporary arrays
+by path, and returns its file's statistics, which the driver adds in file order.
 """
 
 import logging
@@ -20,7 +24,7 @@ from ..errors import DataError
 from ..kernels import encoding, fairspace
 from ..kernels.metrics import roc_auc
 from ..progress import Progress
-from ..table import Source, batch_rows_for, connect_budget, quote, units, verify_unchanged
+from ..table import UNIT_ROWS, Source, batch_rows_for, connect_budget, quote, units, verify_unchanged
 from .scan import MISSING_LEVEL
 
 log = logging.getLogger("bigsmooth.embed")
@@ -72,7 +76,9 @@ def _select_sql(inp):
 
 
 class _Outputs:
-    """Row-indexed arrays written through memmaps in temporary files, renamed into place at the end."""
+    """Row-indexed arrays written through memmaps in temporary files (by the file tasks, which map
+    them by path), renamed into place at the end. The driver keeps no mapping of its own: a
+    mapping with dirty pages here could overwrite a worker's rows on a shared file system."""
 
     def __init__(self):
         self.items = {}
@@ -82,23 +88,135 @@ class _Outputs:
         mm = atomic.new_memmap(tmp, dtype, shape)
         if fill is not None:
             mm[:] = fill
-        self.items[path] = (tmp, mm)
-        return mm
+            mm.flush()
+        del mm
+        self.items[path] = tmp
+        return tmp
 
     def commit(self):
-        for path, (tmp, mm) in self.items.items():
-            mm.flush()
+        for path, tmp in self.items.items():
             with open(tmp, "rb+") as fh:
                 os.fsync(fh.fileno())
-            del mm
             os.replace(tmp, path)
         if self.items:
             atomic.fsync_dir(os.path.dirname(next(iter(self.items))))
         self.items.clear()
 
 
+def _mapped(paths):
+    return {k: (np.load(v, mmap_mode="r+") if v else None) for k, v in paths.items()}
+
+
+def _flushed(arrays):
+    for mm in arrays.values():
+        if mm is not None:
+            mm.flush()
+            with open(mm.filename, "rb+") as fh:
+                os.fsync(fh.fileno())
+
+
+def _file_chunks(spec, i, on_chunk=None):
+    """(chunk number, rows, batch) of input file ``i``: chunks are numbered from 1 over every file
+    in order (and on over the second pass, see ``spec["first_chunk"]``), so a fault point names
+    the same chunk whichever worker reads the file."""
+    e = spec["files"][i]
+    con = connect_budget(spec["memory_mb"])
+    number = spec["first_chunk"][i]
+    try:
+        for rows, batch in Source(con, {"files": [e]}).chunks(con, spec["sql"], spec["batch_rows"]):
+            number += 1
+            yield number, rows, batch
+            if on_chunk is not None:
+                on_chunk(len(rows))
+    finally:
+        con.close()
+
+
+def statistics_task(root, spec, i, on_chunk=None):
+    """Pass 1 over input file ``i`` (a task): write its rows' scores, labels, protected codes and
+    audit-only columns into the stage's temporary arrays (mapped by path) and return the file's
+    :class:`~bigsmooth.kernels.fairspace.Moments` (taken with ``spec["shift"]``) and rows. Running
+    it twice writes the same values again."""
+    inp, levels, prot_levels = spec["input"], spec["levels"], spec["prot_levels"]
+    out = _mapped(spec["pass1"])
+    mom = fairspace.Moments.empty(spec["shift"], spec["m"])
+    seen = 0
+    for number, rows, batch in _file_chunks(spec, i, on_chunk):
+        X = _features(batch, inp, levels)
+        pcodes = [_codes(batch, c, prot_levels[c]) for c in inp["protected"]]
+        for j, cc in enumerate(pcodes):
+            out["codes"][rows, j] = cc
+        S = encoding.indicators(pcodes, [len(prot_levels[c]) for c in inp["protected"]], len(rows))
+        for u in units(len(X)):
+            mom.update(X[u], S[u])
+        for j, c in enumerate(inp["scores"]):
+            out["scores"][rows, j] = _floats(batch, c)
+        for j, c in enumerate(other_columns(inp)):
+            out["other"][rows, j] = _floats(batch, c)
+        if out["label"] is not None:
+            out["label"][rows] = batch.column(inp["label"]).to_numpy(zero_copy_only=False)
+        seen += len(rows)
+        faults.point(f"embed:chunk:{number}")
+    _flushed(out)
+    return mom, seen
+
+
+def embedding_task(root, spec, i, on_chunk=None):
+    """Pass 2 over input file ``i`` (a task): write its rows of the embedding (mapped by path) and
+    return (positions in the probe sample, standardised features) of its sampled rows, and its rows.
+    Running it twice writes the same values again."""
+    inp, levels = spec["input"], spec["levels"]
+    mean, scale, transform = spec["mean"], spec["scale"], spec["transform"]
+    sample = spec["sample"]
+    out = _mapped({"embedding": spec["embedding"]})
+    E = out["embedding"]
+    pos_all, raw_all = [], []
+    seen = 0
+    for number, rows, batch in _file_chunks(spec, i, on_chunk):
+        X = _features(batch, inp, levels)
+        for u in units(len(X)):
+            E[rows[u]] = (((X[u] - mean) * scale) @ transform).astype(np.float32)
+        pos = np.searchsorted(sample, rows)
+        hit = (pos < len(sample)) & (sample[np.minimum(pos, len(sample) - 1)] == rows)
+        pos_all.append(pos[hit])
+        raw_all.append((X[hit] - mean) * scale)  # standardised, before the projection
+        seen += len(rows)
+        faults.point(f"embed:chunk:{number}")
+    _flushed(out)
+    p = len(mean)
+    return (
+        np.concatenate(pos_all) if pos_all else np.empty(0, dtype=np.int64),
+        np.concatenate(raw_all) if raw_all else np.empty((0, p)),
+        seen,
+    )
+
+
+def _shift(con, fp, sql, inp, levels):
+    """The mean of the first :data:`~bigsmooth.table.UNIT_ROWS` rows' features: the shift every
+    file's statistics are taken with (so that they add up)."""
+    first = next(e for e in fp["files"] if e["rows"])
+    rows, batch = next(iter(Source(con, {"files": [first]}).chunks(con, sql, UNIT_ROWS)))
+    return _features(batch, inp, levels).mean(axis=0)
+
+
+def _run_files(ctx, fn, calls, sizes, prog):
+    """``fn`` over the calls (one per input file): tasks on the Dask cluster when run.engine =
+    "dask" (progress as files finish), else one after another here (progress by chunk); results
+    in file order."""
+    if ctx.cfg["run"]["engine"] == "dask":
+        executor = ctx.task_executor()
+        try:
+            log.info("%s: %d files as tasks on %s", fn.__name__, len(calls), executor.describe())
+            return executor.map_calls(fn, calls, None, sizes, done=lambda j: prog.update(sizes[j]))
+        finally:
+            executor.shutdown()
+    return [fn(*call, on_chunk=prog.update) for call in calls]
+
+
 def run(ctx):
-    """The embed stage (see the module docstring)."""
+    """The embed stage (see the module docstring). Each pass is one task per input file
+    (:func:`statistics_task`, :func:`embedding_task`); the driver adds the files' statistics in
+    file order, so the result does not depend on where or in which order the tasks ran."""
     rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
     inp, ecfg = cfg["input"], cfg["embed"]
     scan = art.SCAN_INFO.load(rundir)
@@ -110,41 +228,46 @@ def run(ctx):
     m = sum(len(v) for v in prot_levels.values())
     art.EMBED_SCORES.folder(rundir)
     out = _Outputs()
-    Y = out.open(art.EMBED_SCORES.path(rundir), (n, len(inp["scores"])), np.float64)
-    label = out.open(art.EMBED_LABEL.path(rundir), (n,), np.float64, fill=np.nan) if inp["label"] else None
-    codes = out.open(art.EMBED_PROTECTED.path(rundir), (n, len(inp["protected"])), np.int32)
-    other = out.open(art.EMBED_COMPARE.path(rundir), (n, len(other_columns(inp))), np.float64)
+    pass1 = {
+        "scores": out.open(art.EMBED_SCORES.path(rundir), (n, len(inp["scores"])), np.float64),
+        "label": out.open(art.EMBED_LABEL.path(rundir), (n,), np.float64, fill=np.nan)
+        if inp["label"]
+        else None,
+        "codes": out.open(art.EMBED_PROTECTED.path(rundir), (n, len(inp["protected"])), np.int32),
+        "other": out.open(art.EMBED_COMPARE.path(rundir), (n, len(other_columns(inp))), np.float64),
+    }
 
     con = connect_budget(cfg["run"]["memory_mb"])
-    src = Source(con, fp)
     sql = _select_sql(inp)
     width = p + len(inp["scores"]) + len(inp["protected"]) + 2
     batch_rows = ecfg["batch_rows"] or batch_rows_for(cfg["run"]["memory_mb"], width)
     log.info("streaming in chunks of %d rows (memory budget %d MiB)", batch_rows, cfg["run"]["memory_mb"])
-    mom = None
-    seen = 0
-    chunk_no = 0
+    files = [{k: e[k] for k in ("path", "offset", "rows")} for e in fp["files"]]
+    chunks = np.cumsum([0] + [-(-e["rows"] // batch_rows) for e in files])
+    spec = {
+        "files": files,
+        "memory_mb": cfg["run"]["memory_mb"],
+        "sql": sql,
+        "batch_rows": batch_rows,
+        "first_chunk": [int(c) for c in chunks[:-1]],
+        "input": {
+            k: inp[k] for k in ("numeric_features", "categorical_features", "protected", "scores", "label")
+        }
+        | {"compare_scores": inp["compare_scores"], "counterfactual_score": inp["counterfactual_score"]},
+        "levels": levels,
+        "prot_levels": prot_levels,
+        "m": m,
+        "shift": _shift(con, fp, sql, inp, levels),
+        "pass1": pass1,
+    }
+    calls = [(rundir.path, spec, i) for i in range(len(files))]
+    sizes = [e["rows"] for e in files]
     prog = Progress(log, "embed pass 1 (statistics)", n)
-    for rows, batch in src.chunks(con, sql, batch_rows):
-        X = _features(batch, inp, levels)
-        pcodes = [_codes(batch, c, prot_levels[c]) for c in inp["protected"]]
-        for j, cc in enumerate(pcodes):
-            codes[rows, j] = cc
-        S = encoding.indicators(pcodes, [len(prot_levels[c]) for c in inp["protected"]], len(rows))
-        if mom is None:
-            mom = fairspace.Moments.empty(X[units(len(X))[0]].mean(axis=0), m)
-        for u in units(len(X)):
-            mom.update(X[u], S[u])
-        for j, c in enumerate(inp["scores"]):
-            Y[rows, j] = _floats(batch, c)
-        for j, c in enumerate(other_columns(inp)):
-            other[rows, j] = _floats(batch, c)
-        if label is not None:
-            label[rows] = batch.column(inp["label"]).to_numpy(zero_copy_only=False)
-        seen += len(rows)
-        prog.update(len(rows))
-        chunk_no += 1
-        faults.point(f"embed:chunk:{chunk_no}")
+    mom = fairspace.Moments.empty(spec["shift"], m)
+    seen = 0
+    for part, rows in _run_files(ctx, statistics_task, calls, sizes, prog):
+        mom.add(part)
+        seen += rows
     if seen != n:
         raise RuntimeError(f"embed pass 1 streamed {seen} rows; the footers say {n}")
 
@@ -164,31 +287,31 @@ def run(ctx):
             "columns carry values (all rows identical?) and that input.numeric_features / "
             "categorical_features name the right columns."
         )
-    E = out.open(art.EMBED_EMBEDDING.path(rundir), (n, dim), np.float32)
-
     rng = ctx.rng("embed.probe_sample")
     sample = np.sort(rng.choice(n, size=min(n, ecfg["probe_rows"]), replace=False))
+    spec2 = spec | {
+        "embedding": out.open(art.EMBED_EMBEDDING.path(rundir), (n, dim), np.float32),
+        "first_chunk": [int(c + chunks[-1]) for c in chunks[:-1]],
+        "mean": fs.mean,
+        "scale": fs.scale,
+        "transform": fs.transform,
+        "sample": sample,
+    }
+    calls = [(rundir.path, spec2, i) for i in range(len(files))]
     raw_sample = np.zeros((len(sample), p))
     seen = 0
     prog = Progress(log, "embed pass 2 (embedding)", n)
-    for rows, batch in src.chunks(con, sql, batch_rows):
-        X = _features(batch, inp, levels)
-        for u in units(len(X)):
-            E[rows[u]] = fs.apply(X[u]).astype(np.float32)
-        pos = np.searchsorted(sample, rows)
-        hit = (pos < len(sample)) & (sample[np.minimum(pos, len(sample) - 1)] == rows)
-        raw_sample[pos[hit]] = (X[hit] - fs.mean) * fs.scale  # standardised, before the projection
-        seen += len(rows)
-        prog.update(len(rows))
-        chunk_no += 1
-        faults.point(f"embed:chunk:{chunk_no}")
+    for pos, raw, rows in _run_files(ctx, embedding_task, calls, sizes, prog):
+        raw_sample[pos] = raw
+        seen += rows
     if seen != n:
         raise RuntimeError(f"embed pass 2 streamed {seen} rows; the footers say {n}")
 
     verify_unchanged(fp, "during stage embed")
     leakage = {}
-    fair_sample = np.asarray(E[sample], dtype=np.float64)
-    code_sample = np.asarray(codes[sample])
+    # read back through new mappings (the tasks wrote the files)
+    fair_sample = np.asarray(np.load(spec2["embedding"], mmap_mode="r")[sample], dtype=np.float64)
+    code_sample = np.asarray(np.load(pass1["codes"], mmap_mode="r")[sample])
     for j, c in enumerate(inp["protected"]):
         per_level = {}
         for li, lv in enumerate(prot_levels[c]):

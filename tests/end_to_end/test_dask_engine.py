@@ -67,16 +67,21 @@ def test_the_job_on_dask_publishes_what_the_local_engine_publishes(cluster, loca
     res = cli("run", str(cfg))
     assert res.returncode == 0, res.stderr[-3000:]
     assert "tasks on the Dask cluster at " + cluster.scheduler_address in res.stderr
-    # the partition searches, the solver's group sweeps and the output files all ran as tasks
+    # both embed passes, the partition searches, the solver's group sweeps and the output files
+    # all ran as tasks
+    assert "statistics_task: 3 files as tasks on the Dask cluster" in res.stderr
+    assert "embedding_task: 3 files as tasks on the Dask cluster" in res.stderr
     assert "partitions: " in res.stderr and " tasks on the Dask cluster" in res.stderr
     assert "group sweeps: " in res.stderr and "writing 3 files as tasks on the Dask cluster" in res.stderr
     _assert_same(_published(tmp_path / "case"), local_output)
 
 
-@pytest.mark.parametrize("point", ["publish:file:2", "solve:task:4"])
-def test_a_worker_killed_in_publish_or_in_a_sweep_costs_nothing(cluster, local_output, tmp_path, point):
-    """A publish task is safe to run twice (it writes its file under a temporary name, then
-    renames it). A group-sweep task writes the solver's vectors in place: its second run finds its
+@pytest.mark.parametrize("point", ["embed:chunk:2", "embed:chunk:6", "publish:file:2", "solve:task:4"])
+def test_a_worker_killed_in_embed_publish_or_a_sweep_costs_nothing(cluster, local_output, tmp_path, point):
+    """An embed task (chunk 2: pass 1's second file; chunk 6: pass 2's third) writes the same
+    values when run again, and its statistics come back once, from the run that finished. A
+    publish task is safe to run twice (it writes its file under a temporary name, then renames
+    it). A group-sweep task writes the solver's vectors in place: its second run finds its
     start mark and the solver goes back to its checkpoint; the result is still bit-identical."""
     cfg = _case(tmp_path / "case", "dask", cluster.scheduler_address)
     sentinel = tmp_path / "killed-once"
@@ -107,11 +112,11 @@ def test_an_unreachable_scheduler_is_exit_75_and_nothing_is_lost(tmp_path):
     assert res.returncode == 75, res.stderr[-2000:]
     assert "cannot reach the Dask scheduler at tcp://127.0.0.1:9" in res.stderr
     assert not (tmp_path / "case" / "out" / "current").exists()  # nothing published
-    # the stages before the graph are kept: the same run resumes with a reachable engine
+    # the stage before the first tasks (embed's) is kept: the same run resumes with a reachable engine
     text = cfg.read_text().replace('engine = "dask"', 'engine = "local"')
     cfg.write_text(text)
     res = cli("run", str(cfg))
-    assert res.returncode == 0 and "stage embed already done" in res.stderr, res.stderr[-2000:]
+    assert res.returncode == 0 and "stage scan already done" in res.stderr, res.stderr[-2000:]
 
 
 def test_dask_without_an_address_is_a_config_error(tmp_path):

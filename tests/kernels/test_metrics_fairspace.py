@@ -1,6 +1,7 @@
 """Audit metrics against scikit-learn, and the fair space against a direct numpy computation."""
 
 import numpy as np
+import pytest
 import scipy.sparse as sp
 from sklearn.metrics import accuracy_score, roc_auc_score
 
@@ -63,6 +64,25 @@ def test_streamed_moments_match_numpy_covariance(rng):
     cov = mom.sxx / n - np.outer(mom.sx / n, mom.sx / n)
     np.testing.assert_allclose(mean, X.mean(axis=0), rtol=1e-12)
     np.testing.assert_allclose(cov, np.cov(X.T, bias=True), rtol=1e-9)  # numpy.cov reference
+
+
+def test_moments_of_files_added_in_order_match_numpy_covariance(rng):
+    """The embed stage takes each file's moments with one shift and adds them in file order."""
+    X = rng.normal(loc=[1e4, 3, -2], scale=[50, 1, 0.1], size=(5000, 3))
+    S = np.eye(3)[rng.integers(0, 3, 5000)]
+    shift = X[:100].mean(axis=0)
+    total = fairspace.Moments.empty(shift, 3)
+    for part in np.array_split(np.arange(len(X)), 4):
+        m = fairspace.Moments.empty(shift, 3)
+        m.update(X[part], sp.csr_matrix(S[part]))
+        total.add(m)
+    n = total.n
+    cov = total.sxx / n - np.outer(total.sx / n, total.sx / n)
+    np.testing.assert_allclose(total.shift + total.sx / n, X.mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(cov, np.cov(X.T, bias=True), rtol=1e-9)  # numpy.cov reference
+    np.testing.assert_allclose(total.sxs, (X - shift).T @ S, rtol=1e-12)
+    with pytest.raises(ValueError, match="different shifts"):
+        total.add(fairspace.Moments.empty(shift + 1.0, 3))
 
 
 def test_fair_space_leaves_no_linear_correlation_with_protected(rng):
