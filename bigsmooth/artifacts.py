@@ -232,6 +232,13 @@ SOLVE_ADJUSTED = _a(
     "solve.adjusted", "solve", "solve/adjusted.npy", "npy", "adjusted scores (n, score columns)"
 )
 SOLVE_INFO = _a("solve.info", "solve", "solve/solve.json", "json", "convergence record")
+AUDIT_VECTORS = _a(
+    "audit.vectors",
+    "audit",
+    "audit/vectors.npy",
+    "npy",
+    "the score vectors the audit's neighbour figures are taken on (vectors, n), for its block tasks; removed when the stage is done",
+)
 AUDIT_REPORT_JSON = _a(
     "audit.record", "audit", "audit/audit.json", "json", "the audit (copied to the output)"
 )

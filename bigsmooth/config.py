@@ -417,7 +417,7 @@ RULES = {
             "str",
             default="local",
             choices=("local", "dask"),
-            doc="where tasks run (the embed passes by input file, the graph stage's partition searches, the solver's group sweeps, the output files): 'local' = in this process; 'dask' = on the dask.distributed cluster at run.dask_scheduler (the same result bit for bit; needs pip install bigsmooth[dask] and the run directory, input and output on storage every worker mounts at the same path)",
+            doc="where tasks run (the embed passes by input file, the graph stage's partition searches, the solver's group sweeps, the audit's neighbour figures by row block, the output files): 'local' = in this process; 'dask' = on the dask.distributed cluster at run.dask_scheduler (the same result bit for bit; needs pip install bigsmooth[dask] and the run directory, input and output on storage every worker mounts at the same path)",
             affects_result=False,
         ),
         "dask_scheduler": Rule(

@@ -23,6 +23,63 @@ def chunked_consistency(decisions, nb):
     return float(1.0 - inconsistency / len(nb))
 
 
+def neighbour_block(V, cuts, W, nb, dist, constant, lo, hi):
+    """The neighbour figures' partial sums over rows lo..hi for each score vector V[j] (V is
+    (vectors, n)), decided at ``cuts[j]``: per vector a dict with ``edge`` (sum of w (f_i - f_j)^2
+    over the block's edges, sum of w), ``inconsistency`` (the block's rows times one minus their
+    consistency) and ``lipschitz`` (:func:`bigsmooth.kernels.metrics.pair_differences` counts).
+    :func:`neighbour_figures` adds the blocks in order; with blocks of :data:`CHUNK` rows the
+    figures equal :func:`metrics.edge_disagreement`, :func:`chunked_consistency` and
+    :func:`local_lipschitz` bit for bit (tested)."""
+    a, b = int(W.indptr[lo]), int(W.indptr[hi])
+    rows = np.repeat(np.arange(lo, hi), np.diff(W.indptr[lo : hi + 1]))
+    cols = np.asarray(W.indices[a:b])
+    w = np.asarray(W.data[a:b])
+    part = np.asarray(nb[lo:hi])
+    d = np.asarray(dist[lo:hi], dtype=np.float64)
+    out = []
+    for j in range(V.shape[0]):
+        f = np.asarray(V[j], dtype=np.float64)
+        diff = (f[rows] - f[cols])[:, None]
+        own = (f[lo:hi] >= cuts[j]).astype(np.float64)
+        theirs = (f[part] >= cuts[j]).astype(np.float64)
+        cons = float(1.0 - np.mean(np.abs(own - theirs.mean(axis=1))))  # metrics.consistency
+        out.append(
+            {
+                "edge": (float(np.sum(w * np.sum(diff * diff, axis=1))), float(np.sum(w))),
+                "inconsistency": (1.0 - cons) * len(part),
+                "lipschitz": metrics.pair_differences(
+                    np.broadcast_to(f[lo:hi, None], part.shape), f[part], d, constant
+                ),
+            }
+        )
+    return out
+
+
+def neighbour_figures(blocks, n):
+    """Per vector (neighbour_disagreement, neighbour_consistency, local Lipschitz summary) from the
+    :func:`neighbour_block` results of consecutive blocks, added in block order."""
+    figs = []
+    for j in range(len(blocks[0]) if blocks else 0):
+        acc = total = inconsistency = 0.0
+        lip = None
+        for blk in blocks:
+            e = blk[j]
+            acc += e["edge"][0]
+            total += e["edge"][1]
+            inconsistency += e["inconsistency"]
+            c = e["lipschitz"]
+            lip = c if lip is None else {k: lip[k] + c[k] for k in lip}
+        figs.append(
+            (
+                acc / total if total != 0 else 0.0,
+                float(1.0 - inconsistency / n),
+                metrics.lipschitz_summary(lip),
+            )
+        )
+    return figs
+
+
 def argmax_consistency(classes, nb):
     """1 - mean share of a row's neighbours whose arg-max class differs from the row's."""
     total = 0.0

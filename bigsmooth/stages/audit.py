@@ -6,24 +6,26 @@ mean cannot change the figures by itself.
 """
 
 import logging
+import os
 
 import numpy as np
 
 from .. import artifacts as art
-from .. import provenance
+from .. import atomic, provenance
 from ..kernels import metrics
 from ..kernels.audit_figures import (
     CHUNK,
     argmax_consistency,
     auto_lipschitz,
-    chunked_consistency,
     counterfactual_figures,
-    local_lipschitz,
+    neighbour_block,
+    neighbour_figures,
     neighbour_vote_leakage,
     random_graph_control,
     random_pairs,
     ratio_changes,
 )
+from ..progress import Progress
 from ..table import ids_at_rows
 
 log = logging.getLogger("bigsmooth.audit")
@@ -42,10 +44,12 @@ def _knn(rundir):
     return art.GRAPH_NEIGHBOURS.rows(rundir), art.GRAPH_DISTANCES.rows(rundir)
 
 
-def figures(s, W, nb, dist, pairs, labels, rate, constant, lo, hi):
-    """Audit figures for one score vector ``s`` (n,)."""
+def figures(s, nbr, pairs, labels, rate, constant, lo, hi):
+    """Audit figures for one score vector ``s`` (n,); ``nbr`` its neighbour figures from the block
+    pass (:func:`neighbour_pass`)."""
     cut = metrics.quantile_cutoff(s, rate)
     sel = s >= cut
+    disagreement, consistency, loc = nbr
     fig = {
         "mean": float(s.mean()),
         "sd": float(s.std()),
@@ -53,10 +57,9 @@ def figures(s, W, nb, dist, pairs, labels, rate, constant, lo, hi):
         "max": float(s.max()),
         "cutoff": cut,
         "selected": int(sel.sum()),
-        "neighbour_disagreement": metrics.edge_disagreement(W.indptr, W.indices, W.data, s),
-        "neighbour_consistency": chunked_consistency(sel.astype(np.float64), nb),
+        "neighbour_disagreement": disagreement,
+        "neighbour_consistency": consistency,
     }
-    loc = local_lipschitz(s, nb, dist, constant)
     a, b, d = pairs
     glob = metrics.lipschitz_summary(metrics.pair_differences(s[a], s[b], d, constant))
     fig.update(
@@ -80,6 +83,54 @@ def figures(s, W, nb, dist, pairs, labels, rate, constant, lo, hi):
             if lo >= 0 and hi <= 1:  # scores are probabilities
                 fig.update(brier=metrics.brier(lab, sk), log_loss=metrics.log_loss(lab, sk))
     return fig, sel
+
+
+def block_task(root, cuts, constant, lo, hi):
+    """The neighbour figures' partial sums over rows lo..hi of the run at ``root`` for every vector
+    of audit/vectors.npy (a task: it only reads the run directory, so running it twice is
+    harmless)."""
+    V = art.AUDIT_VECTORS.load(root, mmap=True)
+    nb, dist = _knn(root)
+    return neighbour_block(V, cuts, art.GRAPH_WEIGHTS.rows(root), nb, dist, constant, lo, hi)
+
+
+def neighbour_pass(ctx, vectors, rate, constant):
+    """Neighbour disagreement, consistency and the local Lipschitz check for each score vector:
+    the vectors go to audit/vectors.npy, the rows are cut into blocks of :data:`CHUNK`, one task
+    each (here one after another, or on the Dask cluster with run.engine = "dask"), and the blocks'
+    sums are added in block order, so the figures do not depend on where the tasks ran."""
+    rundir = ctx.rundir
+    n = len(vectors[0])
+    cuts = [metrics.quantile_cutoff(v, rate) for v in vectors]
+    art.AUDIT_VECTORS.folder(rundir)
+    V = atomic.new_memmap(art.AUDIT_VECTORS.path(rundir), np.float64, (len(vectors), n))
+    for j, v in enumerate(vectors):  # row by row into the file (no second copy of them all)
+        V[j] = v
+    V.flush()
+    atomic.release_pages(V)
+    del V
+    calls = [(rundir.path, cuts, constant, lo, min(lo + CHUNK, n)) for lo in range(0, n, CHUNK)]
+    prog = Progress(log, "audit neighbour pass (rows)", n)
+    if ctx.cfg["run"]["engine"] == "dask":
+        executor = ctx.task_executor()
+        try:
+            log.info("neighbour figures: %d blocks as tasks on %s", len(calls), executor.describe())
+            blocks = executor.map_calls(
+                block_task,
+                calls,
+                None,
+                [c[4] - c[3] for c in calls],
+                done=lambda j: prog.update(calls[j][4] - calls[j][3]),
+            )
+        finally:
+            executor.shutdown()
+    else:
+        blocks = []
+        for c in calls:
+            blocks.append(block_task(*c))
+            prog.update(c[4] - c[3])
+    os.unlink(art.AUDIT_VECTORS.path(rundir))
+    return neighbour_figures(blocks, n)
 
 
 def pair_figures(fp, cfg, y, f, rate):
@@ -216,16 +267,44 @@ def run(ctx):
     n = len(y)
     levels = {col: [v for v, _ in scan["levels"][col]] for col in inp["protected"]}
 
+    other = art.EMBED_COMPARE.load(rundir)
+    s = cfg["solve"]
+    if a["controls"]:
+        sd_y, sd_f = float(y.std()), float(f.std())
+        shrunk = y.mean() + (y - y.mean()) * (sd_f / sd_y if sd_y > 0 else 1.0)
+        rnd, rec = random_graph_control(
+            W,
+            y,
+            s["lam"],
+            s["laplacian"],
+            s["tol"],
+            ctx.rng("audit.random_graph"),
+            target_sd=sd_f,
+        )
+        control_notes = {"shrink_to_mean": {"sd": float(shrunk.std()), "matched": True}, "random_graph": rec}
+        control_vectors = {"shrink_to_mean": shrunk, "random_graph": rnd}
+    else:
+        control_notes, control_vectors = {}, {}
+    # every vector's neighbour figures in one pass over the graph (block tasks)
+    vectors = (
+        [Y[:, j] for j in range(len(inp["scores"]))]
+        + [F[:, j] for j in range(len(inp["scores"]))]
+        + [other[:, j] for j in range(len(inp["compare_scores"]))]
+        + list(control_vectors.values())
+    )
+    nbr = iter(neighbour_pass(ctx, vectors, rate, constant))
+    m = len(inp["scores"])
+    nbr_y, nbr_f = [next(nbr) for _ in range(m)], [next(nbr) for _ in range(m)]
+
     per_score = {}
     for j, c in enumerate(inp["scores"]):
-        before, _ = figures(Y[:, j], W, nb, dist, pairs, labels, rate, constant, lo, hi)
-        after, _ = figures(F[:, j], W, nb, dist, pairs, labels, rate, constant, lo, hi)
+        before, _ = figures(Y[:, j], nbr_y[j], pairs, labels, rate, constant, lo, hi)
+        after, _ = figures(F[:, j], nbr_f[j], pairs, labels, rate, constant, lo, hi)
         per_score[c] = {"before": before, "after": after}
     # decisions use the first score column
     sel_before = y >= metrics.quantile_cutoff(y, rate)
     sel_after = f >= metrics.quantile_cutoff(f, rate)
     compare = {}
-    other = art.EMBED_COMPARE.load(rundir)
     counterfactual = None
     if inp["counterfactual_score"]:
         rows = _sample(n, a["counterfactual_rows"], ctx.rng("audit.counterfactual"))
@@ -242,7 +321,7 @@ def run(ctx):
     pairs_fig = pair_figures(fp, cfg, y, f, rate) if inp["pairs"] else None
     if inp["compare_scores"]:
         for j, c in enumerate(inp["compare_scores"]):
-            fig, sel = figures(other[:, j], W, nb, dist, pairs, labels, rate, constant, lo, hi)
+            fig, sel = figures(other[:, j], next(nbr), pairs, labels, rate, constant, lo, hi)
             fig["gap_over_sd"] = {
                 col: metrics.gap_over_sd(codes[:, k], len(levels[col]), other[:, j], min_rows)
                 for k, col in enumerate(inp["protected"])
@@ -250,29 +329,14 @@ def run(ctx):
             fig["decisions_differing_from_adjusted"] = float(np.mean(sel != sel_after))
             compare[c] = fig
     controls = {}
-    control_notes = {}
-    if a["controls"]:
-        sd_y, sd_f = float(y.std()), float(f.std())
-        shrunk = y.mean() + (y - y.mean()) * (sd_f / sd_y if sd_y > 0 else 1.0)
-        s = cfg["solve"]
-        rnd, rec = random_graph_control(
-            W,
-            y,
-            s["lam"],
-            s["laplacian"],
-            s["tol"],
-            ctx.rng("audit.random_graph"),
-            target_sd=sd_f,
-        )
-        control_notes = {"shrink_to_mean": {"sd": float(shrunk.std()), "matched": True}, "random_graph": rec}
-        for name, v in (("shrink_to_mean", shrunk), ("random_graph", rnd)):
-            fig, sel = figures(v, W, nb, dist, pairs, labels, rate, constant, lo, hi)
-            fig["gap_over_sd"] = {
-                col: metrics.gap_over_sd(codes[:, j], len(levels[col]), v, min_rows)
-                for j, col in enumerate(inp["protected"])
-            }
-            fig["spread_matched"] = control_notes[name]["matched"]
-            controls[name] = fig
+    for name, v in control_vectors.items():
+        fig, sel = figures(v, next(nbr), pairs, labels, rate, constant, lo, hi)
+        fig["gap_over_sd"] = {
+            col: metrics.gap_over_sd(codes[:, j], len(levels[col]), v, min_rows)
+            for j, col in enumerate(inp["protected"])
+        }
+        fig["spread_matched"] = control_notes[name]["matched"]
+        controls[name] = fig
     probe_rows = _sample(n, cfg["embed"]["probe_rows"], ctx.rng("audit.vote_sample"))
     vote = neighbour_vote_leakage(codes, levels, inp["protected"], nb, probe_rows)
     warn_auc = cfg["embed"]["leakage_warn_auc"]

@@ -67,12 +67,13 @@ def test_the_job_on_dask_publishes_what_the_local_engine_publishes(cluster, loca
     res = cli("run", str(cfg))
     assert res.returncode == 0, res.stderr[-3000:]
     assert "tasks on the Dask cluster at " + cluster.scheduler_address in res.stderr
-    # both embed passes, the partition searches, the solver's group sweeps and the output files
-    # all ran as tasks
+    # both embed passes, the partition searches, the solver's group sweeps, the audit's neighbour
+    # figures and the output files all ran as tasks
     assert "statistics_task: 3 files as tasks on the Dask cluster" in res.stderr
     assert "embedding_task: 3 files as tasks on the Dask cluster" in res.stderr
     assert "partitions: " in res.stderr and " tasks on the Dask cluster" in res.stderr
     assert "group sweeps: " in res.stderr and "writing 3 files as tasks on the Dask cluster" in res.stderr
+    assert "neighbour figures: 1 blocks as tasks on the Dask cluster" in res.stderr
     _assert_same(_published(tmp_path / "case"), local_output)
 
 
