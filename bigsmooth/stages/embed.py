@@ -165,8 +165,7 @@ def embedding_task(root, spec, i, on_chunk=None):
     """Pass 2 over input file ``i`` (a task): write its rows of the embedding (mapped by path) and
     return (positions in the probe sample, standardised features) of its sampled rows, and its rows.
     Running it twice writes the same values again."""
-    inp, levels = spec["input"], spec["levels"]
-    mean, scale, transform = spec["mean"], spec["scale"], spec["transform"]
+    inp, levels, fs = spec["input"], spec["levels"], spec["fair_space"]
     sample = spec["sample"]
     out = _mapped({"embedding": spec["embedding"]})
     E = out["embedding"]
@@ -175,15 +174,15 @@ def embedding_task(root, spec, i, on_chunk=None):
     for number, rows, batch in _file_chunks(spec, i, on_chunk):
         X = _features(batch, inp, levels)
         for u in units(len(X)):
-            E[rows[u]] = (((X[u] - mean) * scale) @ transform).astype(np.float32)
+            E[rows[u]] = fs.apply(X[u]).astype(np.float32)
         pos = np.searchsorted(sample, rows)
         hit = (pos < len(sample)) & (sample[np.minimum(pos, len(sample) - 1)] == rows)
         pos_all.append(pos[hit])
-        raw_all.append((X[hit] - mean) * scale)  # standardised, before the projection
+        raw_all.append((X[hit] - fs.mean) * fs.scale)  # standardised, before the projection
         seen += len(rows)
         faults.point(f"embed:chunk:{number}")
     _flushed(out)
-    p = len(mean)
+    p = len(fs.mean)
     return (
         np.concatenate(pos_all) if pos_all else np.empty(0, dtype=np.int64),
         np.concatenate(raw_all) if raw_all else np.empty((0, p)),
@@ -194,7 +193,9 @@ def embedding_task(root, spec, i, on_chunk=None):
 def _shift(con, fp, sql, inp, levels):
     """The mean of the first :data:`~bigsmooth.table.UNIT_ROWS` rows' features: the shift every
     file's statistics are taken with (so that they add up)."""
-    first = next(e for e in fp["files"] if e["rows"])
+    first = next((e for e in fp["files"] if e["rows"]), None)
+    if first is None:  # no rows (the scan refuses such a table; nothing to shift)
+        return np.zeros(len(feature_names(inp, levels)))
     rows, batch = next(iter(Source(con, {"files": [first]}).chunks(con, sql, UNIT_ROWS)))
     return _features(batch, inp, levels).mean(axis=0)
 
@@ -292,9 +293,7 @@ def run(ctx):
     spec2 = spec | {
         "embedding": out.open(art.EMBED_EMBEDDING.path(rundir), (n, dim), np.float32),
         "first_chunk": [int(c + chunks[-1]) for c in chunks[:-1]],
-        "mean": fs.mean,
-        "scale": fs.scale,
-        "transform": fs.transform,
+        "fair_space": fs,
         "sample": sample,
     }
     calls = [(rundir.path, spec2, i) for i in range(len(files))]
