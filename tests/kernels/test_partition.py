@@ -198,6 +198,11 @@ def test_refinement_does_not_depend_on_chunks_or_their_order(rng):
         pt.refine(E, *b, np.argsort(membership[:, 0], kind="stable")[::-1].copy(), map_fn=pool.map, chunk=97)
     np.testing.assert_array_equal(a[0], b[0])
     np.testing.assert_array_equal(a[1], b[1])
+    # the graph stage refines int32 lists (less memory): the same lists and distances
+    c = (ind.astype(np.int32), dist.copy())
+    pt.refine(E, *c, np.arange(len(E)))
+    np.testing.assert_array_equal(c[0], a[0])
+    np.testing.assert_array_equal(c[1], a[1])
 
 
 def _plan_by_full_assignment(E, cap, overlap, k, rng, max_rounds=6):
