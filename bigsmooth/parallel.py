@@ -393,7 +393,18 @@ class DaskTasks:
             # waits for the task's end and raises nothing for a failed one)
             for f in ordered:
                 f.exception()
-        results = list(self.client.gather(ordered))
+        from distributed import KilledWorker
+
+        try:
+            results = list(self.client.gather(ordered))
+        except KilledWorker as exc:
+            from .errors import EngineUnavailableError
+
+            raise EngineUnavailableError(
+                f"Dask workers kept dying while running a task ({exc}); the scheduler gave up on it. "
+                "Nothing was lost: check the workers' memory and logs, then run the job again and it "
+                "resumes"
+            ) from None
         if self.once is not None:
             for j in range(len(calls)):
                 with contextlib.suppress(OSError):

@@ -125,3 +125,18 @@ def test_dask_without_an_address_is_a_config_error(tmp_path):
     res = cli("run", str(cfg), env={"DASK_SCHEDULER_ADDRESS": ""})
     assert res.returncode == 78, res.stderr[-2000:]
     assert "run.dask_scheduler" in res.stderr and "DASK_SCHEDULER_ADDRESS" in res.stderr
+
+
+def test_a_task_that_kills_every_worker_is_exit_75_and_resumes(cluster, local_output, tmp_path):
+    """The scheduler gives up on a task whose workers keep dying (distributed's KilledWorker after
+    its allowed failures): exit 75, nothing published, and the run resumes on a local engine."""
+    cfg = _case(tmp_path / "case", "dask", cluster.scheduler_address)
+    res = cli("run", str(cfg), env={"BIGSMOOTH_FAULT": "graph:partition:1"})
+    assert res.returncode == 75, res.stderr[-3000:]
+    assert "Dask workers kept dying" in res.stderr
+    assert not (tmp_path / "case" / "out" / "current").exists()
+    cfg.write_text(cfg.read_text().replace('engine = "dask"', 'engine = "local"'))
+    res = cli("run", str(cfg))
+    assert res.returncode == 0 and "stage embed already done" in res.stderr, res.stderr[-2000:]
+    _assert_same(_published(tmp_path / "case"), local_output)
+    cluster.wait_for_workers(2)  # the nannies restart the killed workers for the next tests
