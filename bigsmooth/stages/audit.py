@@ -110,25 +110,11 @@ def neighbour_pass(ctx, vectors, rate, constant):
     atomic.release_pages(V)
     del V
     calls = [(rundir.path, cuts, constant, lo, min(lo + CHUNK, n)) for lo in range(0, n, CHUNK)]
+    sizes = [c[4] - c[3] for c in calls]
     prog = Progress(log, "audit neighbour pass (rows)", n)
-    if ctx.cfg["run"]["engine"] == "dask":
-        executor = ctx.task_executor()
-        try:
-            log.info("neighbour figures: %d blocks as tasks on %s", len(calls), executor.describe())
-            blocks = executor.map_calls(
-                block_task,
-                calls,
-                None,
-                [c[4] - c[3] for c in calls],
-                done=lambda j: prog.update(calls[j][4] - calls[j][3]),
-            )
-        finally:
-            executor.shutdown()
-    else:
-        blocks = []
-        for c in calls:
-            blocks.append(block_task(*c))
-            prog.update(c[4] - c[3])
+    blocks = ctx.run_tasks(
+        block_task, calls, sizes, "audit neighbour figures (row blocks)", done=lambda j: prog.update(sizes[j])
+    )
     os.unlink(art.AUDIT_VECTORS.path(rundir))
     return neighbour_figures(blocks, n)
 

@@ -9,6 +9,7 @@ run's outputs of those stages instead of computing them again (see :func:`bigsmo
 
 import hashlib
 import json
+import logging
 import os
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
@@ -118,6 +119,27 @@ class Context:
         if run["engine"] == "dask":
             return parallel.DaskTasks.connect(run["dask_scheduler"])
         return parallel.make_executor(os.cpu_count() or 1, "threads")
+
+    def run_tasks(self, fn, calls, sizes, what, done=None, local=None):
+        """``fn`` over ``calls``, results in the order of the calls: tasks on the Dask cluster when
+        run.engine = "dask" (``done(j)`` as call j finishes), else one after another here as
+        ``fn(*call, **local)``, then ``done(j)`` unless ``local`` gives fn a progress hook of its
+        own. ``what`` names the tasks in the log line; ``sizes`` weigh them for the scheduler."""
+        if self.cfg["run"]["engine"] == "dask":
+            executor = self.task_executor()
+            try:
+                logging.getLogger("bigsmooth.run").info(
+                    "%s: %d tasks on %s", what, len(calls), executor.describe()
+                )
+                return executor.map_calls(fn, calls, None, sizes, done=done)
+            finally:
+                executor.shutdown()
+        out = []
+        for j, call in enumerate(calls):
+            out.append(fn(*call, **(local or {})))
+            if done is not None and local is None:
+                done(j)
+        return out
 
 
 SPECS = (

@@ -200,20 +200,6 @@ def _shift(con, fp, sql, inp, levels):
     return _features(batch, inp, levels).mean(axis=0)
 
 
-def _run_files(ctx, fn, calls, sizes, prog):
-    """``fn`` over the calls (one per input file): tasks on the Dask cluster when run.engine =
-    "dask" (progress as files finish), else one after another here (progress by chunk); results
-    in file order."""
-    if ctx.cfg["run"]["engine"] == "dask":
-        executor = ctx.task_executor()
-        try:
-            log.info("%s: %d files as tasks on %s", fn.__name__, len(calls), executor.describe())
-            return executor.map_calls(fn, calls, None, sizes, done=lambda j: prog.update(sizes[j]))
-        finally:
-            executor.shutdown()
-    return [fn(*call, on_chunk=prog.update) for call in calls]
-
-
 def run(ctx):
     """The embed stage (see the module docstring). Each pass is one task per input file
     (:func:`statistics_task`, :func:`embedding_task`); the driver adds the files' statistics in
@@ -266,7 +252,14 @@ def run(ctx):
     prog = Progress(log, "embed pass 1 (statistics)", n)
     mom = fairspace.Moments.empty(spec["shift"], m)
     seen = 0
-    for part, rows in _run_files(ctx, statistics_task, calls, sizes, prog):
+    for part, rows in ctx.run_tasks(
+        statistics_task,
+        calls,
+        sizes,
+        "embed pass 1 (statistics_task, one per input file)",
+        done=lambda j: prog.update(sizes[j]),
+        local={"on_chunk": prog.update},
+    ):
         mom.add(part)
         seen += rows
     if seen != n:
@@ -300,7 +293,14 @@ def run(ctx):
     raw_sample = np.zeros((len(sample), p))
     seen = 0
     prog = Progress(log, "embed pass 2 (embedding)", n)
-    for pos, raw, rows in _run_files(ctx, embedding_task, calls, sizes, prog):
+    for pos, raw, rows in ctx.run_tasks(
+        embedding_task,
+        calls,
+        sizes,
+        "embed pass 2 (embedding_task, one per input file)",
+        done=lambda j: prog.update(sizes[j]),
+        local={"on_chunk": prog.update},
+    ):
         raw_sample[pos] = raw
         seen += rows
     if seen != n:

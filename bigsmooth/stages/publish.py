@@ -197,15 +197,7 @@ def run(ctx):
         raise OutputError(f"cannot create the output folder {staging}: {exc.strerror}") from None
     try:
         calls = [(rundir.path, staging, spec, i) for i in range(1, len(fp["files"]) + 1)]
-        if cfg["run"]["engine"] == "dask":
-            executor = ctx.task_executor()
-            try:
-                log.info("writing %d files as tasks on %s", len(calls), executor.describe())
-                got = executor.map_calls(file_task, calls, None, [e["rows"] for e in fp["files"]])
-            finally:
-                executor.shutdown()
-        else:
-            got = [file_task(*call) for call in calls]
+        got = ctx.run_tasks(file_task, calls, [e["rows"] for e in fp["files"]], "output files")
         written = int(sum(got))
         if written != fp["rows"]:
             raise RuntimeError(f"wrote {written} rows; the input has {fp['rows']}")

@@ -69,11 +69,11 @@ def test_the_job_on_dask_publishes_what_the_local_engine_publishes(cluster, loca
     assert "tasks on the Dask cluster at " + cluster.scheduler_address in res.stderr
     # both embed passes, the partition searches, the solver's group sweeps, the audit's neighbour
     # figures and the output files all ran as tasks
-    assert "statistics_task: 3 files as tasks on the Dask cluster" in res.stderr
-    assert "embedding_task: 3 files as tasks on the Dask cluster" in res.stderr
+    assert "embed pass 1 (statistics_task, one per input file): 3 tasks on the Dask cluster" in res.stderr
+    assert "embed pass 2 (embedding_task, one per input file): 3 tasks on the Dask cluster" in res.stderr
     assert "partitions: " in res.stderr and " tasks on the Dask cluster" in res.stderr
-    assert "group sweeps: " in res.stderr and "writing 3 files as tasks on the Dask cluster" in res.stderr
-    assert "neighbour figures: 1 blocks as tasks on the Dask cluster" in res.stderr
+    assert "group sweeps: " in res.stderr and "output files: 3 tasks on the Dask cluster" in res.stderr
+    assert "audit neighbour figures (row blocks): 1 tasks on the Dask cluster" in res.stderr
     _assert_same(_published(tmp_path / "case"), local_output)
 
 
