@@ -252,6 +252,14 @@ PUBLISH_PENDING = _a(
     "json",
     "the output version's name, chosen by the audit, used by publish",
 )
+LATE_CELLS = _a(
+    "late.cells",
+    "score",
+    "late/cells",
+    "dir",
+    "late-row index (bigsmooth score): cell centres, ptr, night rows in cell order and their "
+    "fair-space rows in that order (built on first use)",
+)
 TUNE_INFO = _a("tune.info", "tune", "tune/tune.json", "json", "lam path and recommendation (bigsmooth tune)")
 TUNE_PLOT = _a("tune.plot", "tune", "tune/tradeoff.png", "png", "trade-off plot (bigsmooth tune)")
 

@@ -144,6 +144,48 @@ def build_parser():
     )
     s.add_argument("run_dir", metavar="RUN_DIR")
     s.add_argument("--json", action="store_true", help="print the manifest as JSON instead")
+
+    sc = sub.add_parser(
+        "score",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="adjusted scores for late rows (arrived after the nightly run), the night held fixed",
+        description="Score the rows of LATE (a Parquet file or folder with the nightly table's id, "
+        "score and feature columns) against the run behind the output's current version "
+        "(or --run RUN_DIR): the rows are checked with the nightly scan's rules, mapped "
+        "into the night's fair space, joined to their nearest night rows with the night's "
+        "kernel, and solved together with the night's solution held fixed (late rows near "
+        "each other in the same batch see each other). Writes OUT/late.parquet (id, score, "
+        "adjusted score, change, nearest_distance_ratio = distance to the nearest night "
+        "row / the night's sigma, no_near_neighbour, unseen_levels) and OUT/_late.json; "
+        "never changes the output's versions or its current pointer. Ids the night already "
+        "scored are refused unless --replace. A category level the night never saw counts "
+        "as no known level. The first call on a run builds its late-row index (kept in "
+        "the run directory).",
+    )
+    sc.add_argument("config", metavar="CONFIG", help="path of the TOML config file of the nightly job")
+    sc.add_argument("late", metavar="LATE", help="Parquet file or folder of late rows")
+    sc.add_argument("--out", required=True, metavar="DIR", help="folder to write late.parquet into")
+    sc.add_argument("--run", default=None, metavar="RUN_DIR", help="score against this finished run instead")
+    sc.add_argument(
+        "--replace",
+        action="store_true",
+        help="score ids the night already scored as late rows (their night rows are left out of the neighbours)",
+    )
+    sc.add_argument(
+        "--batch",
+        type=int,
+        default=10_000,
+        help="late rows searched and solved together (default 10000); rows of one batch see each other",
+    )
+    sc.add_argument(
+        "--far",
+        type=float,
+        default=3.0,
+        help="a late row whose nearest night row is farther than this many times the night's sigma "
+        "keeps its score and is flagged no_near_neighbour (default 3)",
+    )
     return p
 
 
@@ -311,6 +353,29 @@ def cmd_status(args):
     return EXIT_OK
 
 
+def cmd_score(args):
+    from .late import score
+
+    if args.batch < 1 or not args.far > 0:
+        raise BigsmoothError("--batch must be at least 1 and --far positive")
+    res = score(
+        args.config,
+        args.late,
+        args.out,
+        run_dir=args.run,
+        replace=args.replace,
+        batch=args.batch,
+        far=args.far,
+    )
+    print(
+        f"scored {res['late_rows']} late rows against run {res['night_run_id']} "
+        f"(version {res['night_version']}): {res['no_near_neighbour']} without a near night row, "
+        f"{res['unseen_level_rows']} with an unseen category level, {res['replaced_ids']} replaced ids"
+    )
+    print(f"output:    {res['path']}")
+    return EXIT_OK
+
+
 def main(argv=None):
     os.environ.setdefault(
         "NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba")
@@ -328,6 +393,7 @@ def main(argv=None):
             "tune": cmd_tune,
             "status": cmd_status,
             "report": cmd_report,
+            "score": cmd_score,
         }[args.command](args)
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)

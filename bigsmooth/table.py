@@ -306,7 +306,7 @@ class Source:
 
     def fetch_arrow(self, con, sql, **params):
         """As :meth:`fetch`, returning a pyarrow Table (for results with many rows)."""
-        return con.execute(sql.replace("{src}", self.sql), {**self.params, **params}).to_arrow_table()
+        return con.sql(sql.replace("{src}", self.sql), params={**self.params, **params}).to_arrow_table()
 
     def chunks(self, con, select, batch_rows):
         """Stream the table file by file in fixed chunks: yields (rows, pyarrow.Table).

@@ -144,16 +144,22 @@ def median_positive(distances, block=1 << 20):
     return values[0] if len(values) == 1 else (values[0] + values[1]) / 2.0
 
 
-def kernel_scale(distances, rule="global", factor=1.0):
-    """The heat-kernel scale.
+def kernel_median(distances):
+    """The median of the positive neighbour distances (1.0 when none is positive): the global
+    kernel scale before ``graph.scale_factor``, and the local rule's fallback."""
+    g = median_positive(distances)
+    return 1.0 if g is None else g
+
+
+def kernel_scale(distances, rule="global", factor=1.0, median=None):
+    """The heat-kernel scale (``median``: :func:`kernel_median` of ``distances``, if known).
 
     ``global``: one sigma, the median of the positive neighbour distances (times ``factor``).
     ``local``: sigma_i = distance to row i's min(7, k)-th neighbour (self-tuning scale), falling
     back to the global sigma where that distance is 0. Returns an array of shape (n,) either way.
     ``distances`` may be an array or a RowReader (read in row blocks).
     """
-    g = median_positive(distances)
-    g = 1.0 if g is None else g
+    g = kernel_median(distances) if median is None else median
     n, k = distances.shape
     if rule == "global":
         return np.full(n, g * factor)

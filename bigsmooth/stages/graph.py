@@ -384,7 +384,8 @@ def run(ctx):
                 RECALL_WARN,
             )
     t0 = time.monotonic()
-    sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"])
+    median = gk.kernel_median(dist)
+    sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"], median=median)
     with _local_pool(ctx) as (map_fn, workers):
         nnz, deg = write_weights(
             rundir, ind, dist, sigma, cfg["run"]["memory_mb"], map_fn=map_fn, workers=workers
@@ -410,6 +411,8 @@ def run(ctx):
         "zero_distance_pairs": zero_dist,
         "kernel_scale": g["kernel_scale"],
         "sigma_median": float(np.median(sigma)),
+        "kernel_median": float(median),  # before graph.scale_factor (late rows' weights need it)
+        "scale_factor": g["scale_factor"],
         **extra,
     }
     art.GRAPH_INFO.save(rundir, info)

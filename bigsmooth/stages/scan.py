@@ -198,28 +198,12 @@ def _id_slices(idq, rows, memory_mb):
     return [f"hash({idq}) % {parts} = {p}" for p in range(parts)]
 
 
-def run(ctx):
-    """The scan stage (see the module docstring)."""
-    rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
-    inp = cfg["input"]
-    check_files(fp, inp)
-    con = connect_budget(cfg["run"]["memory_mb"])
-    src = Source(con, fp)
-    cols = dict((r[0], r[1]) for r in src.fetch(con, "DESCRIBE SELECT * FROM {src}"))
-    cols.pop("__bigsmooth_row", None)
-    check_schema(cols, inp)
-    n = fp["rows"]
-    if n == 0:
-        raise DataError(
-            f"the input has 0 rows ({len(fp['files'])} files under {fp['root']}); nothing to smooth"
-        )
-    k = cfg["graph"]["neighbours"]
-    if k >= n:
-        raise ConfigError(
-            f"graph.neighbours = {k} needs more rows than neighbours; the input has {n} rows. "
-            f"Set graph.neighbours to at most {n - 1}."
-        )
-
+def row_problems(con, src, cols, inp, n, memory_mb):
+    """The per-row checks of the table behind ``src`` (a :class:`~bigsmooth.table.Source`) with
+    DuckDB types ``cols``: (total rows, problems), each problem a line with its count and example
+    ids (null ids, null / NaN / infinite / out-of-range scores, bad numeric features, labels other
+    than 0/1, duplicate ids). Shared by the scan stage and ``bigsmooth score`` (late rows), so both
+    refuse the same rows with the same words."""
     idq = quote(inp["id"])
     lo, hi = inp["score_range"]
     checks = [(f"{idq} IS NULL", "null id", False)]
@@ -268,7 +252,7 @@ def run(ctx):
     rng = {"lo": lo, "hi": hi}
     counts = src.fetch(con, f"SELECT count(*), {agg} FROM {{src}}", **rng)[0]
     total, bad = counts[0], counts[1:]
-    slices = _id_slices(idq, n, cfg["run"]["memory_mb"])
+    slices = _id_slices(idq, n, memory_mb)
     distinct = sum(
         src.fetch(con, f"SELECT count(DISTINCT {idq}) FROM {{src}} WHERE {where}")[0][0] for where in slices
     )
@@ -301,6 +285,32 @@ def run(ctx):
             f"{non_null_ids - distinct} duplicate rows of id column {inp['id']!r}; e.g. "
             + ", ".join(f"{v!r} x{c}" for v, c in dup)
         )
+    return total, problems
+
+
+def run(ctx):
+    """The scan stage (see the module docstring)."""
+    rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
+    inp = cfg["input"]
+    check_files(fp, inp)
+    con = connect_budget(cfg["run"]["memory_mb"])
+    src = Source(con, fp)
+    cols = dict((r[0], r[1]) for r in src.fetch(con, "DESCRIBE SELECT * FROM {src}"))
+    cols.pop("__bigsmooth_row", None)
+    check_schema(cols, inp)
+    n = fp["rows"]
+    if n == 0:
+        raise DataError(
+            f"the input has 0 rows ({len(fp['files'])} files under {fp['root']}); nothing to smooth"
+        )
+    k = cfg["graph"]["neighbours"]
+    if k >= n:
+        raise ConfigError(
+            f"graph.neighbours = {k} needs more rows than neighbours; the input has {n} rows. "
+            f"Set graph.neighbours to at most {n - 1}."
+        )
+
+    total, problems = row_problems(con, src, cols, inp, n, cfg["run"]["memory_mb"])
     if inp["pairs"]:
         problems += _check_pairs(con, inp["pairs"], inp["id"], cols[inp["id"]])
     levels = {}

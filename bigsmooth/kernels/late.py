@@ -1,0 +1,206 @@
+"""Late rows: adjusted scores for rows that arrive after the nightly run, with the night's solution
+held fixed (pure array code; ``bigsmooth.late`` owns the files).
+
+The night solved (C + lam L) f = C y, whose row i reads
+    (c_i + lam d_i) f_i - lam sum_j w_ij f_j = c_i y_i,
+with d_i = sum_j w_ij and c_i = 1 (unnormalised Laplacian) or d_i (random walk; 1 without edges).
+A batch of late rows joins the graph with edges to night rows (held fixed) and to each other. The
+objective restricted to the batch is minimised by
+    (diag(c + lam d) - lam W_late) f = c y + lam W_old f_old,
+a small symmetric, diagonally dominant system; one late row alone gets the closed form
+    f = (c y + lam sum_j w_j f_j) / (c + lam sum_j w_j).
+References for the tests: a dense solve of the whole system with the night's rows fixed
+(numpy.linalg.solve) and scipy.optimize's scalar minimiser of the objective over one row.
+
+Neighbours come from a fine partition of the night's rows (cells of a few thousand rows, each row
+stored once in the cell of its nearest centre, the cells' rows contiguous in a float32 copy of the
+fair space): a late row is compared exactly, in float64, with every row of its ``probe`` nearest
+cells. No compiled code on this path.
+"""
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from . import partition
+
+
+def heat(d, sigma_a, sigma_b):
+    """The night's heat kernel w = exp(-d^2 / (sigma_a sigma_b))."""
+    return np.exp(-(np.asarray(d, dtype=np.float64) ** 2) / (sigma_a * sigma_b))
+
+
+def row_sigma(dist, rule, factor, median):
+    """Kernel scale of rows with sorted neighbour distances ``dist`` (b, k), as the graph stage's
+    rule: ``global`` median x factor; ``local`` the distance to the min(7, k)-th neighbour (the
+    median where that is 0), x factor."""
+    dist = np.asarray(dist, dtype=np.float64)
+    if rule == "global":
+        return np.full(dist.shape[0], median * factor)
+    s = dist[:, min(7, dist.shape[1]) - 1]
+    return np.where(s > 0, s, median) * factor
+
+
+def single_row(y, w, f_nb, lam, kind="unnormalised"):
+    """The closed form for one late row: score ``y``, weights ``w`` to fixed rows whose solutions
+    are ``f_nb`` (len(w), columns)."""
+    w = np.asarray(w, dtype=np.float64)
+    d = w.sum()
+    c = 1.0 if kind == "unnormalised" else (d if d > 0 else 1.0)
+    return (c * np.asarray(y, dtype=np.float64) + lam * (w @ np.asarray(f_nb, dtype=np.float64))) / (
+        c + lam * d
+    )
+
+
+def solve_batch(y, old_row, old_w, old_f, late_W, lam, kind="unnormalised"):
+    """Adjusted scores of a batch of b late rows solved jointly.
+
+    y: (b, s) raw scores; old edges as parallel arrays ``old_row`` (late row 0..b-1), ``old_w``
+    (weight) and ``old_f`` (the night's solution at the other end, (edges, s)); ``late_W`` (b, b)
+    symmetric weights between late rows (scipy sparse or dense). Returns (f (b, s), c (b,),
+    degree (b,))."""
+    y = np.asarray(y, dtype=np.float64)
+    b = y.shape[0]
+    old_row = np.asarray(old_row, dtype=np.int64)
+    old_w = np.asarray(old_w, dtype=np.float64)
+    Wl = sp.csr_matrix(late_W, dtype=np.float64, shape=(b, b))
+    Wl.setdiag(0)
+    Wl.eliminate_zeros()
+    deg = np.bincount(old_row, weights=old_w, minlength=b) + np.asarray(Wl.sum(axis=1)).ravel()
+    c = np.ones(b) if kind == "unnormalised" else np.where(deg > 0, deg, 1.0)
+    pull = np.zeros_like(y)
+    np.add.at(pull, old_row, old_w[:, None] * np.asarray(old_f, dtype=np.float64).reshape(len(old_w), -1))
+    rhs = c[:, None] * y + lam * pull
+    if Wl.nnz == 0:
+        return rhs / (c + lam * deg)[:, None], c, deg
+    A = (sp.diags(c + lam * deg) - lam * Wl).tocsc()
+    f = spla.spsolve(A, rhs)
+    return np.asarray(f, dtype=np.float64).reshape(b, -1), c, deg
+
+
+def terms(y, w, f_nb, lam, c):
+    """The terms of the coordinate update at the solution for one row: (own share c y / (c + lam d),
+    each neighbour's share lam w_j f_j / (c + lam d)); they add up to the row's adjusted score."""
+    w = np.asarray(w, dtype=np.float64)
+    den = c + lam * w.sum()
+    return c * y / den, lam * w * np.asarray(f_nb, dtype=np.float64) / den
+
+
+def cell_plan(sample, cells, rng):
+    """Centres of ``cells`` cells: k-means (k-means++ start, Lloyd rounds) on a sample of the fair
+    space, as the partitioned graph build plans its partitions."""
+    return partition._kmeans(np.asarray(sample, dtype=np.float64), cells, rng)
+
+
+def nearest_cells(Q, centres, probe):
+    """(b, probe) the nearest cells of each row of Q, nearest first (ties by index)."""
+    return partition.nearest_centres(np.asarray(Q, dtype=np.float64), centres, min(probe, len(centres)))
+
+
+def search(Q, cells_of, read_cell, k):
+    """Candidate night rows for late rows Q (b, d): each late row against every night row of the
+    cells ``cells_of`` (b, probe) lists; ``read_cell(p)`` returns (night rows (m,), their
+    fair-space rows (m, d) float32). Returns triplets (late row, night row, distance) with each
+    late row's k nearest per cell, distances taken directly in float64 (:func:`best` picks the
+    lists)."""
+    Q = np.asarray(Q, dtype=np.float64)
+    by_cell = {}
+    for q, row in enumerate(cells_of):
+        for p in row:
+            by_cell.setdefault(int(p), []).append(q)
+    out = []
+    for p in sorted(by_cell):
+        qs = np.array(by_cell[p], dtype=np.int64)
+        rows, X = read_cell(p)
+        if not len(rows):
+            continue
+        X = np.asarray(X, dtype=np.float64)
+        Qs = Q[qs]
+        take = min(k, len(rows))
+        if take < len(rows):  # ranked by the expanded form; the chosen distances taken directly
+            sel = np.argpartition(_sq_dist(Qs, X), take - 1, axis=1)[:, :take]
+        else:
+            sel = np.broadcast_to(np.arange(len(rows)), (len(qs), len(rows)))
+        out.append((np.repeat(qs, take), rows[sel].ravel(), _direct(Qs[:, None, :], X[sel]).ravel()))
+    return _cat(out)
+
+
+def expand(Q, ind, neighbours_of, rows_of, seen, n):
+    """One round of neighbour-of-neighbour search for late rows: the night's neighbours
+    (``neighbours_of(rows)`` -> (len, k)) of each late row's current list ``ind`` (b, k) are
+    candidates at their direct distance (``rows_of(rows)`` -> fair-space rows). ``seen``: the
+    triplets already measured (not measured again); ``n``: night rows. Returns the new triplets."""
+    b, k = ind.shape
+    q = np.repeat(np.arange(b, dtype=np.int64), k)
+    j = ind.ravel()
+    q, j = q[j >= 0], j[j >= 0]
+    uj, inv = np.unique(j, return_inverse=True)
+    nb = np.asarray(neighbours_of(uj), dtype=np.int64)[inv]
+    cq, cj = np.repeat(q, nb.shape[1]), nb.ravel()
+    key = np.unique(cq[cj >= 0] * (n + 1) + cj[cj >= 0])
+    key = key[~np.isin(key, seen[0] * (n + 1) + seen[1])]
+    if not len(key):
+        return _cat([])
+    cq, cj = key // (n + 1), key % (n + 1)
+    uj, inv = np.unique(cj, return_inverse=True)
+    X = np.asarray(rows_of(uj), dtype=np.float64)[inv]
+    return cq, cj, _direct(np.asarray(Q, dtype=np.float64)[cq], X)
+
+
+def best(trip, b, k):
+    """Each late row's k nearest of the triplets ``trip`` (late row, night row, distance), by
+    (distance, row), without repeats: (ind (b, k), -1 where fewer; dist (b, k), inf there)."""
+    q, j, d = trip
+    order = np.lexsort((j, d, q))
+    q, j, d = q[order], j[order], d[order]
+    first = np.ones(len(q), dtype=bool)
+    # repeats of a (late row, night row) pair carry the same distance, so they are adjacent
+    first[1:] = (q[1:] != q[:-1]) | (j[1:] != j[:-1])
+    q, j, d = q[first], j[first], d[first]
+    start = np.searchsorted(q, np.arange(b))
+    rank = np.arange(len(q)) - start[q]
+    keep = rank < k
+    ind = np.full((b, k), -1, dtype=np.int64)
+    dist = np.full((b, k), np.inf)
+    ind[q[keep], rank[keep]] = j[keep]
+    dist[q[keep], rank[keep]] = d[keep]
+    return ind, dist
+
+
+def reverse_edges(trip, ind, kth):
+    """Triplets (late row, night row, distance) measured but not in the late row's list whose night
+    row would list the late row among its own k nearest (closer than its k-th neighbour,
+    ``kth[i]`` for triplet i): the night's symmetrised graph would join them too."""
+    q, j, d = trip
+    listed = (ind[q] == j[:, None]).any(axis=1)
+    hit = (~listed) & (d < kth)
+    q, j, d = q[hit], j[hit], d[hit]
+    key = np.unique(q * (j.max(initial=0) + 1) + j, return_index=True)[1]
+    return q[key], j[key], d[key]
+
+
+def _cat(parts):
+    if not parts:
+        return np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0)
+    return tuple(np.concatenate(x) for x in zip(*parts))
+
+
+def _sq_dist(A, B):
+    """Squared distances (a, b) in float64 by the expanded form (for ranking only)."""
+    return np.einsum("ij,ij->i", A, A)[:, None] - 2.0 * (A @ B.T) + np.einsum("ij,ij->i", B, B)[None, :]
+
+
+def _direct(A, B):
+    """Euclidean distances of A and B along the last axis, taken directly in float64 (as the graph
+    stage takes the night's distances)."""
+    return np.sqrt(np.sum((A - B) ** 2, axis=-1))
+
+
+def late_pairs(Q, k):
+    """Exact k nearest neighbours among the late rows themselves (each excluding itself), as the
+    partitioned build searches inside a partition (:func:`partition.exact_in`): (ind (b, k') local
+    rows, dist (b, k')) with k' = min(k, b - 1), ascending by (distance, row)."""
+    b = Q.shape[0]
+    if b < 2:
+        return np.empty((b, 0), np.int64), np.empty((b, 0))
+    return partition.exact_in(np.asarray(Q, dtype=np.float32), min(k, b - 1))
