@@ -2,6 +2,7 @@
 
     python -m bigsmooth.bench --rows 1000000 [--workers 2] [--dir DIR] [--json FILE]
     python -m bigsmooth.bench --rows 1000000 --race-only     (the race again on the run left in DIR)
+    python -m bigsmooth.bench --rows 1000000 --late 20000 --late-only   (late rows on that run)
 
 1. Generates the demo table (not timed as part of the job) and runs ``bigsmooth run`` in a fresh
    child process, so numba compilation is included; reads per-stage wall times from the manifest
@@ -20,6 +21,12 @@
    order (``cg_local_order_seconds``: A permuted untimed, plus CG's setup time). The table gives
    times and the ratio ours / CG, with and without each side's setup. Each best time and its own
    setup time come from the same run.
+
+4. With ``--late N``: N new demo rows (another seed, ids above the night's) scored by
+   ``bigsmooth score`` in fresh child processes in batches of ``--late-batch`` (1,000): the first
+   call builds the run's late-row index, the second is timed as a cold start (loading and scoring
+   seconds from its record, rows per second); then recall@k of the late rows' neighbours against
+   an exact search over the night (``--sample`` rows).
 
 Prints one table and writes it as JSON. Timings are from this machine at this moment: compare
 ratios measured in the same run, not absolute seconds across machines.
@@ -372,6 +379,101 @@ def _job(args, base):
     }, rundir
 
 
+def exact_neighbours(E, Q, k, chunk=1 << 16):
+    """Exact k nearest rows of E for each row of Q, by (distance, row): float32 products over
+    chunks keep k + 3 candidates per chunk, whose distances are then taken directly in float64."""
+    Q64 = np.asarray(Q, dtype=np.float64)
+    A = (-2.0 * Q64).astype(np.float32)
+    cand = []
+    for lo in range(0, E.shape[0], chunk):
+        X = np.asarray(E[lo : lo + chunk], dtype=np.float32)
+        G = A @ X.T
+        G += np.einsum("ij,ij->i", X, X)[None, :]
+        take = min(k + 3, X.shape[0])
+        cand.append(lo + np.argpartition(G, take - 1, axis=1)[:, :take])
+    cand = np.hstack(cand)
+    d = np.sqrt(
+        ((np.asarray(E[cand.ravel()], dtype=np.float64).reshape(*cand.shape, -1) - Q64[:, None, :]) ** 2).sum(
+            axis=2
+        )
+    )
+    order = np.lexsort((cand, d), axis=1)[:, :k]
+    return np.take_along_axis(cand, order, axis=1)
+
+
+def late_rows_bench(base, rundir, rows, batch, sample, seed):
+    """Late rows against the finished run (see the module docstring, 4)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from . import demo, late
+    from .atomic import read_json
+
+    cols = demo.generate(rows, seed=seed + 1000)
+    cols.pop("district", None)
+    night_ids = art.SCAN_INFO.load(rundir)["rows"]
+    cols["applicant_id"] = np.asarray(cols["applicant_id"]) + 10 * night_ids + 10**9
+    path = os.path.join(base, f"late-{rows}.parquet")
+    pq.write_table(
+        pa.table({k: (v if isinstance(v, pa.Array) else pa.array(v)) for k, v in cols.items()}), path
+    )
+    cfg_path = os.path.join(base, "bigsmooth.toml")
+    out = os.path.join(base, "late-out")
+    walls = []
+    for _ in range(2):
+        t0 = time.perf_counter()
+        proc = subprocess.run(
+            [
+                sys.executable,
+                "-m",
+                "bigsmooth",
+                "-q",
+                "score",
+                cfg_path,
+                path,
+                "--out",
+                out,
+                "--batch",
+                str(batch),
+            ],
+            capture_output=True,
+            text=True,
+        )
+        walls.append(time.perf_counter() - t0)
+        if proc.returncode != 0:
+            print(proc.stderr, file=sys.stderr)
+            raise SystemExit(f"bigsmooth score failed with exit code {proc.returncode}")
+    rec = read_json(os.path.join(out, late.OUT_RECORD))
+    # recall of the late rows' neighbours (the same search, in this process) against exact
+    from .rundir import RunDir
+
+    night = late.Night(RunDir(rundir))
+    centres, ptr, crow, cemb = late.cells(night, 0)
+    table = pq.read_table(path)
+    X, _ = late.features(table.slice(0, sample), late.late_input(night.inp), night.levels)
+    Q = night.fs.apply(X).astype(np.float32).astype(np.float64)
+    got = np.vstack(
+        [
+            late.neighbours(night, Q[lo : lo + batch], centres, ptr, crow, cemb, np.empty(0, np.int64))[0]
+            for lo in range(0, len(Q), batch)
+        ]
+    )
+    truth = exact_neighbours(night.E, Q, night.k)
+    hits = sum(len(set(a) & set(b)) for a, b in zip(got, truth))
+    return {
+        "late_rows": rows,
+        "late_batch": batch,
+        "late_first_call_seconds": walls[0],
+        "late_cold_call_seconds": walls[1],
+        "late_loading_seconds": rec["seconds_loading"],
+        "late_scoring_seconds": rec["seconds_scoring"],
+        "late_rows_per_second": rows / rec["seconds_scoring"],
+        "late_recall_at_k": hits / (len(Q) * night.k),
+        "late_recall_sample": len(Q),
+        "late_no_near_neighbour": rec["no_near_neighbour"],
+    }
+
+
 def _the_run(base):
     runs = os.path.join(base, "runs")
     found = sorted(os.listdir(runs)) if os.path.isdir(runs) else []
@@ -429,6 +531,14 @@ def _print(table, args, out):
                 f"{table['script_decisions_agree']:.4f}, max |difference| {table['script_max_abs_difference']:.2e}"
             )
         print(line)
+    if "late_rows" in table:
+        print(
+            f"late rows: {table['late_rows']:,} in batches of {table['late_batch']}: first call (builds the "
+            f"index) {table['late_first_call_seconds']:.1f} s; cold call {table['late_cold_call_seconds']:.1f} s "
+            f"(loading {table['late_loading_seconds']:.2f} s, scoring {table['late_scoring_seconds']:.2f} s, "
+            f"{table['late_rows_per_second']:,.0f} rows/s); neighbour recall@k vs exact on "
+            f"{table['late_recall_sample']} late rows {table['late_recall_at_k']:.4f}"
+        )
     for r in table.get("solver_race", []):
         print(
             f"best of {r['repeat']}, lam*deg {r['lam_times_mean_degree']}: CG-Jacobi {r['cg_seconds']:.2f} s "
@@ -486,12 +596,23 @@ def main(argv=None):
         default=3,
         help="runs of each solver in the comparison; the best time counts (default 3)",
     )
+    p.add_argument("--late", type=int, default=0, help="late rows scored against the run (default 0: none)")
+    p.add_argument("--late-batch", type=int, default=1000, help="batch rows for --late (default 1000)")
+    p.add_argument(
+        "--late-only",
+        action="store_true",
+        help="only the late rows (--late), on the finished run an earlier benchmark left in DIR",
+    )
     args = p.parse_args(argv)
+    if args.late_only:
+        if not args.late:
+            p.error("--late-only needs --late N")
+        args.race_only, args.no_race = True, True
     args.backends = [b.strip() for b in args.backends.split(",") if b.strip()]
     bad = sorted(set(args.backends) - {"threads", "processes"})
     if bad or not args.backends:
         p.error(f"--backends takes threads and/or processes; got {','.join(bad) or 'nothing'}")
-    if args.race_only and args.no_race:
+    if args.race_only and args.no_race and not args.late_only:
         p.error("--race-only and --no-race exclude each other")
 
     from .config import load_config
@@ -515,9 +636,14 @@ def main(argv=None):
     }
     if not args.race_only and args.script_max_rows:
         table.update(compare_with_script(rundir, args.rows, args.script_max_rows))
+    if args.late:
+        table.update(
+            late_rows_bench(base, rundir, args.late, args.late_batch, min(args.sample, args.late), args.seed)
+        )
     if not args.no_race:
         table["solver_race"] = solver_race(rundir, cfg, (10, 100), args.workers, args.repeat, args.backends)
-    out = args.json or os.path.join(args.dir, f"bench-{args.rows}{'-race' if args.race_only else ''}.json")
+    kind = "-late" if args.late_only else ("-race" if args.race_only else "")
+    out = args.json or os.path.join(args.dir, f"bench-{args.rows}{kind}.json")
     os.makedirs(os.path.dirname(os.path.abspath(out)), exist_ok=True)
     with open(out, "w") as fh:
         json.dump(table, fh, indent=2)

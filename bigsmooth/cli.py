@@ -186,6 +186,26 @@ def build_parser():
         help="a late row whose nearest night row is farther than this many times the night's sigma "
         "keeps its score and is flagged no_near_neighbour (default 3)",
     )
+
+    ex = sub.add_parser(
+        "explain",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="why one row's score moved: its own share and its neighbours' shares",
+        description="For ID in the output's current version (or in --run RUN_DIR): the raw and "
+        "adjusted score, the decision before and after at the audit's cutoffs, how much of the "
+        "adjusted score comes from the row's own score and how much from its neighbours (the "
+        "terms of the coordinate update at the solution, which add up to the adjusted score "
+        "up to the solver's tolerance), and the heaviest neighbours (id, weight, fair-space "
+        "distance, raw and adjusted score, share). Protected attributes are shown only when "
+        "output.include_protected is true. --json prints the record (schema 1).",
+    )
+    ex.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
+    ex.add_argument("id", metavar="ID", help="the row's id")
+    ex.add_argument("--run", default=None, metavar="RUN_DIR", help="explain in this finished run instead")
+    ex.add_argument("--top", type=int, default=10, help="heaviest neighbours listed (default 10)")
+    ex.add_argument("--json", action="store_true", help="print the record as JSON")
     return p
 
 
@@ -376,6 +396,20 @@ def cmd_score(args):
     return EXIT_OK
 
 
+def cmd_explain(args):
+    from .explain import explain, lines
+
+    if args.top < 0:
+        raise BigsmoothError("--top must be 0 or more")
+    rec = explain(args.config, args.id, run_dir=args.run, top=args.top)
+    if args.json:
+        print(json.dumps(rec, indent=2))
+    else:
+        for line in lines(rec):
+            print(line)
+    return EXIT_OK
+
+
 def main(argv=None):
     os.environ.setdefault(
         "NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba")
@@ -394,6 +428,7 @@ def main(argv=None):
             "status": cmd_status,
             "report": cmd_report,
             "score": cmd_score,
+            "explain": cmd_explain,
         }[args.command](args)
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)

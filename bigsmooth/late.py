@@ -20,6 +20,7 @@ import json
 import logging
 import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pyarrow as pa
@@ -33,6 +34,7 @@ from .config import load_config
 from .errors import DataError, InputMissingError, OutputError, examples
 from .kernels import fairspace
 from .kernels import late as lk
+from .parallel import one_blas_thread
 from .rundir import RunDir, hold_lock
 from .stages import scan
 from .stages.embed import MISSING_LEVEL, _floats
@@ -145,8 +147,11 @@ def _build_cells(night, seed):
     centres = lk.cell_plan(np.asarray(E[sample]), count, rng)
     near = np.empty(n, dtype=np.int32)
     block = 1 << 20
-    for lo in range(0, n, block):
-        near[lo : lo + block] = lk.nearest_cells(np.asarray(E[lo : lo + block]), centres, 1)[:, 0]
+    with one_blas_thread(), ThreadPoolExecutor(os.cpu_count() or 1) as pool:
+        for lo in range(0, n, block):
+            near[lo : lo + block] = lk.nearest_cells(np.asarray(E[lo : lo + block]), centres, 1, pool.map)[
+                :, 0
+            ]
     order = np.argsort(near, kind="stable")
     ptr = np.zeros(len(centres) + 1, dtype=np.int64)
     np.cumsum(np.bincount(near, minlength=len(centres)), out=ptr[1:])
@@ -216,12 +221,12 @@ def read_late(fp, inp, memory_mb):
         con.close()
 
 
-def night_rows_of(night, version_dir, id_col, ids, memory_mb):
-    """{id: night row} for those of ``ids`` the night scored, read from the published version's files
-    (which hold the night's rows in its input order)."""
+def night_rows_of(manifest, version_dir, id_col, ids, memory_mb):
+    """{id: night row} for those of ``ids`` the night (the run of ``manifest``) scored, read from the
+    published version's files (which hold the night's rows in its input order)."""
     files = [
         {"path": os.path.join(version_dir, e["rel"]), "offset": e["offset"], "rows": e["rows"]}
-        for e in night.manifest["input"]["files"]
+        for e in manifest["input"]["files"]
         if e["rows"]
     ]
     missing = [f["path"] for f in files if not os.path.exists(f["path"])]
@@ -281,13 +286,15 @@ def neighbours(night, Q, centres, ptr, rows, E_cells, exclude, probe=PROBE, roun
 
     trip = drop(lk.search(Q, lk.nearest_cells(Q, centres, probe), read, k))
     ind, dist = lk.best(trip, len(Q), k)
+    measured = [trip]
     for _ in range(rounds):
-        new = drop(lk.expand(Q, ind, lambda r: night.nb[r], lambda r: night.E[r], trip, night.n))
+        seen = lk.keys(lk._cat(measured), night.n)
+        new = drop(lk.expand(Q, ind, lambda r: night.nb[r], lambda r: night.E[r], seen, night.n))
         if not len(new[0]):
             break
-        trip = tuple(np.concatenate([a, b]) for a, b in zip(trip, new))
-        ind, dist = lk.best(trip, len(Q), k)
-    return ind, dist, trip
+        measured.append(new)
+        ind, dist = lk.best(lk._cat([lk.lists(ind, dist), new]), len(Q), k)
+    return ind, dist, lk._cat(measured)
 
 
 def score_batch(night, Q, y, nind, ndist, trip, far):
@@ -349,7 +356,7 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
             f"the run {rd.path} has no published version folder to check late ids against "
             f"({version_dir}); score against a run that published"
         )
-    present = night_rows_of(night, version_dir, inp["id"], ids, memory_mb)
+    present = night_rows_of(night.manifest, version_dir, inp["id"], ids, memory_mb)
     if present and not replace:
         raise DataError(
             f"{len(present)} of {rows} late rows have ids the night already scored (e.g. ids "
@@ -372,10 +379,23 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
     ratio = np.empty(rows)
     lonely = np.zeros(rows, dtype=bool)
     t0 = time.monotonic()
-    for lo in range(0, rows, batch):
+
+    def one(lo):
         hi = min(rows, lo + batch)
         nind, ndist, trip = neighbours(night, Q[lo:hi], centres, ptr, crow, cemb, exclude)
         F[lo:hi], ratio[lo:hi], lonely[lo:hi] = score_batch(night, Q[lo:hi], Y[lo:hi], nind, ndist, trip, far)
+
+    # batches are independent (each is solved against the night alone), so they run on one thread
+    # per core, each writing its own rows: the result does not depend on the number of threads
+    starts = list(range(0, rows, batch))
+    workers = min(len(starts), os.cpu_count() or 1)
+    with one_blas_thread():  # BLAS sums split by thread count: one thread keeps results machine-independent
+        if workers > 1:
+            with ThreadPoolExecutor(workers) as pool:
+                list(pool.map(one, starts))
+        else:
+            for lo in starts:
+                one(lo)
     t_score = time.monotonic() - t0
     lo_r, hi_r = night.inp["score_range"]
     F = np.clip(F, lo_r, hi_r)

@@ -80,10 +80,13 @@ def solve_batch(y, old_row, old_w, old_f, late_W, lam, kind="unnormalised"):
 
 def terms(y, w, f_nb, lam, c):
     """The terms of the coordinate update at the solution for one row: (own share c y / (c + lam d),
-    each neighbour's share lam w_j f_j / (c + lam d)); they add up to the row's adjusted score."""
+    each neighbour's share lam w_j f_j / (c + lam d)); they add up to the row's adjusted score.
+    ``y`` a score or a row of scores (s,); ``f_nb`` (len(w),) or (len(w), s)."""
     w = np.asarray(w, dtype=np.float64)
+    f_nb = np.asarray(f_nb, dtype=np.float64)
     den = c + lam * w.sum()
-    return c * y / den, lam * w * np.asarray(f_nb, dtype=np.float64) / den
+    wb = w.reshape((-1,) + (1,) * (f_nb.ndim - 1))
+    return c * np.asarray(y, dtype=np.float64) / den, lam * wb * f_nb / den
 
 
 def cell_plan(sample, cells, rng):
@@ -92,9 +95,12 @@ def cell_plan(sample, cells, rng):
     return partition._kmeans(np.asarray(sample, dtype=np.float64), cells, rng)
 
 
-def nearest_cells(Q, centres, probe):
-    """(b, probe) the nearest cells of each row of Q, nearest first (ties by index)."""
-    return partition.nearest_centres(np.asarray(Q, dtype=np.float64), centres, min(probe, len(centres)))
+def nearest_cells(Q, centres, probe, map_fn=map):
+    """(b, probe) the nearest cells of each row of Q, nearest first (ties by index); row chunks go
+    through ``map_fn`` (e.g. a thread pool's map)."""
+    return partition.nearest_centres(
+        np.asarray(Q, dtype=np.float64), centres, min(probe, len(centres)), map_fn=map_fn
+    )
 
 
 def search(Q, cells_of, read_cell, k):
@@ -109,27 +115,33 @@ def search(Q, cells_of, read_cell, k):
         for p in row:
             by_cell.setdefault(int(p), []).append(q)
     out = []
+    Q32 = (-2.0 * Q).astype(np.float32)
     for p in sorted(by_cell):
         qs = np.array(by_cell[p], dtype=np.int64)
         rows, X = read_cell(p)
         if not len(rows):
             continue
-        X = np.asarray(X, dtype=np.float64)
-        Qs = Q[qs]
-        take = min(k, len(rows))
-        if take < len(rows):  # ranked by the expanded form; the chosen distances taken directly
-            sel = np.argpartition(_sq_dist(Qs, X), take - 1, axis=1)[:, :take]
+        X = np.asarray(X, dtype=np.float32)
+        take = min(k + partition.SLACK, len(rows))
+        if take < len(rows):
+            # ranked in float32 by ||x||^2 - 2 q.x, with a few candidates to spare for round-off;
+            # the chosen distances are then taken directly in float64 and :func:`best` decides
+            G = Q32[qs] @ X.T
+            G += np.einsum("ij,ij->i", X, X)[None, :]
+            sel = np.argpartition(G, take - 1, axis=1)[:, :take]
         else:
             sel = np.broadcast_to(np.arange(len(rows)), (len(qs), len(rows)))
-        out.append((np.repeat(qs, take), rows[sel].ravel(), _direct(Qs[:, None, :], X[sel]).ravel()))
+        d = _direct(Q[qs][:, None, :], X[sel].astype(np.float64))
+        out.append((np.repeat(qs, take), rows[sel].ravel(), d.ravel()))
     return _cat(out)
 
 
 def expand(Q, ind, neighbours_of, rows_of, seen, n):
     """One round of neighbour-of-neighbour search for late rows: the night's neighbours
     (``neighbours_of(rows)`` -> (len, k)) of each late row's current list ``ind`` (b, k) are
-    candidates at their direct distance (``rows_of(rows)`` -> fair-space rows). ``seen``: the
-    triplets already measured (not measured again); ``n``: night rows. Returns the new triplets."""
+    candidates at their direct distance (``rows_of(rows)`` -> fair-space rows). ``seen``: sorted
+    keys (late row x (n + 1) + night row, :func:`keys`) of the pairs already measured, which are
+    not measured again; ``n``: night rows. Returns the new triplets."""
     b, k = ind.shape
     q = np.repeat(np.arange(b, dtype=np.int64), k)
     j = ind.ravel()
@@ -138,13 +150,28 @@ def expand(Q, ind, neighbours_of, rows_of, seen, n):
     nb = np.asarray(neighbours_of(uj), dtype=np.int64)[inv]
     cq, cj = np.repeat(q, nb.shape[1]), nb.ravel()
     key = np.unique(cq[cj >= 0] * (n + 1) + cj[cj >= 0])
-    key = key[~np.isin(key, seen[0] * (n + 1) + seen[1])]
+    if len(seen):
+        at = np.minimum(np.searchsorted(seen, key), len(seen) - 1)
+        key = key[seen[at] != key]
     if not len(key):
         return _cat([])
     cq, cj = key // (n + 1), key % (n + 1)
     uj, inv = np.unique(cj, return_inverse=True)
     X = np.asarray(rows_of(uj), dtype=np.float64)[inv]
     return cq, cj, _direct(np.asarray(Q, dtype=np.float64)[cq], X)
+
+
+def keys(trip, n):
+    """Sorted keys late row x (n + 1) + night row of triplets (for :func:`expand`'s ``seen``)."""
+    return np.sort(trip[0] * (n + 1) + trip[1])
+
+
+def lists(ind, dist):
+    """The triplets of lists (b, k) (without empty places)."""
+    b, k = ind.shape
+    q = np.repeat(np.arange(b, dtype=np.int64), k)
+    ok = ind.ravel() >= 0
+    return q[ok], ind.ravel()[ok], dist.ravel()[ok]
 
 
 def best(trip, b, k):

@@ -11,7 +11,7 @@ import os
 import numpy as np
 
 from .. import artifacts as art
-from .. import atomic, provenance
+from .. import atomic, explain, provenance
 from ..kernels import metrics
 from ..kernels.audit_figures import (
     CHUNK,
@@ -415,6 +415,15 @@ def run(ctx):
         log.warning("audit: %s", w)
     top = np.argsort(-mag, kind="stable")[: a["top_changes"]]
     top_ids = ids_at_rows(fp, inp["id"], top) if len(top) else []
+    # why they moved: the same breakdown as `bigsmooth explain`, for the report's table
+    why = [
+        explain.breakdown(rundir, int(r), cfg["solve"]["lam"], cfg["solve"]["laplacian"], top=5) for r in top
+    ]
+    nb_rows = sorted({h["row"] for w in why for h in w["heaviest"]})
+    nb_ids = dict(zip(nb_rows, ids_at_rows(fp, inp["id"], nb_rows))) if nb_rows else {}
+    for w in why:
+        for h in w["heaviest"]:
+            h["id"] = nb_ids[h["row"]]
     report = {
         "caution": CAUTION,
         "rows": int(len(y)),
@@ -451,8 +460,9 @@ def run(ctx):
                 "decision_before": bool(sel_before[r]),
                 "decision_after": bool(sel_after[r]),
                 "groups": {col: levels[col][codes[r, j]] for j, col in enumerate(inp["protected"])},
+                "why": why[t],
             }
-            for i, r in zip(top_ids, top)
+            for t, (i, r) in enumerate(zip(top_ids, top))
         ],
         "leakage": {
             "linear_probe": embed["leakage"],

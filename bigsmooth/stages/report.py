@@ -188,6 +188,25 @@ def _table(header, rows, cls=""):
     return f"<table class='{cls}'><tr>{h}</tr>{body}</table>"
 
 
+def _why(t, c):
+    """Why one of the largest changes moved: the terms of its update at the solution (the same
+    breakdown as `bigsmooth explain ID`) and its heaviest neighbours."""
+    w = c["why"]
+    e = html.escape
+    head = (
+        f"<h4 id='why-{t}'>Why {e(str(c['id']))} moved</h4><p>Adjusted {fmt(w['adjusted'][0])} = own score's share "
+        f"{fmt(w['own_share'][0])} (c y / (c + &lambda; d), raw {fmt(w['raw'][0])}) + neighbours' share "
+        f"{fmt(w['neighbours_share'][0])} (&lambda; &Sigma; w<sub>j</sub> f<sub>j</sub> / (c + &lambda; d), "
+        f"{w['neighbours']} neighbours of total weight d = {fmt(w['degree'])}). Same breakdown: "
+        f"<code>bigsmooth explain CONFIG {e(str(c['id']))}</code>.</p>"
+    )
+    rows = [
+        [_Raw(e(str(h["id"]))), h["weight"], h["distance"], h["raw"][0], h["adjusted"][0], h["share"][0]]
+        for h in w["heaviest"]
+    ]
+    return head + _table(["neighbour id", "weight", "fair-space distance", "raw", "adjusted", "share"], rows)
+
+
 class _Raw(str):
     """Already-escaped HTML for a table cell."""
 
@@ -458,7 +477,7 @@ def render(report, plots, tune=None, applied_lam=None):
         cols = list(big[0].get("groups", {}))
         rows = [
             [
-                _Raw(e(str(c["id"]))),
+                _Raw(f"<a href='#why-{t}'>{e(str(c['id']))}</a>" if "why" in c else e(str(c["id"]))),
                 c["before"][0],
                 c["after"][0],
                 c["after"][0] - c["before"][0],
@@ -468,12 +487,13 @@ def render(report, plots, tune=None, applied_lam=None):
                 "yes" if c.get("decision_before") != c.get("decision_after") else "no",
             ]
             + [c["groups"][k] for k in cols]
-            for c in big
+            for t, c in enumerate(big)
         ]
         parts += [
             "<h3>Largest changes</h3>",
             _table(["id", "before", "after", "change", "decision", "flipped"] + cols, rows),
         ]
+        parts += [_why(t, c) for t, c in enumerate(big) if "why" in c]
     parts += [_caution(FLIP_CAUTION), "</section>"]
 
     sv = report.get("solver", {})

@@ -128,7 +128,7 @@ def test_neighbours_of_neighbours_recover_what_the_cells_miss(rng):
     trip = lk.search(Q, lk.nearest_cells(Q, centres, 1), read, 10)
     ind, _ = lk.best(trip, len(Q), 10)
     before = recall(ind)
-    new = lk.expand(Q, ind, lambda r: night_lists[r], lambda r: E[r], trip, len(E))
+    new = lk.expand(Q, ind, lambda r: night_lists[r], lambda r: E[r], lk.keys(trip, len(E)), len(E))
     assert not np.isin(new[0] * (len(E) + 1) + new[1], trip[0] * (len(E) + 1) + trip[1]).any()
     ind2, dist2 = lk.best(tuple(np.concatenate([a, b]) for a, b in zip(trip, new)), len(Q), 10)
     assert recall(ind2) >= before and recall(ind2) > 0.9 and before < 1.0
