@@ -85,6 +85,13 @@ def build_parser():
         help="folder for the demo's data, runs and output (default ./bigsmooth-demo)",
     )
     d.add_argument("--seed", type=int, default=None, help="seed of the generated data (default 7)")
+    d.add_argument(
+        "--next-night",
+        action="store_true",
+        help="turn the demo table in DIR into the next night's (2%% of the applicants leave, 2%% new ones "
+        "arrive, 10%% are re-scored) and run the job again: its audit compares the night with the one "
+        "published before",
+    )
 
     t = sub.add_parser(
         "tune",
@@ -206,6 +213,24 @@ def build_parser():
     ex.add_argument("--run", default=None, metavar="RUN_DIR", help="explain in this finished run instead")
     ex.add_argument("--top", type=int, default=10, help="heaviest neighbours listed (default 10)")
     ex.add_argument("--json", action="store_true", help="print the record as JSON")
+
+    df = sub.add_parser(
+        "diff",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="compare two published versions: rows added and removed, score changes, decision flips",
+        description="Compare VERSION_A (the earlier) and VERSION_B of the output folder OUTPUT row by "
+        "row by id, on the first score column: rows added, removed and in both; for rows in "
+        "both the change of the adjusted score and the decisions that flipped (each night at "
+        "its own audit cutoff), split into flips the raw score's own change explains and flips "
+        "the smoothing added. The audit of every night that follows a published one carries the "
+        "same comparison against it. --json prints the record (schema 1).",
+    )
+    df.add_argument("output", metavar="OUTPUT", help="the output folder (output.path)")
+    df.add_argument("version_a", metavar="VERSION_A", help="the earlier version folder's name")
+    df.add_argument("version_b", metavar="VERSION_B", help="the later version folder's name (or 'current')")
+    df.add_argument("--json", action="store_true", help="print the record as JSON")
     return p
 
 
@@ -255,7 +280,28 @@ def cmd_demo(args):
     base = os.path.abspath(args.dir)
     data = os.path.join(base, "data", "applicants")
     made = os.path.join(base, "data", art.DEMO_RECORD)
-    if not os.path.isdir(data) or not os.listdir(data):
+    if args.next_night:
+        if not os.path.isdir(data) or not os.path.exists(made):
+            raise BigsmoothError(
+                f"--next-night needs a demo under {base}; run `bigsmooth demo --dir {args.dir}` first"
+            )
+        if args.rows is not None or args.seed is not None:
+            raise BigsmoothError(
+                "--next-night changes the demo table already there; it takes no --rows or --seed"
+            )
+        have = atomic.read_json(made)
+        night = have.get("night", 1) + 1
+        got = demo.next_night(data, night, seed=have["seed"])
+        atomic.write_json(made, have | {"night": night})
+        log.info(
+            "night %d: %d applicants left, %d arrived, %d re-scored (%d rows)",
+            night,
+            got["removed"],
+            got["added"],
+            got["rescored"],
+            got["rows"],
+        )
+    elif not os.path.isdir(data) or not os.listdir(data):
         log.info("generating %d synthetic applicants under %s", rows, data)
         demo.write_demo_table(data, rows, seed=seed)
         atomic.write_json(made, {"rows": rows, "seed": seed})
@@ -410,6 +456,31 @@ def cmd_explain(args):
     return EXIT_OK
 
 
+def cmd_diff(args):
+    from . import nightly
+
+    versions = []
+    for v in (args.version_a, args.version_b):
+        if v == "current":
+            p = os.path.join(args.output, art.OUTPUT_POINTER)
+            if not os.path.exists(p):
+                from .errors import InputMissingError
+
+                raise InputMissingError(f"{args.output} has no {art.OUTPUT_POINTER}: nothing published there")
+            from .atomic import read_json
+
+            v = read_json(p)["version"]
+        versions.append(v)
+    rec = nightly.diff(args.output, *versions)
+    if args.json:
+        print(json.dumps(rec, indent=2))
+    else:
+        print(f"{rec['version_a']} -> {rec['version_b']} ({rec['score']!r}, by {rec['id']!r})")
+        for line in nightly.lines(rec):
+            print(line)
+    return EXIT_OK
+
+
 def main(argv=None):
     os.environ.setdefault(
         "NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba")
@@ -429,6 +500,7 @@ def main(argv=None):
             "report": cmd_report,
             "score": cmd_score,
             "explain": cmd_explain,
+            "diff": cmd_diff,
         }[args.command](args)
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)

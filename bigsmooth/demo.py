@@ -122,6 +122,57 @@ def write_demo_table(folder, n_rows, seed=0, rows_per_file=50_000):
     cols = generate(n_rows, seed)
     district = cols.pop("district")
     table = pa.table({k: (v if isinstance(v, pa.Array) else pa.array(v)) for k, v in cols.items()})
+    return _write_districts(folder, table, np.asarray(district), rows_per_file)
+
+
+NEXT_NIGHT = {"removed": 0.02, "added": 0.02, "rescored": 0.10, "rescore_sd": 0.05}
+
+
+def next_night(folder, night, seed=0, rows_per_file=50_000):
+    """Turn the demo table under ``folder`` into the next night's (``night`` = 2, 3, ...): 2% of the
+    applicants leave, 2% new ones arrive (new ids), and 10% of those who stay are re-scored (their
+    score moves by a normal step of sd 0.05, kept in [0, 1]); every other row is unchanged. The
+    new table is written beside the old one and swapped in. Returns the counts."""
+    import pyarrow.compute as pc
+    import pyarrow.dataset as ds
+    import shutil
+
+    table = ds.dataset(folder, format="parquet", partitioning="hive").to_table()
+    table = table.sort_by("applicant_id")
+    n = table.num_rows
+    rng = np.random.default_rng([seed, night])
+    keep = rng.random(n) >= NEXT_NIGHT["removed"]
+    table = table.filter(pa.array(keep))
+    score = table.column("sustain_score").to_numpy().copy()
+    moved = rng.random(len(score)) < NEXT_NIGHT["rescored"]
+    score[moved] = np.clip(score[moved] + rng.normal(0, NEXT_NIGHT["rescore_sd"], int(moved.sum())), 0, 1)
+    table = table.set_column(table.column_names.index("sustain_score"), "sustain_score", pa.array(score))
+    n_new = int(round(n * NEXT_NIGHT["added"]))
+    new = generate(n_new, seed=seed * 1000 + night)
+    new["applicant_id"] = int(pc.max(table.column("applicant_id")).as_py()) + 1 + np.arange(n_new)
+    new_table = pa.table({k: (v if isinstance(v, pa.Array) else pa.array(v)) for k, v in new.items()})
+    district = np.concatenate(
+        [table.column("district").to_numpy(zero_copy_only=False).astype(str), new.pop("district")]
+    )
+    cols = [c for c in table.column_names if c != "district"]
+    both = pa.concat_tables([table.select(cols), new_table.select(cols).cast(table.select(cols).schema)])
+    staging = folder.rstrip(os.sep) + ".next"
+    shutil.rmtree(staging, ignore_errors=True)
+    _write_districts(staging, both, district, rows_per_file)
+    old = folder.rstrip(os.sep) + ".old"
+    shutil.rmtree(old, ignore_errors=True)
+    os.rename(folder, old)
+    os.rename(staging, folder)
+    shutil.rmtree(old, ignore_errors=True)
+    return {
+        "removed": int((~keep).sum()),
+        "added": n_new,
+        "rescored": int(moved.sum()),
+        "rows": both.num_rows,
+    }
+
+
+def _write_districts(folder, table, district, rows_per_file):
     os.makedirs(folder, exist_ok=True)
     written = 0
     for d in DISTRICTS:

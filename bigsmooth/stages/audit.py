@@ -491,6 +491,7 @@ def run(ctx):
     report["gates"] = check_gates(report, cfg["gates"])
     version = provenance.version_name(rundir, ctx.run_id)
     report["provenance"] = provenance.record(rundir, cfg, fp, version, report["gates"])
+    report["night_over_night"] = night_over_night(cfg, fp, version, y, f, per_score[inp["scores"][0]])
     art.AUDIT_REPORT_JSON.save(rundir, report)
     from . import report as html_report
 
@@ -520,6 +521,63 @@ def gates_line(gates):
     return f"all {len(on)} gates that are on passed ({off} off)"
 
 
+def night_over_night(cfg, fp, version, y, f, fig):
+    """The current published version (last night) against tonight's first score column (see
+    :mod:`bigsmooth.nightly`), or None when nothing was published before (or the current version is
+    this run's own). Tonight's ids come from the input files by row number; its adjusted scores are
+    clipped to the score range as they will be published."""
+    import pyarrow as pa
+
+    from .. import nightly
+    from ..table import Source, connect_budget, quote
+
+    root, inp = cfg["output"]["path"], cfg["input"]
+    pointer = os.path.join(root, art.OUTPUT_POINTER)
+    if not os.path.exists(pointer):
+        return None
+    last = atomic.read_json(pointer)["version"]
+    folder = os.path.join(root, last)
+    if last == version or not os.path.exists(os.path.join(folder, art.OUTPUT_AUDIT)):
+        return None
+    last_audit = atomic.read_json(os.path.join(folder, art.OUTPUT_AUDIT))
+    first = inp["scores"][0]
+    if first not in last_audit.get("scores", {}):
+        log.warning("night over night: the current version %s has no score %r; not compared", last, first)
+        return None
+    lo, hi = inp["score_range"]
+    con = connect_budget(cfg["run"]["memory_mb"])
+    try:
+        src = Source(con, fp)
+        con.register("__tonight", pa.table({"row": np.arange(len(y)), "y": y, "f": np.clip(f, lo, hi)}))
+        tonight = (
+            f"SELECT s.{quote(inp['id'])} AS id, t.y, t.f FROM (SELECT {quote(inp['id'])}, __bigsmooth_row "
+            f"FROM {src.sql}) s JOIN __tonight t ON t.row = s.__bigsmooth_row"
+        )
+        rec = nightly.compare(
+            con,
+            nightly.version_select(folder, inp["id"], first, cfg["output"]["suffix"]),
+            tonight,
+            nightly.cutoffs(last_audit, first),
+            (fig["before"]["cutoff"], fig["after"]["cutoff"]),
+            params=src.params,
+        )
+    finally:
+        con.close()
+    rec.update({"last_version": last, "score": first})
+    log.info(
+        "night over night against %s: %d rows in both, %d added, %d removed; decisions flipped: raw %d, adjusted %d "
+        "(%d added by the smoothing)",
+        last,
+        rec["rows_in_both"],
+        rec["rows_added"],
+        rec["rows_removed"],
+        rec["raw_flips"],
+        rec["adjusted_flips"],
+        rec["flips_added_by_smoothing"],
+    )
+    return rec
+
+
 def summary_lines(report):
     """A short human summary of an audit report."""
     prov = report.get("provenance")
@@ -543,6 +601,13 @@ def summary_lines(report):
         )
     d = report["decisions"]
     lines.append(f"  decisions changed at the cutoff: {d['changed']} ({d['changed_rate']:.2%})")
+    nn = report.get("night_over_night")
+    if nn and nn["rows_in_both"]:
+        lines.append(
+            f"  against {nn['last_version']}: {nn['rows_in_both']} rows in both ({nn['rows_added']} added, "
+            f"{nn['rows_removed']} removed); decisions flipped night over night: raw {nn['raw_flip_rate']:.2%}, "
+            f"adjusted {nn['adjusted_flip_rate']:.2%} ({nn['flips_added_by_smoothing']} added by the smoothing)"
+        )
     s = report["scores"][report["decision_score"]]
     lines.append(
         f"  neighbour consistency of decisions (fair space) {s['before']['neighbour_consistency']:.4f} -> "

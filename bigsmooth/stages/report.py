@@ -188,6 +188,52 @@ def _table(header, rows, cls=""):
     return f"<table class='{cls}'><tr>{h}</tr>{body}</table>"
 
 
+def _night_over_night(nn):
+    """The section comparing tonight with the version published before (bigsmooth.nightly)."""
+    e = html.escape
+
+    def pct(v):
+        return "-" if v is None else f"{v:.2%}"
+
+    q = nn["adjusted_change"]["quantiles_abs"]
+    rows = [
+        [
+            "rows in both / added / removed",
+            f"{nn['rows_in_both']} / {nn['rows_added']} / {nn['rows_removed']}",
+        ],
+        ["rows re-scored (raw score changed)", nn["rows_rescored"]],
+        ["raw |change|, mean (rows in both)", nn["raw_change_mean_abs"]],
+        [
+            "adjusted |change|: median / 90th / 99th percentile / largest",
+            " / ".join(fmt(q[k]) for k in ("0.5", "0.9", "0.99", "1.0")) if nn["rows_in_both"] else "-",
+        ],
+        ["decisions flipped, raw score", f"{nn['raw_flips']} ({pct(nn['raw_flip_rate'])})"],
+        ["decisions flipped, adjusted score", f"{nn['adjusted_flips']} ({pct(nn['adjusted_flip_rate'])})"],
+        ["&nbsp;&nbsp;of which the raw score flipped too", nn["flips_explained_by_raw"]],
+        ["&nbsp;&nbsp;of which added by the smoothing", nn["flips_added_by_smoothing"]],
+        ["raw flips the adjusted decision did not follow", nn["raw_flips_absorbed"]],
+        [
+            "flips of rows whose raw score did not change",
+            f"{nn['flips_with_unchanged_raw']} of {nn['rows_with_unchanged_raw']}",
+        ],
+    ]
+    more = (
+        "<p><b>The smoothing made decisions flip more often than the raw scores did.</b> Rows whose own "
+        "score did not move can flip when their neighbourhood changes (rows arriving or leaving, "
+        "neighbours re-scored, the fair space learned again on a changed population).</p>"
+        if nn["rows_in_both"] and nn["adjusted_flips"] > nn["raw_flips"]
+        else ""
+    )
+    return (
+        f"<section id='night'><h2>Tonight against last night</h2><p>Against version {e(nn['last_version'])} "
+        f"(the one published before), on {e(nn['score'])}, rows matched by id; each night's decisions at its own "
+        "cutoff. Any two versions: <code>bigsmooth diff OUTPUT VERSION_A VERSION_B</code>.</p>"
+        + more
+        + _table(["figure", "value"], [[_Raw(k), v] for k, v in rows])
+        + "</section>"
+    )
+
+
 def _why(t, c):
     """Why one of the largest changes moved: the terms of its update at the solution (the same
     breakdown as `bigsmooth explain ID`) and its heaviest neighbours."""
@@ -495,6 +541,9 @@ def render(report, plots, tune=None, applied_lam=None):
         ]
         parts += [_why(t, c) for t, c in enumerate(big) if "why" in c]
     parts += [_caution(FLIP_CAUTION), "</section>"]
+    nn = report.get("night_over_night")
+    if nn:
+        parts.append(_night_over_night(nn))
 
     sv = report.get("solver", {})
     if sv:
