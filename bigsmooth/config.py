@@ -45,7 +45,11 @@ RULES = {
             "range", default=[0.0, 1.0], doc="declared [min, max] of the scores; values outside are bad data"
         ),
         "numeric_features": Rule(
-            "list[str]", default=[], doc="numeric feature columns used to decide who is similar"
+            "list[str]",
+            default=[],
+            doc="numeric feature columns used to decide who is similar; a column may also hold a list of "
+            "numbers of one length in every row (an embedding from an upstream model, e.g. list<float32>), "
+            "used as one numeric feature per position (name[0], name[1], ...)",
         ),
         "categorical_features": Rule(
             "list[str]", default=[], doc="categorical feature columns (one-hot encoded)"

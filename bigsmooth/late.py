@@ -37,7 +37,7 @@ from .kernels import late as lk
 from .parallel import one_blas_thread
 from .rundir import RunDir, hold_lock
 from .stages import scan
-from .stages.embed import MISSING_LEVEL, _floats
+from .stages.embed import MISSING_LEVEL, _floats, numeric_columns
 from .table import Source, connect_budget, fingerprint, quote
 
 log = logging.getLogger("bigsmooth.score")
@@ -100,7 +100,9 @@ class Night:
             constant=np.zeros(len(info["mean"]), dtype=bool),
             explained=np.zeros(0),
         )
-        self.levels = art.SCAN_INFO.load(rd)["levels"]
+        scan_info = art.SCAN_INFO.load(rd)
+        self.levels = scan_info["levels"]
+        self.inp = dict(self.inp, list_lengths=scan_info.get("list_lengths", {}))
         gi = art.GRAPH_INFO.load(rd)
         self.E = art.EMBED_EMBEDDING.load(rd, mmap=True)
         self.nb = art.GRAPH_NEIGHBOURS.load(rd, mmap=True)
@@ -196,7 +198,9 @@ def check_late(path, inp, memory_mb):
         scan.check_schema(cols, inp)
         if fp["rows"] == 0:
             raise DataError(f"the late table {path} has 0 rows; nothing to score")
-        total, problems = scan.row_problems(con, src, cols, inp, fp["rows"], memory_mb)
+        total, problems = scan.row_problems(
+            con, src, cols, inp, fp["rows"], memory_mb, inp.get("list_lengths")
+        )
     finally:
         con.close()
     if problems:
@@ -251,11 +255,7 @@ def features(table, inp, levels):
     """(X (b, p) encoded as the night encoded its rows, unseen (b,) count of category levels the
     night never saw): see the module docstring for the rule."""
     b = table.num_rows
-    parts = (
-        [np.column_stack([_floats(table, c) for c in inp["numeric_features"]])]
-        if inp["numeric_features"]
-        else []
-    )
+    parts = [np.column_stack(numeric_columns(table, inp))] if inp["numeric_features"] else []
     unseen = np.zeros(b, dtype=np.int64)
     for c in inp["categorical_features"]:
         lv = [v for v, _ in levels[c]]

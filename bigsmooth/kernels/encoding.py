@@ -42,11 +42,11 @@ def indicators(codes, sizes, rows):
 
 
 def weight_vector(names, weights):
-    """Per encoded feature weight: ``weights[col]`` for a numeric column and every level of a
-    categorical one, 1 elsewhere."""
+    """Per encoded feature weight: ``weights[col]`` for a numeric column, every position of a list
+    column and every level of a categorical one, 1 elsewhere."""
     out = np.ones(len(names))
     for f, w in weights.items():
         for i, name in enumerate(names):
-            if name == f or name.startswith(f + "="):
+            if name == f or name.startswith((f + "=", f + "[")):
                 out[i] = w
     return out

@@ -30,10 +30,41 @@ from .scan import MISSING_LEVEL
 log = logging.getLogger("bigsmooth.embed")
 
 
+def numeric_names(inp):
+    """The numeric features one by one: a list feature (``inp["list_lengths"]``, from the scan) is
+    one feature per position, ``name[0]``, ``name[1]``, ..."""
+    lengths = inp.get("list_lengths") or {}
+    out = []
+    for c in inp["numeric_features"]:
+        out += [f"{c}[{i}]" for i in range(lengths[c])] if c in lengths else [c]
+    return out
+
+
 def feature_names(inp, levels):
     return encoding.feature_names(
-        inp["numeric_features"], inp["categorical_features"], {c: [v for v, _ in levels[c]] for c in levels}
+        numeric_names(inp), inp["categorical_features"], {c: [v for v, _ in levels[c]] for c in levels}
     )
+
+
+def numeric_columns(batch, inp):
+    """The numeric features of a batch as float64 arrays, one per feature (a list feature gives one
+    array per position)."""
+    lengths = inp.get("list_lengths") or {}
+    out = []
+    for c in inp["numeric_features"]:
+        if c not in lengths:
+            out.append(_floats(batch, c))
+            continue
+        col = batch.column(c)
+        chunks = col.chunks if hasattr(col, "chunks") else [col]
+        flat = [pc.list_flatten(ch).to_numpy(zero_copy_only=False) for ch in chunks]
+        X = (
+            (np.concatenate(flat) if flat else np.empty(0))
+            .astype(np.float64)
+            .reshape(batch.num_rows, lengths[c])
+        )
+        out += list(X.T)
+    return out
 
 
 def _codes(batch, col, lv):
@@ -53,7 +84,7 @@ def _features(batch, inp, levels):
     cats = inp["categorical_features"]
     lvs = [[v for v, _ in levels[c]] for c in cats]
     return encoding.encode(
-        [_floats(batch, c) for c in inp["numeric_features"]],
+        numeric_columns(batch, inp),
         [_codes(batch, c, lv) for c, lv in zip(cats, lvs)],
         [len(lv) for lv in lvs],
         batch.num_rows,
@@ -207,6 +238,7 @@ def run(ctx):
     rundir, cfg, fp = ctx.rundir, ctx.cfg, ctx.fp
     inp, ecfg = cfg["input"], cfg["embed"]
     scan = art.SCAN_INFO.load(rundir)
+    inp = dict(inp, list_lengths=scan.get("list_lengths", {}))
     levels = scan["levels"]
     n = scan["rows"]
     names = feature_names(inp, levels)
@@ -240,6 +272,7 @@ def run(ctx):
         "input": {
             k: inp[k] for k in ("numeric_features", "categorical_features", "protected", "scores", "label")
         }
+        | {"list_lengths": inp["list_lengths"]}
         | {"compare_scores": inp["compare_scores"], "counterfactual_score": inp["counterfactual_score"]},
         "levels": levels,
         "prot_levels": prot_levels,
@@ -266,7 +299,7 @@ def run(ctx):
         raise RuntimeError(f"embed pass 1 streamed {seen} rows; the footers say {n}")
 
     weights = encoding.weight_vector(names, ecfg["feature_weights"])
-    indicator = np.arange(p) >= len(inp["numeric_features"])
+    indicator = np.arange(p) >= len(numeric_names(inp))
     fs = fairspace.fit_fair_space(mom, weights, ecfg["remove_sensitive"], ecfg["components"], indicator)
     if fs.constant.any():
         log.warning(

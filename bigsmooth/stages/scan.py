@@ -9,6 +9,7 @@ Every problem is reported at once, each with its count and a few example ids.
 import difflib
 import logging
 import os
+import re
 
 from .. import artifacts as art
 from ..errors import ConfigError, DataError, InputMissingError, examples
@@ -40,6 +41,15 @@ def _is_numeric(t):
     return t in NUMERIC_TYPES or t.startswith("DECIMAL")
 
 
+def list_of_numbers(t):
+    """For a DuckDB list or array type of numbers (FLOAT[], DOUBLE[24], ...): its fixed length, or 0
+    for a list of any length; None for any other type."""
+    m = re.fullmatch(r"(.+)\[(\d*)\]", t)
+    if m is None or not _is_numeric(m.group(1)):
+        return None
+    return int(m.group(2) or 0)
+
+
 def _is_float(t):
     return t in FLOAT_TYPES or t.startswith("DECIMAL")
 
@@ -67,7 +77,9 @@ def check_schema(columns, inp):
             problems.append(f"input.{role}: column {col!r} is not in the table{hint}")
             continue
         t = columns[col]
-        if role in (
+        if role == "numeric_features" and list_of_numbers(t) is not None:
+            pass  # a list of numbers (an embedding from an upstream model): one feature per position
+        elif role in (
             "scores",
             "compare_scores",
             "counterfactual_score",
@@ -198,12 +210,32 @@ def _id_slices(idq, rows, memory_mb):
     return [f"hash({idq}) % {parts} = {p}" for p in range(parts)]
 
 
-def row_problems(con, src, cols, inp, n, memory_mb):
+def list_lengths(con, src, cols, inp):
+    """{numeric feature: its lists' length} for the features that are lists of numbers: the fixed
+    length of an array type, else the most common length (rows of another length are bad data)."""
+    out = {}
+    for c in inp["numeric_features"]:
+        fixed = list_of_numbers(cols.get(c, ""))
+        if fixed is None:
+            continue
+        if not fixed:
+            q = quote(c)
+            row = src.fetch(
+                con,
+                f"SELECT len({q}) AS l, count(*) AS k FROM {{src}} WHERE {q} IS NOT NULL GROUP BY l ORDER BY k DESC, l LIMIT 1",
+            )
+            fixed = int(row[0][0]) if row else 0
+        out[c] = fixed
+    return out
+
+
+def row_problems(con, src, cols, inp, n, memory_mb, lengths=None):
     """The per-row checks of the table behind ``src`` (a :class:`~bigsmooth.table.Source`) with
     DuckDB types ``cols``: (total rows, problems), each problem a line with its count and example
     ids (null ids, null / NaN / infinite / out-of-range scores, bad numeric features, labels other
     than 0/1, duplicate ids). Shared by the scan stage and ``bigsmooth score`` (late rows), so both
-    refuse the same rows with the same words."""
+    refuse the same rows with the same words. ``lengths``: the lengths list features must have
+    (default: each one's most common length in this table)."""
     idq = quote(inp["id"])
     lo, hi = inp["score_range"]
     checks = [(f"{idq} IS NULL", "null id", False)]
@@ -224,8 +256,28 @@ def row_problems(con, src, cols, inp, n, memory_mb):
                 True,
             )
         )
+    lengths = list_lengths(con, src, cols, inp) if lengths is None else lengths
     for c in inp["numeric_features"]:
         q = quote(c)
+        if c in lengths:
+            checks.append((f"{q} IS NULL", f"null list in numeric feature {c!r}", True))
+            checks.append(
+                (
+                    f"len({q}) <> {lengths[c]}",
+                    f"list of the wrong length in numeric feature {c!r} (the table's lists have {lengths[c]} values)",
+                    True,
+                )
+            )
+            x = "CAST(x AS DOUBLE)"
+            checks.append(
+                (
+                    f"list_bool_or(list_transform({q}, lambda x: x IS NULL OR isnan({x}) OR isinf({x}) OR abs({x}) > "
+                    f"{MAX_FEATURE:g}))",
+                    f"null, NaN, infinite or too large value inside the list of numeric feature {c!r}",
+                    True,
+                )
+            )
+            continue
         checks.append((f"{q} IS NULL", f"null value in numeric feature {c!r}", True))
         if _is_float(cols[c]):
             checks.append(
@@ -345,6 +397,7 @@ def run(ctx):
         "files": len(fp["files"]),
         "columns": cols,
         "levels": levels,
+        "list_lengths": list_lengths(con, src, cols, inp),
         "id_digests": digests,
     }
     art.SCAN_INFO.save(rundir, info)
