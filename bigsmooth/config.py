@@ -70,7 +70,7 @@ RULES = {
         "pairs": Rule(
             "str",
             default="",
-            doc="optional Parquet file of comparable pairs, columns id_a and id_b (ids of this table): the audit reports how often both rows of a pair get the same decision",
+            doc="optional Parquet file of comparable pairs, columns id_a and id_b (ids of this table) and an optional weight column: the audit reports how often both rows of a pair get the same decision; with graph.pair_weight > 0 each pair is also a graph edge (pairs naming unknown ids are counted and reported); its content is part of the run's identity",
         ),
         "compare_scores": Rule(
             "list[str]",
@@ -162,6 +162,13 @@ RULES = {
             hi=100_000,
             doc="rows whose neighbours are checked against an exact search after a partitioned or approximate build (recall@k in the graph record; a warning below 0.95); 0 = no check",
             affects_result=False,
+        ),
+        "pair_weight": Rule(
+            "float",
+            default=0.0,
+            lo=0.0,
+            hi=1e6,
+            doc="weight of the graph edge each comparable pair (input.pairs) adds, times the pair's own weight column when the file has one; where the pair is also a neighbour edge the larger weight counts; 0 = pairs add no edges",
         ),
         "kernel_scale": Rule(
             "str",

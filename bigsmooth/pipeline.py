@@ -3,6 +3,7 @@
 import errno
 import logging
 import gc
+import json
 import os
 import resource
 import shutil
@@ -265,6 +266,24 @@ def peak_rss_mb():
     return round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)
 
 
+def with_pairs(fp, pairs):
+    """The input's fingerprint with the pairs file's (size, mtime, footer) folded into its hash: the
+    pairs can change the graph, so new pairs are a new run. A missing file is left to the scan."""
+    if not pairs or not os.path.isfile(pairs):
+        return fp
+    import hashlib
+
+    from .table import footer_hash
+
+    st = os.stat(pairs)
+    try:
+        footer = footer_hash(pairs)
+    except (OSError, ValueError):  # not Parquet: the scan says so
+        footer = None
+    mark = json.dumps([st.st_size, st.st_mtime_ns, footer])
+    return fp | {"hash": hashlib.sha256((fp["hash"] + ":pairs:" + mark).encode()).hexdigest(), "pairs": mark}
+
+
 def run_job(config_path, fresh=False, upto=None, then=None):
     """Run (or resume) the job described by a config file.
 
@@ -280,7 +299,7 @@ def run_job(config_path, fresh=False, upto=None, then=None):
     """
     cfg = config_mod.load_config(config_path)
     _allow_numba_threads(cfg["graph"]["index_threads"])
-    fp = fingerprint(cfg["input"]["path"])
+    fp = with_pairs(fingerprint(cfg["input"]["path"]), cfg["input"]["pairs"])
     chash = config_mod.config_hash(cfg)
     rid = run_id(chash, fp["hash"])
     rd = RunDir(os.path.join(cfg["run"]["dir"], rid))

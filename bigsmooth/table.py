@@ -374,3 +374,41 @@ def ids_at_rows(fp, id_col, rows):
         for r in rs:
             out[r] = col[r - e["offset"]].as_py()
     return [out[int(r)] for r in rows]
+
+
+def pair_rows(con, src, pairs, id_col):
+    """The comparable pairs of the Parquet file ``pairs`` (id_a, id_b, optional weight) as row
+    numbers of the table behind ``src``: (rows a, rows b, weights (ones without a weight column),
+    pairs in the file, up to 5 ids of pairs that name ids not in the table). Pairs whose ids are
+    missing are left out; pairs of a row with itself are left out too."""
+    import duckdb
+
+    cols = [r[0] for r in con.execute("DESCRIBE SELECT * FROM read_parquet($p)", {"p": pairs}).fetchall()]
+    wcol = "CAST(p.weight AS DOUBLE)" if "weight" in cols else "1.0"
+    idq = quote(id_col)
+    got = src.fetch_arrow(
+        con,
+        f"SELECT a.{ROW} AS ra, b.{ROW} AS rb, {wcol} AS w FROM read_parquet($pairs) p "
+        f"JOIN (SELECT {ROW}, {idq} FROM {{src}}) a ON p.id_a = a.{idq} "
+        f"JOIN (SELECT {ROW}, {idq} FROM {{src}}) b ON p.id_b = b.{idq} ORDER BY ra, rb",
+        pairs=pairs,
+    )
+    total = con.execute("SELECT count(*) FROM read_parquet($p)", {"p": pairs}).fetchall()[0][0]
+    unknown = []
+    if got.num_rows < total:
+        try:
+            unknown = [
+                r[0]
+                for r in src.fetch(
+                    con,
+                    f"SELECT v FROM (SELECT id_a AS v FROM read_parquet($pairs) UNION ALL SELECT id_b FROM "
+                    f"read_parquet($pairs)) WHERE v NOT IN (SELECT {idq} FROM {{src}}) ORDER BY v LIMIT 5",
+                    pairs=pairs,
+                )
+            ]
+        except duckdb.Error:
+            unknown = []
+    ra, rb = got.column("ra").to_numpy(), got.column("rb").to_numpy()
+    w = got.column("w").to_numpy(zero_copy_only=False).astype(np.float64)
+    keep = ra != rb
+    return ra[keep], rb[keep], w[keep], int(total), unknown

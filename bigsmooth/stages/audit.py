@@ -121,32 +121,27 @@ def neighbour_pass(ctx, vectors, rate, constant):
 
 def pair_figures(fp, cfg, y, f, rate):
     """Same decision at the quantile cutoff for both rows of each comparable pair (input.pairs)."""
-    from ..table import ROW, Source, connect_budget, quote
+    from ..errors import examples
+    from ..table import Source, connect_budget, pair_rows
 
     con = connect_budget(cfg["run"]["memory_mb"])
-    src = Source(con, fp)
-    idq = quote(cfg["input"]["id"])
-    t = src.fetch_arrow(
-        con,
-        f"SELECT src.{ROW} AS ra, b.{ROW} AS rb FROM read_parquet($pairs) p "
-        f"JOIN {{src}} ON p.id_a = src.{idq} JOIN (SELECT {ROW}, {idq} FROM {{src}}) b "
-        f"ON p.id_b = b.{idq}",
-        pairs=cfg["input"]["pairs"],
-    )
-    total = con.execute(
-        "SELECT count(*) FROM read_parquet($pairs)", {"pairs": cfg["input"]["pairs"]}
-    ).fetchall()[0][0]
-    ra, rb = t.column(0).to_numpy(), t.column(1).to_numpy()
+    try:
+        ra, rb, _, total, unknown = pair_rows(con, Source(con, fp), cfg["input"]["pairs"], cfg["input"]["id"])
+    finally:
+        con.close()
     if len(ra) < total:
         log.warning(
-            "input.pairs: %d of %d pairs name ids that are not in tonight's table; skipped",
+            "input.pairs: %d of %d pairs name ids that are not in tonight's table (e.g. %s), or a row with "
+            "itself; skipped",
             total - len(ra),
             total,
+            examples(unknown) if unknown else "-",
         )
     sb, sa = y >= metrics.quantile_cutoff(y, rate), f >= metrics.quantile_cutoff(f, rate)
     return {
         "pairs": int(total),
         "pairs_found": int(len(ra)),
+        "unknown_ids_examples": [str(v) for v in unknown],
         "same_decision_before": float(np.mean(sb[ra] == sb[rb])) if len(ra) else float("nan"),
         "same_decision_after": float(np.mean(sa[ra] == sa[rb])) if len(ra) else float("nan"),
         "mean_abs_gap_before": float(np.mean(np.abs(y[ra] - y[rb]))) if len(ra) else float("nan"),

@@ -251,14 +251,18 @@ def _merge_parts(rundir, membership, ptr, k, block):
             out_dist.write(dist)
 
 
-def write_weights(rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows=None, map_fn=map, workers=1):
+def write_weights(
+    rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows=None, map_fn=map, workers=1, extra=None
+):
     """Write the symmetric heat-kernel weight matrix (the graph.weights CSR files) in bounded memory:
     the directed edges go to shard files by row range (each edge in both directions), each shard is
     merged on its own (:func:`kernels.graph.max_merge_rows`), and the shards are appended to the
     CSR files in row order. ``ind`` and ``dist`` are arrays or RowReaders (read in blocks); shards
     are merged through ``map_fn`` (a thread pool's map merges one shard per thread, so the budget
     is shared among ``workers`` shards). Equals
-    :func:`kernels.graph.heat_kernel_graph` (tested). Returns (stored entries, row sums)."""
+    :func:`kernels.graph.heat_kernel_graph` (tested). ``extra`` = (rows, cols, weights): more
+    edges (the comparable pairs), merged the same way (the larger weight where an edge is given
+    twice). Returns (stored entries, row sums)."""
     n, k = ind.shape
     # a shard holds about 2 k edges per row at 24 bytes each; a quarter of the budget for one shard
     shard_rows = shard_rows or max(65_536, memory_mb * (1 << 20) // 4 // workers // (2 * k * 24 * 3))
@@ -266,8 +270,14 @@ def write_weights(rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows
     folder = art.GRAPH_SCRATCH.folder(rundir)
     files = {}
     try:
-        for lo in range(0, n, block):
-            r, c, w = gk.heat_edges(ind[lo : lo + block], dist[lo : lo + block], sigma, lo)
+
+        def blocks():
+            for lo in range(0, n, block):
+                yield gk.heat_edges(ind[lo : lo + block], dist[lo : lo + block], sigma, lo)
+            if extra is not None:
+                yield tuple(np.asarray(x) for x in extra)
+
+        for r, c, w in blocks():
             R, C, V = np.concatenate([r, c]), np.concatenate([c, r]), np.concatenate([w, w])
             shard = R // shard_rows
             order = np.argsort(shard, kind="stable")
@@ -320,6 +330,40 @@ def write_weights(rundir, ind, dist, sigma, memory_mb, block=262_144, shard_rows
                 out.write(np.fromfile(path, dtype=dt))
                 os.unlink(path)
     return nnz, deg
+
+
+def _pair_edges(ctx, info):
+    """The comparable pairs (input.pairs) as edges of weight graph.pair_weight x the pair's weight
+    (rows, cols, weights); counts go into the graph record ``info``."""
+    from ..errors import examples
+    from ..table import Source, connect_budget, pair_rows
+
+    cfg = ctx.cfg
+    con = connect_budget(cfg["run"]["memory_mb"])
+    try:
+        ra, rb, w, total, unknown = pair_rows(
+            con, Source(con, ctx.fp), cfg["input"]["pairs"], cfg["input"]["id"]
+        )
+    finally:
+        con.close()
+    w = cfg["graph"]["pair_weight"] * w
+    keep = np.isfinite(w) & (w > 0)
+    info.update({"pairs": total, "pair_edges": int(keep.sum()), "pairs_not_found": total - len(ra)})
+    log.info(
+        "comparable pairs: %d of %d added as edges (weight %g each)",
+        int(keep.sum()),
+        total,
+        cfg["graph"]["pair_weight"],
+    )
+    if len(ra) < total:
+        log.warning(
+            "input.pairs: %d of %d pairs name ids that are not in the table (e.g. %s) or join a row with itself; "
+            "no edge for them",
+            total - len(ra),
+            total,
+            examples(unknown) if unknown else "-",
+        )
+    return ra[keep], rb[keep], w[keep]
 
 
 def run(ctx):
@@ -386,9 +430,17 @@ def run(ctx):
     t0 = time.monotonic()
     median = gk.kernel_median(dist)
     sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"], median=median)
+    extra_edges = _pair_edges(ctx, extra) if g["pair_weight"] > 0 and cfg["input"]["pairs"] else None
     with _local_pool(ctx) as (map_fn, workers):
         nnz, deg = write_weights(
-            rundir, ind, dist, sigma, cfg["run"]["memory_mb"], map_fn=map_fn, workers=workers
+            rundir,
+            ind,
+            dist,
+            sigma,
+            cfg["run"]["memory_mb"],
+            map_fn=map_fn,
+            workers=workers,
+            extra=extra_edges,
         )
     zero_dist = sum(int(np.sum(dist[lo : lo + (1 << 20)] == 0)) for lo in range(0, n, 1 << 20))
     shutil.rmtree(art.GRAPH_SCRATCH.path(rundir), ignore_errors=True)
