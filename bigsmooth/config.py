@@ -91,6 +91,13 @@ RULES = {
             hi=1000,
             doc="keep this many principal components of the fair space (0 = keep all)",
         ),
+        "pair_directions": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=100,
+            doc="also remove this many principal directions of the comparable pairs' feature differences (input.pairs) from the fair space: directions along which rows judged alike differ are ignored by the similarity (0 = none)",
+        ),
         "feature_weights": Rule(
             "table[float]",
             default={},

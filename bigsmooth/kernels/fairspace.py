@@ -74,7 +74,29 @@ class FairSpace:
         return ((np.asarray(X, dtype=np.float64) - self.mean) * self.scale) @ self.transform
 
 
-def fit_fair_space(mom, weights=None, remove_sensitive=True, components=0, indicator=None, rtol=1e-8):
+def pair_directions(diffs, scale, count, rtol=1e-8):
+    """(p, r) the ``count`` principal directions (uncentred: the top right singular vectors) of the
+    comparable pairs' feature differences ``diffs`` (m, p) in the standardised space (times
+    ``scale``); fewer when the differences span fewer. Directions along which rows judged alike
+    differ are directions the similarity should ignore."""
+    D = np.asarray(diffs, dtype=np.float64) * scale
+    if not count or D.size == 0:
+        return np.zeros((len(scale), 0))
+    _, sv, Vt = np.linalg.svd(D, full_matrices=False)
+    r = min(count, int(np.sum(sv > rtol * max(sv.max(initial=0.0), 1e-300))))
+    return Vt[:r].T
+
+
+def fit_fair_space(
+    mom,
+    weights=None,
+    remove_sensitive=True,
+    components=0,
+    indicator=None,
+    rtol=1e-8,
+    pair_diffs=None,
+    pair_count=0,
+):
     """Learn the fair space from :class:`Moments`.
 
     Parameters
@@ -88,6 +110,8 @@ def fit_fair_space(mom, weights=None, remove_sensitive=True, components=0, indic
         divided by their standard deviation (which would blow up rare categories); instead they are
         scaled by 1/sqrt(2), so that two rows in different categories are one unit apart, like one
         standard deviation of a numeric feature.
+    pair_diffs, pair_count : the comparable pairs' feature differences (m, p) and how many of their
+        principal directions (:func:`pair_directions`) to remove along with the sensitive subspace.
     """
     n = mom.n
     if n < 2:
@@ -112,6 +136,15 @@ def fit_fair_space(mom, weights=None, remove_sensitive=True, components=0, indic
         U, sv, _ = np.linalg.svd(cross, full_matrices=True)
         removed = int(np.sum(sv > rtol * max(1.0, sv.max(initial=0.0)))) if sv.size else 0
         basis = U[:, removed:]
+    extra = (
+        pair_directions(pair_diffs, scale, pair_count, rtol) if pair_diffs is not None else np.zeros((p, 0))
+    )
+    if extra.shape[1]:
+        # the removed span widened by the pairs' directions; the basis is what is left of the space
+        span = np.hstack([np.eye(p) - basis @ basis.T, extra])  # projector on the removed span, pairs
+        U2, sv2, _ = np.linalg.svd(span, full_matrices=True)
+        removed = int(np.sum(sv2 > rtol * max(1.0, sv2.max(initial=0.0))))
+        basis = U2[:, removed:]
     # drop directions with no variance (constant features, exact collinearity such as one-hot sums)
     sub = basis.T @ cov_z @ basis
     ev, V = np.linalg.eigh((sub + sub.T) / 2)

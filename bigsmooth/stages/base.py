@@ -149,6 +149,7 @@ SPECS = (
         (
             "embed.remove_sensitive",
             "embed.components",
+            "embed.pair_directions",
             "embed.feature_weights",
             "embed.probe_rows",
             "run.seed",

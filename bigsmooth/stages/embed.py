@@ -231,6 +231,27 @@ def _shift(con, fp, sql, inp, levels):
     return _features(batch, inp, levels).mean(axis=0)
 
 
+PAIR_ROWS = 200_000  # comparable pairs whose differences the fair space is fitted on (the first by row)
+
+
+def _pair_diffs(con, fp, sql, inp, levels):
+    """The comparable pairs' feature differences x_a - x_b (m, p), for up to :data:`PAIR_ROWS`
+    pairs (the first by row number), their rows read from the table by row number."""
+    from ..table import ROW, pair_rows
+
+    src = Source(con, fp)
+    ra, rb, _, _, _ = pair_rows(con, src, inp["pairs"], inp["id"])
+    ra, rb = ra[:PAIR_ROWS], rb[:PAIR_ROWS]
+    rows = np.unique(np.concatenate([ra, rb]))
+    con.register("__pair_rows", pa.table({"r": rows}))
+    t = src.fetch_arrow(
+        con, f"SELECT {ROW}, {sql} FROM {{src}} WHERE {ROW} IN (SELECT r FROM __pair_rows) ORDER BY {ROW}"
+    )
+    X = _features(t, inp, levels)
+    got = t.column(ROW).to_numpy()
+    return X[np.searchsorted(got, ra)] - X[np.searchsorted(got, rb)]
+
+
 def run(ctx):
     """The embed stage (see the module docstring). Each pass is one task per input file
     (:func:`statistics_task`, :func:`embedding_task`); the driver adds the files' statistics in
@@ -300,7 +321,23 @@ def run(ctx):
 
     weights = encoding.weight_vector(names, ecfg["feature_weights"])
     indicator = np.arange(p) >= len(numeric_names(inp))
-    fs = fairspace.fit_fair_space(mom, weights, ecfg["remove_sensitive"], ecfg["components"], indicator)
+    diffs = None
+    if ecfg["pair_directions"] and inp["pairs"]:
+        diffs = _pair_diffs(con, fp, sql, inp, levels)
+        log.info(
+            "comparable pairs: %d pairs' feature differences, their %d principal direction(s) removed",
+            len(diffs),
+            ecfg["pair_directions"],
+        )
+    fs = fairspace.fit_fair_space(
+        mom,
+        weights,
+        ecfg["remove_sensitive"],
+        ecfg["components"],
+        indicator,
+        pair_diffs=diffs,
+        pair_count=ecfg["pair_directions"],
+    )
     if fs.constant.any():
         log.warning(
             "constant features (no information, ignored): %s", ", ".join(np.array(names)[fs.constant][:10])
@@ -364,6 +401,8 @@ def run(ctx):
         "features": names,
         "dim": dim,
         "removed_dimensions": fs.removed,
+        "pair_directions": ecfg["pair_directions"] if diffs is not None else 0,
+        "pairs_used": 0 if diffs is None else len(diffs),
         "constant_features": list(np.array(names)[fs.constant]),
         "leakage": leakage,
         "probe_rows": len(sample),

@@ -72,3 +72,28 @@ def test_pair_edges_merge_into_the_graph(tmp_path):
     pq.write_table(pairs.slice(0, 10), tmp_path / "paired" / "pairs.parquet")
     res = cli("-q", "run", str(paired))
     assert res.returncode == EXIT_OK and len(list((tmp_path / "paired" / "runs").iterdir())) == 2
+
+
+def test_pair_directions_widen_the_sensitive_subspace(tmp_path):
+    table = _small_table(ROWS, seed=6)
+    ids = np.asarray(table["applicant_id"])
+    rng = np.random.default_rng(6)
+    a, b = rng.integers(ROWS, size=60), rng.integers(ROWS, size=60)
+    a, b = a[a != b], b[a != b]
+    pairs = pa.table({"id_a": pa.array(ids[a]), "id_b": pa.array(ids[b])})
+    plain = _case(tmp_path / "plain", table, pairs, 0.0)
+    wide = _case(tmp_path / "wide", table, pairs, 0.0)
+    wide.write_text(wide.read_text().replace("[embed]\n", "[embed]\npair_directions = 2\n"))
+    for cfg in (plain, wide):
+        res = cli("-q", "run", str(cfg))
+        assert res.returncode == EXIT_OK, res.stderr
+    (r0,) = (tmp_path / "plain" / "runs").iterdir()
+    (r1,) = (tmp_path / "wide" / "runs").iterdir()
+    i0 = json.loads((r0 / "embed" / "embed.json").read_text())
+    i1 = json.loads((r1 / "embed" / "embed.json").read_text())
+    assert i1["pairs_used"] == len(a) and i1["pair_directions"] == 2
+    assert i1["removed_dimensions"] == i0["removed_dimensions"] + 2 and i1["dim"] == i0["dim"] - 2
+    E0, E1 = np.load(r0 / "embed" / "embedding.npy"), np.load(r1 / "embed" / "embedding.npy")
+    d0 = np.linalg.norm(E0[a] - E0[b], axis=1)  # rows are in file order: row i is the table's row i
+    d1 = np.linalg.norm(E1[a] - E1[b], axis=1)
+    assert d1.mean() < d0.mean()
