@@ -34,6 +34,7 @@ from .config import load_config
 from .errors import DataError, InputMissingError, OutputError, examples
 from .kernels import fairspace
 from .kernels import late as lk
+from .kernels import partition
 from .parallel import one_blas_thread
 from .rundir import RunDir, hold_lock
 from .stages import scan
@@ -151,9 +152,9 @@ def _build_cells(night, seed):
     block = 1 << 20
     with one_blas_thread(), ThreadPoolExecutor(os.cpu_count() or 1) as pool:
         for lo in range(0, n, block):
-            near[lo : lo + block] = lk.nearest_cells(np.asarray(E[lo : lo + block]), centres, 1, pool.map)[
-                :, 0
-            ]
+            # the graph stage's compiled tiled search (once per run; the scoring path itself is numpy)
+            rows = np.asarray(E[lo : lo + block])
+            near[lo : lo + block] = partition.nearest_centres(rows, centres, 1, map_fn=pool.map)[:, 0]
     order = np.argsort(near, kind="stable")
     ptr = np.zeros(len(centres) + 1, dtype=np.int64)
     np.cumsum(np.bincount(near, minlength=len(centres)), out=ptr[1:])

@@ -95,12 +95,25 @@ def cell_plan(sample, cells, rng):
     return partition._kmeans(np.asarray(sample, dtype=np.float64), cells, rng)
 
 
-def nearest_cells(Q, centres, probe, map_fn=map):
-    """(b, probe) the nearest cells of each row of Q, nearest first (ties by index); row chunks go
-    through ``map_fn`` (e.g. a thread pool's map)."""
-    return partition.nearest_centres(
-        np.asarray(Q, dtype=np.float64), centres, min(probe, len(centres)), map_fn=map_fn
-    )
+def nearest_cells(Q, centres, probe, map_fn=map, chunk=16_384):
+    """(b, probe) the nearest cells of each row of Q, nearest first (ties by index), ranked by
+    ||c||^2 - 2 q.c in float64 (plain numpy: no compiled code on the late-row path); row chunks go
+    through ``map_fn`` (e.g. a thread pool's map). Reference: a direct numpy search (tests)."""
+    Q = np.asarray(Q, dtype=np.float64)
+    C = np.asarray(centres, dtype=np.float64)
+    probe = min(probe, len(C))
+    cc = np.einsum("ij,ij->i", C, C)
+
+    def one(lo):
+        G = cc[None, :] - 2.0 * (Q[lo : lo + chunk] @ C.T)
+        if probe == 1:
+            return G.argmin(axis=1)[:, None]
+        cand = np.argpartition(G, probe - 1, axis=1)[:, :probe] if probe < len(C) else np.argsort(G, axis=1)
+        g = np.take_along_axis(G, cand, axis=1)
+        return np.take_along_axis(cand, np.lexsort((cand, g), axis=1), axis=1)
+
+    parts = list(map_fn(one, range(0, Q.shape[0], chunk)))
+    return (np.vstack(parts) if parts else np.empty((0, probe), np.int64)).astype(np.int32)
 
 
 def search(Q, cells_of, read_cell, k):
@@ -223,11 +236,31 @@ def _direct(A, B):
     return np.sqrt(np.sum((A - B) ** 2, axis=-1))
 
 
-def late_pairs(Q, k):
-    """Exact k nearest neighbours among the late rows themselves (each excluding itself), as the
-    partitioned build searches inside a partition (:func:`partition.exact_in`): (ind (b, k') local
-    rows, dist (b, k')) with k' = min(k, b - 1), ascending by (distance, row)."""
+def late_pairs(Q, k, chunk=1024):
+    """Exact k nearest neighbours among the late rows themselves (each excluding itself): (ind
+    (b, k') local rows, dist (b, k')) with k' = min(k, b - 1), ascending by (distance, row).
+    Plain numpy (no compiled code on the late-row path): rows are ranked by float32 products in
+    chunks of ``chunk`` rows, with a few candidates to spare, and the chosen distances are taken
+    directly in float64, as the graph stage does."""
+    Q = np.asarray(Q, dtype=np.float32)
     b = Q.shape[0]
-    if b < 2:
+    kk = min(k, b - 1)
+    if kk <= 0:
         return np.empty((b, 0), np.int64), np.empty((b, 0))
-    return partition.exact_in(np.asarray(Q, dtype=np.float32), min(k, b - 1))
+    take = min(kk + partition.SLACK, b - 1)
+    Q64 = Q.astype(np.float64)
+    A = -2.0 * Q
+    sq = np.einsum("ij,ij->i", Q, Q)
+    ind = np.empty((b, kk), dtype=np.int64)
+    dist = np.empty((b, kk))
+    for lo in range(0, b, chunk):
+        hi = min(b, lo + chunk)
+        G = A[lo:hi] @ Q.T
+        G += sq[None, :]
+        G[np.arange(hi - lo), np.arange(lo, hi)] = np.inf  # not its own neighbour
+        cand = np.argpartition(G, take - 1, axis=1)[:, :take]
+        d = _direct(Q64[lo:hi, None, :], Q64[cand])
+        order = np.lexsort((cand, d), axis=1)[:, :kk]
+        ind[lo:hi] = np.take_along_axis(cand, order, axis=1)
+        dist[lo:hi] = np.take_along_axis(d, order, axis=1)
+    return ind, dist

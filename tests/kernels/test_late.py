@@ -166,3 +166,15 @@ def test_row_sigma_follows_the_graph_rule():
     med = gk.kernel_median(d)
     for rule in ("global", "local"):
         np.testing.assert_allclose(lk.row_sigma(d, rule, 1.5, med), gk.kernel_scale(d, rule, 1.5))
+
+
+def test_nearest_cells_match_scipy_cdist(rng):
+    # reference: scipy.spatial.distance.cdist, sorted by (distance, cell)
+    from scipy.spatial.distance import cdist
+
+    Q, C = rng.normal(size=(300, 5)), rng.normal(size=(40, 5))
+    D = cdist(Q, C)
+    ref = np.lexsort((np.broadcast_to(np.arange(40), D.shape), D), axis=1)
+    for probe in (1, 3, 40):
+        got = lk.nearest_cells(Q, C, probe, chunk=64)
+        np.testing.assert_array_equal(got, ref[:, :probe])
