@@ -189,7 +189,10 @@ def late_input(inp):
 def check_late(path, inp, memory_mb):
     """Check the late table with the scan's rules: (fingerprint, rows). Raises DataError /
     InputMissingError with counts and example ids."""
-    fp = fingerprint(path)
+    try:
+        fp = fingerprint(path)
+    except InputMissingError as exc:
+        raise InputMissingError(str(exc).replace("input.path", "the late table", 1)) from None
     scan.check_files(fp, inp)
     con = connect_budget(memory_mb)
     try:

@@ -107,7 +107,9 @@ def diff(output, version_a, version_b, memory_mb=1024):
         if not os.path.exists(os.path.join(folder, art.OUTPUT_AUDIT)):
             have = (
                 sorted(
-                    n for n in os.listdir(output) if os.path.exists(os.path.join(output, n, art.OUTPUT_AUDIT))
+                    n
+                    for n in os.listdir(output)
+                    if n != art.OUTPUT_LINK and os.path.exists(os.path.join(output, n, art.OUTPUT_AUDIT))
                 )
                 if os.path.isdir(output)
                 else []
