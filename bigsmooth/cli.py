@@ -17,6 +17,15 @@ log = logging.getLogger("bigsmooth")
 EPILOG = "exit codes:\n" + "\n".join(f"  {code:>3}  {what}" for code, what in EXIT_CODES.items())
 
 
+SET_HELP = (
+    "override a setting of the config file, validated by the same rules and recorded in the "
+    "provenance (repeatable; e.g. --set input.path=/data/tonight --set solve.lam=3); a value is "
+    'read as TOML (numbers, true/false, [arrays], "strings"), else as a string; relative paths are '
+    "taken from the current directory. BIGSMOOTH_SECTION__KEY=VALUE environment variables do the "
+    "same, and --set wins over them"
+)
+
+
 class _Parser(argparse.ArgumentParser):
     def error(self, message):  # bad usage: sysexits EX_USAGE rather than argparse's 2
         self.print_usage(sys.stderr)
@@ -36,11 +45,15 @@ def build_parser():
     )
     p.add_argument("--version", action="version", version=f"bigsmooth {__version__}")
     p.add_argument("-q", "--quiet", action="store_true", help="log warnings and errors only")
+    p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE", help=SET_HELP)
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     # the logging flag is accepted after the command as well (bigsmooth run -q CONFIG)
     common = _Parser(add_help=False)
     common.add_argument(
         "-q", "--quiet", action="store_true", default=argparse.SUPPRESS, help="log warnings and errors only"
+    )
+    common.add_argument(
+        "--set", action="append", default=argparse.SUPPRESS, metavar="SECTION.KEY=VALUE", help=SET_HELP
     )
 
     r = sub.add_parser(
@@ -491,6 +504,9 @@ def main(argv=None):
         parser.print_help(sys.stderr)
         return EXIT_USAGE
     _setup_logging(args.quiet)
+    from . import config as config_mod
+
+    config_mod.CLI_OVERRIDES[:] = list(getattr(args, "set", None) or [])
     try:
         return {
             "run": cmd_run,

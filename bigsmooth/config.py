@@ -682,7 +682,57 @@ def load_config(path):
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
+    global APPLIED
+    APPLIED = apply_overrides(raw, env_overrides(os.environ) + [(s, "--set") for s in CLI_OVERRIDES])
     return validate(raw, base_dir=os.path.dirname(os.path.abspath(path)))
+
+
+ENV_PREFIX = "BIGSMOOTH_"
+CLI_OVERRIDES = []  # "section.key=value" from the command line (bigsmooth --set), set by the CLI
+APPLIED = []  # the overrides the last load_config applied, for the provenance record
+
+
+def env_overrides(environ):
+    """[("section.key=value", "BIGSMOOTH_SECTION__KEY")] from the environment: variables named
+    BIGSMOOTH_<SECTION>__<KEY> (a double underscore between section and key, case-insensitive)."""
+    out = []
+    for name in sorted(environ):
+        if name.startswith(ENV_PREFIX) and "__" in name[len(ENV_PREFIX) :]:
+            section, key = name[len(ENV_PREFIX) :].lower().split("__", 1)
+            out.append((f"{section}.{key}={environ[name]}", name))
+    return out
+
+
+def _override_value(text):
+    """A TOML value (number, boolean, quoted string, array, inline table), else the text itself
+    as a string (so that paths need no quotes)."""
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def apply_overrides(raw, overrides):
+    """Set each ("section.key=value", source) in ``raw`` (environment first, then --set, so the
+    command line wins); relative paths are taken from the current directory. Returns the applied
+    overrides as strings for the provenance. Unknown sections and keys are refused by the normal
+    validation, which names them."""
+    applied = []
+    for text, source in overrides:
+        name, sep, value = text.partition("=")
+        section, dot, key = name.strip().partition(".")
+        if not sep or not dot or not section or not key:
+            raise ConfigError(f"{source} {text!r} must look like SECTION.KEY=VALUE (e.g. solve.lam=3)")
+        section, key = section.strip(), key.strip()
+        v = _override_value(value.strip())
+        if (section, key) in PATH_KEYS and isinstance(v, str) and v and "://" not in v:
+            v = os.path.abspath(v)
+        sec = raw.setdefault(section, {})
+        if not isinstance(sec, dict):
+            raise ConfigError(f"{source} {text!r}: [{section}] in the config file is not a table")
+        sec[key] = v
+        applied.append(f"{section}.{key}={json.dumps(v)} ({source})")
+    return applied
 
 
 def result_settings(cfg):

@@ -49,6 +49,7 @@ def record(rundir, cfg, fp, version, gates):
         "run_id": manifest["run_id"],
         "config_path": cfg_path,
         "config_file_sha256": cfg_sha,
+        "config_overrides": list(_overrides()),
         "settings_hash": manifest["config_hash"],
         "input_path": cfg["input"]["path"],
         "input_rows": int(fp["rows"]),
@@ -66,6 +67,12 @@ def record(rundir, cfg, fp, version, gates):
         "status": status,
         "failed_gates": failed,
     }
+
+
+def _overrides():
+    from . import config
+
+    return config.APPLIED
 
 
 def _graph_record(rundir):
