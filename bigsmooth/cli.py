@@ -244,6 +244,19 @@ def build_parser():
     df.add_argument("version_a", metavar="VERSION_A", help="the earlier version folder's name")
     df.add_argument("version_b", metavar="VERSION_B", help="the later version folder's name (or 'current')")
     df.add_argument("--json", action="store_true", help="print the record as JSON")
+
+    ck = sub.add_parser(
+        "check",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="check the config and scan the input (the scan stage's checks), no heavy work",
+        description="Validate CONFIG (with any --set / BIGSMOOTH_SECTION__KEY overrides) and run the "
+        "scan stage's checks on the input: columns and types, nulls, NaN, ranges, duplicate ids, "
+        "category counts, the pairs file. Nothing is written to run.dir or the output. Exits with "
+        "the same codes as `bigsmooth run` (0 when the job would start).",
+    )
+    ck.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
     return p
 
 
@@ -494,6 +507,27 @@ def cmd_diff(args):
     return EXIT_OK
 
 
+def cmd_check(args):
+    import tempfile
+
+    from .config import load_config
+    from .pipeline import with_pairs
+    from .rundir import RunDir
+    from .stages import scan
+    from .stages.base import Context
+    from .table import fingerprint
+
+    cfg = load_config(args.config)
+    fp = with_pairs(fingerprint(cfg["input"]["path"]), cfg["input"]["pairs"])
+    with tempfile.TemporaryDirectory(prefix="bigsmooth-check-") as tmp:
+        res = scan.run(Context(RunDir(tmp), cfg, fp, "check"))
+    print(
+        f"config {args.config}: valid; input {cfg['input']['path']}: {res['rows']} rows in {res['files']} "
+        "files, all checks passed"
+    )
+    return EXIT_OK
+
+
 def main(argv=None):
     os.environ.setdefault(
         "NUMBA_CACHE_DIR", os.path.join(os.path.expanduser("~"), ".cache", "bigsmooth", "numba")
@@ -517,6 +551,7 @@ def main(argv=None):
             "score": cmd_score,
             "explain": cmd_explain,
             "diff": cmd_diff,
+            "check": cmd_check,
         }[args.command](args)
     except BigsmoothError as exc:
         print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)

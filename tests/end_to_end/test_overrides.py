@@ -79,3 +79,17 @@ def test_bad_overrides_are_config_errors(tmp_path):
     res = cli("run", str(cfg), env={"BIGSMOOTH_GRAPH__NEIGHBOURS": "0"})
     assert res.returncode == EXIT_CONFIG and "graph.neighbours" in res.stderr
     assert not (tmp_path / "runs").exists() or not list((tmp_path / "runs").iterdir())
+
+
+def test_check_validates_without_writing(tmp_path):
+    cfg = _write_case(tmp_path, _small_table(300))
+    res = cli("check", str(cfg))
+    assert res.returncode == EXIT_OK and "300 rows in 1 files, all checks passed" in res.stdout, res.stderr
+    assert not (tmp_path / "runs").exists() and not (tmp_path / "out").exists()
+    bad = _small_table(300)
+    bad["sustain_score"] = pa.array([float("nan")] + list(bad["sustain_score"].to_pylist())[1:])
+    pq.write_table(pa.table(bad), tmp_path / "in" / "part-0.parquet")
+    res = cli("check", str(cfg))
+    run = cli("run", str(cfg))
+    assert res.returncode == run.returncode == 65 and "1 rows with NaN or infinite score" in res.stderr
+    assert cli("check", str(cfg), "--set", "graph.neighbours=0").returncode == EXIT_CONFIG
