@@ -1,15 +1,15 @@
 # Set-up and entry points. `make demo` and `make test` work on a fresh clone: each creates the
-# virtual environment in .venv (pinned versions from pyproject.toml) when it is missing or stale.
+# virtual environment in .venv (the exact tested versions of constraints.txt) when it is missing or stale.
 PYTHON ?= python3
 VENV ?= .venv
 BIN := $(VENV)/bin
 
 .PHONY: demo test test-slow lint install clean
 
-$(VENV)/.installed: pyproject.toml
+$(VENV)/.installed: pyproject.toml constraints.txt
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e '.[test]'
+	$(BIN)/python -m pip install --quiet -c constraints.txt -e '.[test]'
 	touch $@
 
 install: $(VENV)/.installed
