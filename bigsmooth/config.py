@@ -405,8 +405,8 @@ RULES = {
     "run": {
         "dir": Rule(
             "str",
-            default="runs",
-            doc="folder holding one run directory per (config, input) pair",
+            default="",
+            doc="folder holding one run directory per (config, input) pair; relative to the config file. Not given: $STATE_DIRECTORY/runs under a systemd service with StateDirectory= (e.g. /var/lib/bigsmooth/runs), else $XDG_STATE_HOME/bigsmooth/runs (~/.local/state/bigsmooth/runs), never the config's own folder (a config in /etc would put runs under /etc)",
             affects_result=False,
         ),
         "seed": Rule(
@@ -529,6 +529,18 @@ def _check(section, key, rule, value):
     raise AssertionError(k)
 
 
+def default_run_dir(environ=None):
+    """run.dir when the config does not give one: the service's state directory (systemd sets
+    $STATE_DIRECTORY for StateDirectory=), else $XDG_STATE_HOME/bigsmooth (XDG Base Directory
+    specification; default ~/.local/state), with runs/ inside."""
+    env = os.environ if environ is None else environ
+    state = env.get("STATE_DIRECTORY", "").split(":")[0]
+    if state:
+        return os.path.join(state, "runs")
+    xdg = env.get("XDG_STATE_HOME") or os.path.join(os.path.expanduser("~"), ".local", "state")
+    return os.path.join(xdg, "bigsmooth", "runs")
+
+
 def validate(raw, base_dir="."):
     """Check a raw config dict against :data:`RULES`; return the filled config."""
     if not isinstance(raw, dict):
@@ -567,6 +579,8 @@ def validate(raw, base_dir="."):
                 raise ConfigError(f"{section}.{key} is required ({rule.doc})")
             else:
                 value = json.loads(json.dumps(rule.default))
+            if (section, key) == ("run", "dir") and not value:
+                value = default_run_dir()
             if (section, key) in PATH_KEYS and not value:
                 pass  # an optional path left empty
             elif (

@@ -93,3 +93,28 @@ def test_check_validates_without_writing(tmp_path):
     run = cli("run", str(cfg))
     assert res.returncode == run.returncode == 65 and "1 rows with NaN or infinite score" in res.stderr
     assert cli("check", str(cfg), "--set", "graph.neighbours=0").returncode == EXIT_CONFIG
+
+
+def test_run_dir_defaults_to_the_state_directory_not_the_config_folder(tmp_path):
+    from bigsmooth.config import default_run_dir
+
+    # the XDG Base Directory specification's default, and systemd's StateDirectory= variable
+    assert default_run_dir({"HOME": "/home/x"}).endswith("/.local/state/bigsmooth/runs")
+    assert default_run_dir({"XDG_STATE_HOME": "/s"}) == "/s/bigsmooth/runs"
+    assert (
+        default_run_dir({"STATE_DIRECTORY": "/var/lib/bigsmooth", "XDG_STATE_HOME": "/s"})
+        == "/var/lib/bigsmooth/runs"
+    )
+    cfg = _write_case(tmp_path, _small_table(300))
+    cfg.write_text(cfg.read_text().replace('dir = "runs"\n', ""))
+    res = cli(
+        "-q",
+        "run",
+        str(cfg),
+        "--set",
+        "gates.max_auc_drop=1",
+        env={"XDG_STATE_HOME": str(tmp_path / "state")},
+    )
+    assert res.returncode == EXIT_OK, res.stderr
+    assert not (tmp_path / "runs").exists()
+    assert len(list((tmp_path / "state" / "bigsmooth" / "runs").iterdir())) == 1
