@@ -521,6 +521,7 @@ def night_over_night(cfg, fp, version, y, f, fig):
     :mod:`bigsmooth.nightly`), or None when nothing was published before (or the current version is
     this run's own). Tonight's ids come from the input files by row number; its adjusted scores are
     clipped to the score range as they will be published."""
+    import duckdb
     import pyarrow as pa
 
     from .. import nightly
@@ -550,12 +551,22 @@ def night_over_night(cfg, fp, version, y, f, fig):
         )
         rec = nightly.compare(
             con,
-            nightly.version_select(folder, inp["id"], first, cfg["output"]["suffix"]),
+            nightly.version_select(
+                folder,
+                inp["id"],
+                first,
+                last_audit.get("provenance", {}).get("adjusted_suffix", cfg["output"]["suffix"]),
+            ),
             tonight,
             nightly.cutoffs(last_audit, first),
             (fig["before"]["cutoff"], fig["after"]["cutoff"]),
             params=src.params,
         )
+    except duckdb.Error as exc:  # e.g. last night's columns were named otherwise: no comparison
+        log.warning(
+            "night over night: %s cannot be compared with tonight: %s", last, str(exc).splitlines()[0]
+        )
+        return None
     finally:
         con.close()
     rec.update({"last_version": last, "score": first})
