@@ -24,7 +24,6 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import scipy.sparse as sp
 
@@ -38,7 +37,7 @@ from .kernels import partition
 from .parallel import one_blas_thread
 from .rundir import RunDir, hold_lock
 from .stages import scan
-from .stages.embed import MISSING_LEVEL, _floats, numeric_columns
+from .stages.embed import _floats, encoded
 from .table import Source, connect_budget, fingerprint, quote
 
 log = logging.getLogger("bigsmooth.score")
@@ -257,20 +256,8 @@ def night_rows_of(manifest, version_dir, id_col, ids, memory_mb):
 
 def features(table, inp, levels):
     """(X (b, p) encoded as the night encoded its rows, unseen (b,) count of category levels the
-    night never saw): see the module docstring for the rule."""
-    b = table.num_rows
-    parts = [np.column_stack(numeric_columns(table, inp))] if inp["numeric_features"] else []
-    unseen = np.zeros(b, dtype=np.int64)
-    for c in inp["categorical_features"]:
-        lv = [v for v, _ in levels[c]]
-        arr = pc.fill_null(table.column(c).cast(pa.string()), MISSING_LEVEL)
-        codes = pc.index_in(arr, value_set=pa.array(lv, pa.string())).to_numpy(zero_copy_only=False)
-        known = ~np.isnan(codes.astype(np.float64))
-        oh = np.zeros((b, len(lv)))
-        oh[np.nonzero(known)[0], codes[known].astype(np.int64)] = 1.0
-        unseen += ~known
-        parts.append(oh)
-    return np.hstack(parts), unseen
+    night never saw): see the module docstring for the rule (:func:`stages.embed.encoded`)."""
+    return encoded(table, inp, levels)
 
 
 def neighbours(night, Q, centres, ptr, rows, E_cells, exclude, probe=PROBE, rounds=ROUNDS):

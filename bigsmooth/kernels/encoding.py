@@ -18,14 +18,17 @@ def feature_names(numeric, categorical, levels):
 
 def encode(numeric, codes, sizes, rows):
     """Feature matrix (rows, p): the numeric columns as they are, then each categorical column
-    one-hot over its ``sizes[j]`` levels (``codes[j]`` in 0..sizes[j]-1).
+    one-hot over its ``sizes[j]`` levels (``codes[j]`` in 0..sizes[j]-1; -1 for a level outside
+    them, which gets no indicator: all of the feature's columns 0).
 
-    Reference: sklearn's OneHotEncoder with the same categories beside the numeric columns
-    (tests/kernels/test_encoding.py)."""
+    Reference: sklearn's OneHotEncoder with the same categories (handle_unknown="ignore") beside
+    the numeric columns (tests/kernels/test_encoding.py)."""
     parts = [np.column_stack([np.asarray(v, dtype=np.float64) for v in numeric])] if numeric else []
     for cc, size in zip(codes, sizes):
+        cc = np.asarray(cc)
+        known = np.nonzero(cc >= 0)[0]
         oh = np.zeros((rows, size))
-        oh[np.arange(rows), cc] = 1.0
+        oh[known, cc[known]] = 1.0
         parts.append(oh)
     return np.hstack(parts)
 
@@ -35,6 +38,8 @@ def indicators(codes, sizes, rows):
     (``codes[j]`` the level codes of attribute j)."""
     if not codes:
         return sp.csr_matrix((rows, 0))
+    if any(np.any(np.asarray(cc) < 0) for cc in codes):
+        raise ValueError("a protected attribute has a level the scan did not count (did the input change?)")
     offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     cols = np.concatenate([np.asarray(cc, dtype=np.int64) + off for cc, off in zip(codes, offsets)])
     r = np.tile(np.arange(rows), len(codes))

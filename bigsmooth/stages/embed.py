@@ -68,10 +68,11 @@ def numeric_columns(batch, inp):
 
 
 def _codes(batch, col, lv):
-    """Level codes of an Arrow column (null as the missing level) in the order of ``lv``."""
+    """Level codes of an Arrow column (null as the missing level) in the order of ``lv``; -1 for a
+    value not in ``lv`` (never in the table the levels were counted on; late rows can have one)."""
     arr = batch.column(col)
     arr = pc.fill_null(arr.cast(pa.string()), MISSING_LEVEL)
-    codes = pc.index_in(arr, value_set=pa.array(lv, pa.string()))
+    codes = pc.fill_null(pc.index_in(arr, value_set=pa.array(lv, pa.string())), -1)
     return np.asarray(codes.to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
@@ -79,16 +80,22 @@ def _floats(batch, col):
     return batch.column(col).to_numpy(zero_copy_only=False).astype(np.float64)
 
 
-def _features(batch, inp, levels):
-    """Numeric features plus one-hot categoricals for a batch: ndarray (b, p)."""
+def encoded(batch, inp, levels):
+    """Numeric features plus one-hot categoricals for a batch: (ndarray (b, p), per row the count
+    of category values not among ``levels``, which get no indicator)."""
     cats = inp["categorical_features"]
     lvs = [[v for v, _ in levels[c]] for c in cats]
-    return encoding.encode(
-        numeric_columns(batch, inp),
-        [_codes(batch, c, lv) for c, lv in zip(cats, lvs)],
-        [len(lv) for lv in lvs],
-        batch.num_rows,
-    )
+    codes = [_codes(batch, c, lv) for c, lv in zip(cats, lvs)]
+    X = encoding.encode(numeric_columns(batch, inp), codes, [len(lv) for lv in lvs], batch.num_rows)
+    unseen = np.zeros(batch.num_rows, dtype=np.int64)
+    for cc in codes:
+        unseen += cc < 0
+    return X, unseen
+
+
+def _features(batch, inp, levels):
+    """Numeric features plus one-hot categoricals for a batch: ndarray (b, p)."""
+    return encoded(batch, inp, levels)[0]
 
 
 def other_columns(inp):

@@ -18,6 +18,22 @@ def test_encode_equals_numeric_columns_beside_sklearn_one_hot(rng):
     assert encoding.encode([], codes, sizes, rows).shape == (rows, 8)
 
 
+def test_an_unknown_level_gets_no_indicator_as_in_sklearn(rng):
+    # reference: OneHotEncoder(handle_unknown="ignore") encodes an unknown category as all zeros
+    rows, sizes = 200, [3, 4]
+    codes = [rng.integers(0, s, rows) for s in sizes]
+    raw = [c.copy() for c in codes]
+    codes[0][[5, 17]] = -1
+    raw[0][[5, 17]] = 99  # a level the encoder was not given
+    enc = OneHotEncoder(
+        categories=[list(range(s)) for s in sizes], sparse_output=False, handle_unknown="ignore"
+    )
+    want = enc.fit(np.column_stack([np.arange(rows) % 3, np.arange(rows) % 4])).transform(
+        np.column_stack(raw)
+    )
+    np.testing.assert_array_equal(encoding.encode([], codes, sizes, rows), want)
+
+
 def test_indicators_equal_sklearn_one_hot_of_every_attribute(rng):
     rows, sizes = 300, [2, 4, 3]
     codes = [rng.integers(0, s, rows) for s in sizes]
