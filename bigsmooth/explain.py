@@ -70,7 +70,7 @@ def explain(config, id_text, run_dir=None, top=TOP):
     from . import atomic
     from .config import load_config
     from .errors import BigsmoothError
-    from .late import find_run, night_rows_of
+    from .late import find_run, night_rows_of, version_files
     from .table import ids_at_rows
 
     cfg = load_config(config)
@@ -95,12 +95,7 @@ def explain(config, id_text, run_dir=None, top=TOP):
         raise BigsmoothError(f"id {id_text!r} is not in version {version} ({scan['rows']} rows)")
     row = rows[key]
     rec = breakdown(rd, row, s["solve"]["lam"], s["solve"]["laplacian"], top)
-    files = {
-        "files": [
-            {"path": os.path.join(version_dir, e["rel"]), "offset": e["offset"], "rows": e["rows"]}
-            for e in m["input"]["files"]
-        ]
-    }
+    files = {"files": version_files(m, version_dir)}
     ids = ids_at_rows(files, inp["id"], [h["row"] for h in rec["heaviest"]]) if rec["heaviest"] else []
     for h, v in zip(rec["heaviest"], ids):
         h["id"] = v

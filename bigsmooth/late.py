@@ -228,14 +228,19 @@ def read_late(fp, inp, memory_mb):
         con.close()
 
 
-def night_rows_of(manifest, version_dir, id_col, ids, memory_mb):
-    """{id: night row} for those of ``ids`` the night (the run of ``manifest``) scored, read from the
-    published version's files (which hold the night's rows in its input order)."""
-    files = [
+def version_files(manifest, version_dir):
+    """The published version's files as a fingerprint's file list (path, offset, rows): they hold
+    the run's rows in its input order, at the input files' relative paths."""
+    return [
         {"path": os.path.join(version_dir, e["rel"]), "offset": e["offset"], "rows": e["rows"]}
         for e in manifest["input"]["files"]
-        if e["rows"]
     ]
+
+
+def night_rows_of(manifest, version_dir, id_col, ids, memory_mb):
+    """{id: night row} for those of ``ids`` the night (the run of ``manifest``) scored, read from the
+    published version's files (:func:`version_files`)."""
+    files = [f for f in version_files(manifest, version_dir) if f["rows"]]
     missing = [f["path"] for f in files if not os.path.exists(f["path"])]
     if missing:
         raise InputMissingError(
@@ -279,13 +284,13 @@ def neighbours(night, Q, centres, ptr, rows, E_cells, exclude, probe=PROBE, roun
     ind, dist = lk.best(trip, len(Q), k)
     measured = [trip]
     for _ in range(rounds):
-        seen = lk.keys(lk._cat(measured), night.n)
+        seen = lk.keys(lk.concat(measured), night.n)
         new = drop(lk.expand(Q, ind, lambda r: night.nb[r], lambda r: night.E[r], seen, night.n))
         if not len(new[0]):
             break
         measured.append(new)
-        ind, dist = lk.best(lk._cat([lk.lists(ind, dist), new]), len(Q), k)
-    return ind, dist, lk._cat(measured)
+        ind, dist = lk.best(lk.concat([lk.lists(ind, dist), new]), len(Q), k)
+    return ind, dist, lk.concat(measured)
 
 
 def score_batch(night, Q, y, nind, ndist, trip, far):

@@ -146,7 +146,7 @@ def search(Q, cells_of, read_cell, k):
             sel = np.broadcast_to(np.arange(len(rows)), (len(qs), len(rows)))
         d = _direct(Q[qs][:, None, :], X[sel].astype(np.float64))
         out.append((np.repeat(qs, take), rows[sel].ravel(), d.ravel()))
-    return _cat(out)
+    return concat(out)
 
 
 def expand(Q, ind, neighbours_of, rows_of, seen, n):
@@ -167,7 +167,7 @@ def expand(Q, ind, neighbours_of, rows_of, seen, n):
         at = np.minimum(np.searchsorted(seen, key), len(seen) - 1)
         key = key[seen[at] != key]
     if not len(key):
-        return _cat([])
+        return concat([])
     cq, cj = key // (n + 1), key % (n + 1)
     uj, inv = np.unique(cj, return_inverse=True)
     X = np.asarray(rows_of(uj), dtype=np.float64)[inv]
@@ -219,7 +219,8 @@ def reverse_edges(trip, ind, kth):
     return q[key], j[key], d[key]
 
 
-def _cat(parts):
+def concat(parts):
+    """Triplets (late row, night row, distance) of several parts, one after another."""
     if not parts:
         return np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0)
     return tuple(np.concatenate(x) for x in zip(*parts))

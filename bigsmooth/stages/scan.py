@@ -362,7 +362,8 @@ def run(ctx):
             f"Set graph.neighbours to at most {n - 1}."
         )
 
-    total, problems = row_problems(con, src, cols, inp, n, cfg["run"]["memory_mb"])
+    lengths = list_lengths(con, src, cols, inp)
+    total, problems = row_problems(con, src, cols, inp, n, cfg["run"]["memory_mb"], lengths)
     if inp["pairs"]:
         problems += _check_pairs(con, inp["pairs"], inp["id"], cols[inp["id"]])
     levels = {}
@@ -397,7 +398,7 @@ def run(ctx):
         "files": len(fp["files"]),
         "columns": cols,
         "levels": levels,
-        "list_lengths": list_lengths(con, src, cols, inp),
+        "list_lengths": lengths,
         "id_digests": digests,
     }
     art.SCAN_INFO.save(rundir, info)
