@@ -91,6 +91,12 @@ RULES = {
             hi=1000,
             doc="keep this many principal components of the fair space (0 = keep all)",
         ),
+        "fair_space": Rule(
+            "str",
+            default="fit",
+            choices=("fit", "previous"),
+            doc="\"fit\" learns the fair space from tonight's rows; \"previous\" keeps the fair space (mean, scale and projection) of the run behind the output's current version, so that a changed population does not move every row's distances and decisions flip less night over night (fitted when there is no earlier version or its features differ; the audit still measures leakage on tonight's rows)",
+        ),
         "pair_directions": Rule(
             "int",
             default=0,

@@ -284,6 +284,51 @@ def with_pairs(fp, pairs):
     return fp | {"hash": hashlib.sha256((fp["hash"] + ":pairs:" + mark).encode()).hexdigest(), "pairs": mark}
 
 
+def with_kept_space(fp, cfg, chash):
+    """embed.fair_space = "previous": the fingerprint with the run whose fair space is kept folded into
+    its hash (``fair_space_from``: run id, version and the run that first fitted it), so that a new
+    earlier version is a new run. When the output's current version is this same job on this same
+    input (a rerun or a resume after publishing), its own source is kept again and the run id does
+    not change. No usable earlier run: nothing kept (the embed stage fits and says why)."""
+    if cfg["embed"]["fair_space"] != "previous":
+        return fp
+    import hashlib
+
+    base = fp | {"hash_before_space": fp["hash"], "fair_space_from": None}
+    pointer = os.path.join(cfg["output"]["path"], artifacts.OUTPUT_POINTER)
+    if not os.path.exists(pointer):
+        log.info('embed.fair_space = "previous": no published version yet; the fair space is fitted tonight')
+        return base
+    cur = read_json(pointer)
+    src = os.path.join(cfg["run"]["dir"], cur["run_id"])
+    try:
+        m = read_json(os.path.join(src, artifacts.MANIFEST))
+    except (OSError, ValueError):
+        log.warning(
+            'embed.fair_space = "previous": the run %s behind the current version %s is gone; the fair '
+            "space is fitted tonight",
+            src,
+            cur["version"],
+        )
+        return base
+    prior = m["input"].get("fair_space_from")
+    if m.get("config_hash") == chash and m["input"].get("hash_before_space") == fp["hash"]:
+        source = prior  # the current version is this job on this input: keep what it kept
+    elif not artifacts.EMBED_INFO.exists(RunDir(src)):
+        log.warning('embed.fair_space = "previous": the run %s has no fair space; fitted tonight', src)
+        source = None
+    else:
+        source = {
+            "run_id": cur["run_id"],
+            "version": cur["version"],
+            "origin": prior["origin"] if prior else cur["run_id"],
+        }
+    if source is None:
+        return base
+    mark = hashlib.sha256((fp["hash"] + ":fair_space:" + source["run_id"]).encode()).hexdigest()
+    return base | {"hash": mark, "fair_space_from": source}
+
+
 def run_job(config_path, fresh=False, upto=None, then=None):
     """Run (or resume) the job described by a config file.
 
@@ -301,6 +346,7 @@ def run_job(config_path, fresh=False, upto=None, then=None):
     _allow_numba_threads(cfg["graph"]["index_threads"])
     fp = with_pairs(fingerprint(cfg["input"]["path"]), cfg["input"]["pairs"])
     chash = config_mod.config_hash(cfg)
+    fp = with_kept_space(fp, cfg, chash)
     rid = run_id(chash, fp["hash"])
     rd = RunDir(os.path.join(cfg["run"]["dir"], rid))
     with rd.lock():

@@ -62,6 +62,7 @@ def record(rundir, cfg, fp, version, gates):
         "laplacian": cfg["solve"]["laplacian"],
         "neighbours": cfg["graph"]["neighbours"],
         **_graph_record(rundir),
+        "fair_space_from": _space_record(rundir),
         "output_path": cfg["output"]["path"],
         "output_version": version if status == "published" else None,
         "status": status,
@@ -73,6 +74,14 @@ def _overrides():
     from . import config
 
     return config.APPLIED
+
+
+def _space_record(rundir):
+    """Where the fair space came from: None when fitted on this run's rows, else the run, version
+    and first fitting run it was kept from (embed.fair_space = "previous")."""
+    from . import artifacts as art
+
+    return art.EMBED_INFO.load(rundir).get("fair_space_from") if art.EMBED_INFO.exists(rundir) else None
 
 
 def _graph_record(rundir):

@@ -150,6 +150,7 @@ SPECS = (
             "embed.remove_sensitive",
             "embed.components",
             "embed.pair_directions",
+            "embed.fair_space",
             "embed.feature_weights",
             "embed.probe_rows",
             "run.seed",

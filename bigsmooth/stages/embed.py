@@ -20,7 +20,7 @@ import pyarrow.compute as pc
 
 from .. import artifacts as art
 from .. import atomic, faults
-from ..errors import DataError
+from ..errors import DataError, examples
 from ..kernels import encoding, fairspace
 from ..kernels.metrics import roc_auc
 from ..progress import Progress
@@ -259,6 +259,46 @@ def _pair_diffs(con, fp, sql, inp, levels):
     return X[np.searchsorted(got, ra)] - X[np.searchsorted(got, rb)]
 
 
+def _kept_space(run_root, source, names, fitted):
+    """(fair space, source) for embed.fair_space = "previous": the space saved by the source run when
+    its features are tonight's (same names in the same order), else tonight's ``fitted`` space and
+    None, with a warning that says why."""
+    info_path = art.EMBED_INFO.path(os.path.join(run_root, source["run_id"]))
+    try:
+        info = atomic.read_json(info_path)
+    except (OSError, ValueError) as exc:
+        log.warning("fair space: cannot read %s (%s); fitted on tonight's rows instead", info_path, exc)
+        return fitted, None
+    if info["features"] != names:
+        added = [f for f in names if f not in info["features"]]
+        gone = [f for f in info["features"] if f not in names]
+        log.warning(
+            "fair space: run %s encoded other features (%d new here, e.g. %s; %d gone, e.g. %s); "
+            "fitted on tonight's rows instead",
+            source["run_id"],
+            len(added),
+            examples(added, 3) or "-",
+            len(gone),
+            examples(gone, 3) or "-",
+        )
+        return fitted, None
+    log.info(
+        "fair space: kept from run %s (version %s; first fitted by run %s), not fitted tonight",
+        source["run_id"],
+        source["version"],
+        source["origin"],
+    )
+    space = fairspace.FairSpace(
+        mean=np.asarray(info["mean"], dtype=np.float64),
+        scale=np.asarray(info["scale"], dtype=np.float64),
+        transform=np.asarray(info["transform"], dtype=np.float64),
+        removed=info["removed_dimensions"],
+        constant=np.array([f in info["constant_features"] for f in names], dtype=bool),
+        explained=np.zeros(0),
+    )
+    return space, source
+
+
 def run(ctx):
     """The embed stage (see the module docstring). Each pass is one task per input file
     (:func:`statistics_task`, :func:`embedding_task`); the driver adds the files' statistics in
@@ -345,6 +385,9 @@ def run(ctx):
         pair_diffs=diffs,
         pair_count=ecfg["pair_directions"],
     )
+    kept = fp.get("fair_space_from")
+    if kept:
+        fs, kept = _kept_space(cfg["run"]["dir"], kept, names, fs)
     if fs.constant.any():
         log.warning(
             "constant features (no information, ignored): %s", ", ".join(np.array(names)[fs.constant][:10])
@@ -413,6 +456,7 @@ def run(ctx):
         "constant_features": list(np.array(names)[fs.constant]),
         "leakage": leakage,
         "probe_rows": len(sample),
+        "fair_space_from": kept,
         "mean": fs.mean,
         "scale": fs.scale,
         "transform": fs.transform,
@@ -424,4 +468,5 @@ def run(ctx):
         "dim": dim,
         "removed_dimensions": fs.removed,
         "max_leakage_auc": {c: v["max_fair_space_auc"] for c, v in leakage.items()},
+        "fair_space": f"kept from run {kept['run_id']}" if kept else "fitted",
     }

@@ -169,6 +169,16 @@ def pct(v):
     return f"{100 * v:.2f}%" if v is not None and np.isfinite(v) else "-"
 
 
+def _space_line(prov):
+    kept = prov.get("fair_space_from")
+    if not kept:
+        return "fitted on this night's rows"
+    return (
+        f"kept from the run behind version {kept['version']} (run {kept['run_id']}; first fitted by run "
+        f"{kept['origin']}); leakage is measured on this night's rows"
+    )
+
+
 def _search_line(prov):
     search = prov.get("graph_search") or "not recorded"
     if prov.get("graph_recall") is None:
@@ -314,6 +324,7 @@ def render(report, plots, tune=None, applied_lam=None):
             ["Laplacian", prov["laplacian"]],
             ["neighbours k", prov["neighbours"]],
             ["neighbour search", _search_line(prov)],
+            ["fair space", _space_line(prov)],
         ]
         parts += [
             "<section id='provenance'><h2>Where these figures come from</h2>",
