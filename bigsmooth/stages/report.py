@@ -198,8 +198,9 @@ def _table(header, rows, cls=""):
     return f"<table class='{cls}'><tr>{h}</tr>{body}</table>"
 
 
-def _night_over_night(nn):
-    """The section comparing tonight with the version published before (bigsmooth.nightly)."""
+def _night_over_night(nn, kept):
+    """The section comparing tonight with the version published before (bigsmooth.nightly); ``kept``:
+    the fair space was kept from an earlier run (embed.fair_space = "previous")."""
     e = html.escape
 
     def pct(v):
@@ -230,7 +231,14 @@ def _night_over_night(nn):
     more = (
         "<p><b>The smoothing made decisions flip more often than the raw scores did.</b> Rows whose own "
         "score did not move can flip when their neighbourhood changes (rows arriving or leaving, "
-        "neighbours re-scored, the fair space learned again on a changed population).</p>"
+        "neighbours re-scored, the fair space learned again on a changed population)."
+        + (
+            ""
+            if kept
+            else ' The fair space was fitted tonight: <code>embed.fair_space = "previous"</code> keeps '
+            "the space of the version before and removes most such flips (README, night over night)."
+        )
+        + "</p>"
         if nn["rows_in_both"] and nn["adjusted_flips"] > nn["raw_flips"]
         else ""
     )
@@ -554,7 +562,7 @@ def render(report, plots, tune=None, applied_lam=None):
     parts += [_caution(FLIP_CAUTION), "</section>"]
     nn = report.get("night_over_night")
     if nn:
-        parts.append(_night_over_night(nn))
+        parts.append(_night_over_night(nn, bool((report.get("provenance") or {}).get("fair_space_from"))))
 
     sv = report.get("solver", {})
     if sv:

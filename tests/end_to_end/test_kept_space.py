@@ -78,6 +78,7 @@ def test_the_second_night_keeps_the_first_nights_space(two_nights):
     assert audit["provenance"]["fair_space_from"]["run_id"] == night1.name
     report = next((base / "output").glob(f"*-{night2.name[:8]}/_report.html")).read_text()
     assert "kept from the run behind version" in report
+    assert "The fair space was fitted tonight" not in report
     assert "fair space: kept from run " + night1.name in second.stderr
 
 

@@ -85,6 +85,9 @@ def test_second_night_audit_compares_with_the_first(two_nights):
     assert first["night_over_night"] is None
     page = (base / "output" / versions[1] / "_report.html").read_text()
     assert "Tonight against last night" in page
+    # more adjusted than raw flips with the space fitted tonight: the page says so and names the setting
+    hint = 'The fair space was fitted tonight: <code>embed.fair_space = "previous"</code>'
+    assert (hint in page) == (ref["adjusted_flips"] > ref["raw_flips"])
 
 
 def test_diff_command_matches_numpy(two_nights, tmp_path):
