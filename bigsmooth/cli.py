@@ -5,11 +5,11 @@ import json
 import logging
 import os
 import sys
-import time
 import traceback
 
 from . import __version__
 from . import artifacts as art
+from . import logs
 from .errors import EXIT_CODES, EXIT_OK, EXIT_SOFTWARE, EXIT_USAGE, BigsmoothError
 
 log = logging.getLogger("bigsmooth")
@@ -24,6 +24,13 @@ SET_HELP = (
     "taken from the current directory. BIGSMOOTH_SECTION__KEY=VALUE environment variables do the "
     "same, and --set wins over them"
 )
+
+
+LOG_FORMAT_HELP = (
+    "text (default): one line a record for people; json: one JSON object a line with time, level, "
+    "logger, run_id, stage, event and the event's fields (README, Logs)"
+)
+LOG_LEVEL_HELP = "the least important records logged (default info; -q is warning)"
 
 
 class _Parser(argparse.ArgumentParser):
@@ -45,6 +52,8 @@ def build_parser():
     )
     p.add_argument("--version", action="version", version=f"bigsmooth {__version__}")
     p.add_argument("-q", "--quiet", action="store_true", help="log warnings and errors only")
+    p.add_argument("--log-format", choices=logs.FORMATS, default="text", help=LOG_FORMAT_HELP)
+    p.add_argument("--log-level", choices=logs.LEVELS, default=None, help=LOG_LEVEL_HELP)
     p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE", help=SET_HELP)
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     # the logging flag is accepted after the command as well (bigsmooth run -q CONFIG)
@@ -52,6 +61,8 @@ def build_parser():
     common.add_argument(
         "-q", "--quiet", action="store_true", default=argparse.SUPPRESS, help="log warnings and errors only"
     )
+    common.add_argument("--log-format", choices=logs.FORMATS, default=argparse.SUPPRESS, help=LOG_FORMAT_HELP)
+    common.add_argument("--log-level", choices=logs.LEVELS, default=argparse.SUPPRESS, help=LOG_LEVEL_HELP)
     common.add_argument(
         "--set", action="append", default=argparse.SUPPRESS, metavar="SECTION.KEY=VALUE", help=SET_HELP
     )
@@ -70,6 +81,13 @@ def build_parser():
         "scan, embed, graph and order outputs (hard links in run.dir).",
     )
     r.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
+    r.add_argument(
+        "--json",
+        action="store_true",
+        help="print a machine-readable result on standard output instead of the summary (also when "
+        "the run fails or is held: status, exit code, run id, output version, gates, headline "
+        "figures; schema bigsmooth.run-result/1 in README)",
+    )
     r.add_argument(
         "--fresh",
         action="store_true",
@@ -260,15 +278,9 @@ def build_parser():
     return p
 
 
-def _setup_logging(quiet):
-    handler = logging.StreamHandler(sys.stderr)
-    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s", "%Y-%m-%dT%H:%M:%SZ")
-    fmt.converter = time.gmtime
-    handler.setFormatter(fmt)
-    root = logging.getLogger("bigsmooth")
-    root.handlers[:] = [handler]
-    root.setLevel(logging.WARNING if quiet else logging.INFO)
-    root.propagate = False
+def _setup_logging(args):
+    level = args.log_level or ("warning" if args.quiet else "info")
+    logs.setup(args.log_format, level)
 
 
 def _print_result(res):
@@ -289,10 +301,30 @@ def _print_result(res):
 
 
 def cmd_run(args):
+    from .outcome import run_result, summary_line
     from .pipeline import run_job
 
-    _print_result(run_job(args.config, fresh=args.fresh))
+    try:
+        res = run_job(args.config, fresh=args.fresh)
+    except Exception as exc:
+        code = exit_code_of(exc)
+        rec = run_result(exc=exc, exit_code=code)
+        logs.event(log, "run_finished", summary_line(rec), level=logging.ERROR, **_fields(rec))
+        if args.json:
+            print(json.dumps(rec, indent=2))
+        raise
+    rec = run_result(res)
+    logs.event(log, "run_finished", summary_line(rec), **_fields(rec))
+    if args.json:
+        print(json.dumps(rec, indent=2))
+    else:
+        _print_result(res)
     return EXIT_OK
+
+
+def _fields(rec):
+    """The result record as log fields (without the keys every log line has already)."""
+    return {k: v for k, v in rec.items() if k not in ("run_id",)}
 
 
 def cmd_demo(args):
@@ -537,7 +569,7 @@ def main(argv=None):
     if not args.command:
         parser.print_help(sys.stderr)
         return EXIT_USAGE
-    _setup_logging(args.quiet)
+    _setup_logging(args)
     from . import config as config_mod
 
     config_mod.CLI_OVERRIDES[:] = list(getattr(args, "set", None) or [])
@@ -554,8 +586,12 @@ def main(argv=None):
             "check": cmd_check,
         }[args.command](args)
     except BigsmoothError as exc:
-        print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)
-        return exc.exit_code if exc.exit_code != EXIT_SOFTWARE else EXIT_USAGE
+        code = exit_code_of(exc)
+        if args.log_format == "json":
+            logs.event(log, "error", str(exc), level=logging.ERROR, kind=exc.kind, exit_code=code)
+        else:
+            print(f"bigsmooth: {exc.kind}: {exc}", file=sys.stderr)
+        return code
     except BrokenPipeError:
         # the reader of our standard output went away (e.g. `bigsmooth status RUN | head -1`): not an
         # error of ours; keep Python from complaining again when it flushes at exit
@@ -563,9 +599,32 @@ def main(argv=None):
         os.dup2(devnull, sys.stdout.fileno())
         return EXIT_OK
     except KeyboardInterrupt:
-        print("bigsmooth: interrupted; run the same command again to resume", file=sys.stderr)
+        _say(args, "interrupted", "interrupted; run the same command again to resume", 130)
         return 130
     except Exception:
-        traceback.print_exc()
-        print("bigsmooth: internal error (a bug); the run can be resumed after it is fixed", file=sys.stderr)
+        if args.log_format == "json":
+            log.error(
+                "internal error (a bug); the run can be resumed after it is fixed",
+                exc_info=True,
+                extra={"event": "error", "fields": {"kind": "internal error", "exit_code": EXIT_SOFTWARE}},
+            )
+        else:
+            traceback.print_exc()
+            print(
+                "bigsmooth: internal error (a bug); the run can be resumed after it is fixed", file=sys.stderr
+            )
         return EXIT_SOFTWARE
+
+
+def _say(args, kind, message, code):
+    if args.log_format == "json":
+        logs.event(log, "error", message, level=logging.ERROR, kind=kind, exit_code=code)
+    else:
+        print(f"bigsmooth: {message}", file=sys.stderr)
+
+
+def exit_code_of(exc):
+    """The process exit code for an error (a BigsmoothError's own; 70 for anything else)."""
+    if not isinstance(exc, BigsmoothError):
+        return EXIT_SOFTWARE
+    return exc.exit_code if exc.exit_code != EXIT_SOFTWARE else EXIT_USAGE

@@ -1,5 +1,6 @@
 """The nightly job: create or resume a run and take it through every stage in order."""
 
+import contextlib
 import errno
 import logging
 import gc
@@ -9,10 +10,11 @@ import resource
 import shutil
 import time
 
-from . import artifacts, parallel
+from . import artifacts, logs, parallel
 from . import config as config_mod
 from .atomic import read_json
-from .errors import DataError, GateError, InputMissingError, OutputError
+from .progress import Heartbeat
+from .errors import BigsmoothError, DataError, GateError, InputMissingError, OutputError
 from .rundir import STAGES, RunDir, find_stage, hold_lock, relative_roots, run_id
 from .stages import base as stage_base
 from .table import changed_files, fingerprint, portable, unreadable_files, verify_unchanged
@@ -208,7 +210,7 @@ def run_stages(ctx, upto=None, fresh=False):
         if rd.is_done(name):
             missing = stage_base.outputs_missing(name, rd)
             if not missing:
-                log.info("stage %s already done; skipping", name)
+                logs.event(log, "stage_skipped", "stage %s already done; skipping", name, stage=name)
                 continue
             log.warning(
                 "stage %s is marked done but %s are missing; doing it again", name, ", ".join(missing)
@@ -216,14 +218,18 @@ def run_stages(ctx, upto=None, fresh=False):
         if stage_base.shareable(name, cfg) and not fresh:
             source = find_stage(cfg["run"]["dir"], name, ids[name], exclude=rd.path)
             if source and rd.adopt(name, source, ids[name]):
-                log.info(
+                logs.event(
+                    log,
+                    "stage_reused",
                     "stage %s: reusing the outputs of run %s (same input and %s settings)",
                     name,
                     os.path.basename(source),
                     name,
+                    stage=name,
+                    from_run=os.path.basename(source),
                 )
                 continue
-        log.info("stage %s", name)
+        logs.event(log, "stage_started", "stage %s", name, stage=name)
         with rd.stage(name, ids[name]) as record:
             if name in READS_INPUT:
                 verify_unchanged(fp, f"before stage {name}")
@@ -233,7 +239,7 @@ def run_stages(ctx, upto=None, fresh=False):
                 # the machine's cores (tasks on other executors run with one BLAS thread too)
                 gc.collect()  # arrays the last stage left in reference cycles: not this stage's peak
                 own = reset_peak_rss()
-                with parallel.one_blas_thread():
+                with parallel.one_blas_thread(), Heartbeat(log, name):
                     record.update(_reading(name, fp, lambda: spec.module().run(ctx.for_stage(name))))
                 record["peak_rss_mb"] = peak_rss_mb()
                 record["peak_rss_scope"] = "stage" if own else "process"
@@ -329,6 +335,16 @@ def with_kept_space(fp, cfg, chash):
     return base | {"hash": mark, "fair_space_from": source}
 
 
+@contextlib.contextmanager
+def _tagged(rid, path):
+    """Errors leaving the run carry its id and directory (for `run --json` and the final log event)."""
+    try:
+        yield
+    except BigsmoothError as exc:
+        exc.run_id, exc.run_dir = rid, path
+        raise
+
+
 def run_job(config_path, fresh=False, upto=None, then=None):
     """Run (or resume) the job described by a config file.
 
@@ -349,7 +365,8 @@ def run_job(config_path, fresh=False, upto=None, then=None):
     fp = with_kept_space(fp, cfg, chash)
     rid = run_id(chash, fp["hash"])
     rd = RunDir(os.path.join(cfg["run"]["dir"], rid))
-    with rd.lock():
+    logs.CONTEXT["run_id"] = rid
+    with _tagged(rid, rd.path), rd.lock():
         if not rd.exists():
             _handle_input_change(cfg, chash, fp, rid)
         _clear_stale(rd)
@@ -374,7 +391,7 @@ def run_job(config_path, fresh=False, upto=None, then=None):
                 )
                 m["stages"]["publish"] = {"state": "pending"}
                 rd.save(m)
-            log.info("resuming run %s", rid)
+            logs.event(log, "run_resumed", "resuming run %s", rid, run_dir=rd.path)
         else:
             rd.create(
                 {
@@ -394,7 +411,17 @@ def run_job(config_path, fresh=False, upto=None, then=None):
                     "input": portable(fp),
                 }
             )
-            log.info("new run %s: %d rows in %d files", rid, fp["rows"], len(fp["files"]))
+            logs.event(
+                log,
+                "run_started",
+                "new run %s: %d rows in %d files",
+                rid,
+                fp["rows"],
+                len(fp["files"]),
+                rows=int(fp["rows"]),
+                files=len(fp["files"]),
+                run_dir=rd.path,
+            )
         _check_writable(cfg["output"]["path"])
         ctx = stage_base.Context(rd, cfg, fp, rid)
         # a second job publishing to the same output waits for this one (exit 75 at once)

@@ -19,7 +19,7 @@ import shutil
 import socket
 import time
 
-from . import artifacts, atomic, faults
+from . import artifacts, atomic, faults, logs
 from .errors import LockHeldError, OutputError
 
 log = logging.getLogger("bigsmooth.run")
@@ -78,6 +78,7 @@ class RunDir:
         self.save(m)
         t0 = time.monotonic()
         record = {}
+        logs.CONTEXT["stage"] = name
         try:
             faults.point(f"stage:{name}:start")
             yield record
@@ -91,6 +92,7 @@ class RunDir:
             )
             with contextlib.suppress(Exception):
                 self.save(m)
+            logs.CONTEXT["stage"] = None
             raise
         m = self.load()
         m["stages"][name].update(
@@ -101,7 +103,18 @@ class RunDir:
             **({"identity": identity} if identity else {}),
         )
         self.save(m)
-        log.info("stage %s done in %.1f s", name, time.monotonic() - t0)
+        secs = time.monotonic() - t0
+        logs.CONTEXT["stage"] = None
+        logs.event(
+            log,
+            "stage_done",
+            "stage %s done in %.1f s",
+            name,
+            secs,
+            seconds=round(secs, 3),
+            peak_rss_mb=record.get("peak_rss_mb"),
+            stage=name,
+        )
 
     def adopt(self, name, source, identity):
         """Take stage ``name``'s outputs from the run directory ``source`` (same identity): its files

@@ -20,6 +20,7 @@ from .. import artifacts as art
 from .. import atomic, faults, streams
 from ..kernels import graph as gk
 from ..kernels import partition
+from .. import progress
 from ..progress import Progress
 
 log = logging.getLogger("bigsmooth.graph")
@@ -68,6 +69,7 @@ def _partitioned(ctx, E, k, g):
         ptr = art.GRAPH_PARTS.load(rundir, member="ptr")
         log.info("partitions: %d, planned earlier (resuming)", len(ptr) - 1)
     else:
+        progress.phase(log, "planning the partitions (k-means on a sample, balanced)")
         with _local_pool(ctx) as (map_fn, _):
             _, membership, _ = partition.plan(
                 E,
@@ -97,6 +99,7 @@ def _partitioned(ctx, E, k, g):
     order = sorted(range(parts), key=lambda p: (-int(sizes[p]), p))
     executor = ctx.task_executor()
     calls = [(rundir.path, p, k) for p in range(parts)]
+    progress.phase(log, f"searching {parts} partitions")
     prog = Progress(log, "partition search (rows x overlap)", int(sizes.sum()))
     try:
         if executor is None:
@@ -117,7 +120,8 @@ def _partitioned(ctx, E, k, g):
     finally:
         if executor is not None:
             executor.shutdown()
-    log.info("partitions searched in %.1f s; merging", time.monotonic() - t0)
+    log.info("partitions searched in %.1f s", time.monotonic() - t0)
+    progress.phase(log, "merging each row's lists over its partitions")
     _merge_parts(
         rundir, membership, ptr, k, _block_rows(ctx.cfg["run"]["memory_mb"], membership.shape[1] * k)
     )
@@ -129,6 +133,7 @@ def _partitioned(ctx, E, k, g):
     info = {"partitions": parts, "partition_rows_max": int(sizes.max()), "overlap": membership.shape[1]}
     if g["refine_rounds"]:
         info["refine_rounds"] = g["refine_rounds"]
+        progress.phase(log, f"refining the lists (up to {g['refine_rounds']} neighbour-of-neighbour rounds)")
         info["refine_replaced"] = _refine(ctx, E, membership[:, 0], g["refine_rounds"])
     return info
 
@@ -383,6 +388,7 @@ def run(ctx):
     if build == "partitioned":
         extra = _partitioned(ctx, E, k, g)
     else:
+        progress.phase(log, f"{search} neighbour search over the whole table")
         if exact:
             ind, dist = gk.exact_knn(E[:], k)
         else:
@@ -402,6 +408,7 @@ def run(ctx):
     ind = art.GRAPH_NEIGHBOURS.rows(rundir)
     dist = art.RowReader(_dist64(rundir))
     if search != "exact" and g["recall_rows"]:
+        progress.phase(log, f"measuring recall on {min(n, g['recall_rows'])} sampled rows")
         t0 = time.monotonic()
         s = gk.recall_sample(n, g["recall_rows"], ctx.rng("graph.recall"))
         # a share of the sample per local thread (each pass reads the table; hits are integers,
@@ -427,6 +434,7 @@ def run(ctx):
                 recall,
                 RECALL_WARN,
             )
+    progress.phase(log, "kernel scale and weights (symmetrised, written shard by shard)")
     t0 = time.monotonic()
     median = gk.kernel_median(dist)
     sigma = gk.kernel_scale(dist, g["kernel_scale"], g["scale_factor"], median=median)

@@ -25,7 +25,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .. import artifacts as art
-from .. import atomic, faults, provenance
+from .. import atomic, faults, logs, provenance
 from ..errors import DataError, OutputError
 from ..table import batch_rows_for, connect_budget, id_digests, verify_unchanged
 
@@ -222,5 +222,14 @@ def run(ctx):
         _move_pointers(root, version, run_id, written)
     except OSError as exc:
         raise OutputError(f"cannot move the output pointers under {root} to {version}: {exc}") from None
-    log.info("published %d rows to %s", written, final)
+    logs.event(
+        log,
+        "published",
+        "published %d rows to %s",
+        written,
+        final,
+        rows=int(written),
+        path=final,
+        version=version,
+    )
     return {"version": version, "rows": written, "files": len(fp["files"])}

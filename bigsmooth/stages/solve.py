@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import artifacts as art
-from .. import atomic, faults, parallel
+from .. import atomic, faults, logs, parallel
 from ..errors import EngineUnavailableError
 from ..kernels import laplacian, solver, sweepcg
 
@@ -253,7 +253,15 @@ def _sweep_cg_on(pb, system, bounds, work):
                 checks=np.asarray(st["checks"], dtype=np.float64).reshape(-1, 2),
             )
         if st["sweep"] == 1 or st["sweep"] % 10 == 0:
-            log.info("sweep %d: preconditioned residual %.3e", st["sweep"], st["residuals"][-1])
+            logs.event(
+                log,
+                "sweep",
+                "sweep %d: preconditioned residual %.3e",
+                st["sweep"],
+                st["residuals"][-1],
+                sweep=int(st["sweep"]),
+                residual=float(st["residuals"][-1]),
+            )
 
     nw = workers_for(s)
     if pb.task_executor is not None:
@@ -324,7 +332,15 @@ def _blocks(pb, A):
                 residuals=np.asarray(residuals),
             )
         if sweep == 1 or sweep % 10 == 0:
-            log.info("sweep %d: relative residual %.3e", sweep, residuals[-1])
+            logs.event(
+                log,
+                "sweep",
+                "sweep %d: relative residual %.3e",
+                sweep,
+                residuals[-1],
+                sweep=int(sweep),
+                residual=float(residuals[-1]),
+            )
 
     res = solver.block_coordinate_descent(
         Ap,
@@ -421,10 +437,15 @@ def run(ctx):
             )
     art.SOLVE_ADJUSTED.save(rundir, F)
     art.SOLVE_INFO.save(rundir, info)
-    log.info(
+    logs.event(
+        log,
+        "solved",
         "solve: %s after %d sweeps, relative residual %.3e",
         info["status"],
         info["sweeps"],
         info["final_residual"],
+        status=info["status"],
+        sweeps=int(info["sweeps"]),
+        residual=float(info["final_residual"]),
     )
     return {k: v for k, v in info.items() if k not in ("residuals", "true_residual_checks")}
