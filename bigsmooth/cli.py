@@ -176,12 +176,36 @@ def build_parser():
         parents=[common],
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog=EPILOG,
-        help="show the stages, timings and solver record of a run directory",
-        description="Print each stage's state and timing and the solver's convergence "
-        "record for RUN_DIR (a folder under run.dir holding manifest.json).",
+        help="where a job stands: its latest run, stage, sweep, published version, gates, disk",
+        description="Show a run: each stage's state, timing and peak memory, the solver's record, "
+        "the live stage and sweep of a running run, the published version (and whether it is still "
+        "current), the gates, the report's path and the disk used by the run directory and the "
+        "output's versions. TARGET is a run directory (a folder under run.dir holding "
+        "manifest.json), an output folder (the run behind its current version) or a config file "
+        "(the latest run made with it under its run.dir). Reads only; locks are tried, not taken.",
     )
-    s.add_argument("run_dir", metavar="RUN_DIR")
-    s.add_argument("--json", action="store_true", help="print the manifest as JSON instead")
+    s.add_argument("target", metavar="TARGET", help="a config file, an output folder or a run directory")
+    s.add_argument(
+        "--json",
+        action="store_true",
+        help="print a JSON record instead (schema bigsmooth.status/1, documented in README: Status)",
+    )
+
+    pr = sub.add_parser(
+        "prune",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="delete old published versions and run directories (output.keep_versions, run.keep_runs)",
+        description="Apply the config's retention: keep the newest output.keep_versions published "
+        "versions and the newest run.keep_runs run directories of this job (0 keeps all). Never "
+        "deleted: the current version, the run that made it, a run in progress. Takes the output's "
+        "lock (exit 75 while a job publishes there). The same retention runs after each successful "
+        "publish when either setting is above 0.",
+    )
+    pr.add_argument("config", metavar="CONFIG", help="path of the TOML config file")
+    pr.add_argument("--dry-run", action="store_true", help="list what would be deleted; delete nothing")
+    pr.add_argument("--json", action="store_true", help="print the list as JSON")
 
     sc = sub.add_parser(
         "score",
@@ -432,48 +456,25 @@ def cmd_report(args):
 
 
 def cmd_status(args):
-    from .atomic import read_json
+    from . import status
 
-    path = os.path.join(args.run_dir, art.MANIFEST)
-    if not os.path.exists(path):
-        from .errors import InputMissingError
+    rec = status.record(args.target)
+    print(status.as_json(rec) if args.json else "\n".join(status.lines(rec)))
+    return EXIT_OK
 
-        raise InputMissingError(f"{args.run_dir} is not a run directory (no manifest.json)")
-    m = read_json(path)
-    if args.json:
-        print(json.dumps(m, indent=2))
-        return EXIT_OK
-    print(
-        f"run {m['run_id']}  created {m['created']}  input {m['input']['rows']} rows in "
-        f"{len(m['input']['files'])} files"
-    )
-    print(f"{'stage':<9} {'state':<8} {'seconds':>9}")
-    from .rundir import STAGES
 
-    for name in STAGES:
-        st = m["stages"][name]
-        secs = f"{st['seconds']:.1f}" if "seconds" in st else "-"
-        print(
-            f"{name:<9} {st['state']:<8} {secs:>9}"
-            + (f"  {st['error']}" if st.get("error") else "")
-            + (f"  (reused from run {st['reused_from']})" if st.get("reused_from") else "")
+def cmd_prune(args):
+    from . import prune
+    from .config import load_config
+
+    cfg = load_config(args.config)
+    if not (cfg["output"]["keep_versions"] or cfg["run"]["keep_runs"]):
+        log.warning(
+            "output.keep_versions and run.keep_runs are 0 (keep all): nothing to prune; set them in "
+            "the config or with --set output.keep_versions=N"
         )
-    if art.SOLVE_INFO.exists(args.run_dir):
-        s = art.SOLVE_INFO.load(args.run_dir)
-        print(
-            f"solver: {s['method']} ({s['laplacian']}, lam={s['lam']:g}) {s['status']} after {s['sweeps']} "
-            f"sweeps; final relative residual {s['final_residual']:.3e}"
-        )
-        res = s["residuals"]
-        what = "preconditioned residual" if s["method"] == "sweep-cg" else "relative residual"
-        step = max(1, len(res) // 20)
-        for i in list(range(0, len(res), step)) + ([len(res) - 1] if (len(res) - 1) % step else []):
-            print(f"  sweep {i:>5}  {what} {res[i]:.3e}")
-        for sweep, true in s.get("true_residual_checks", []):
-            print(f"  sweep {int(sweep):>5}  true relative residual ||Cy - Af|| / ||Cy|| {true:.3e}")
-    elif art.SOLVE_CHECKPOINT.exists(args.run_dir):
-        c = art.SOLVE_CHECKPOINT.load(args.run_dir)
-        print(f"solver: in progress; checkpoint after sweep {c['sweep']}, residual {c['residuals'][-1]:.3e}")
+    p = prune.prune_job(cfg, dry_run=args.dry_run)
+    print(json.dumps(p, indent=2) if args.json else "\n".join(prune.lines(p)))
     return EXIT_OK
 
 
@@ -584,6 +585,7 @@ def main(argv=None):
             "explain": cmd_explain,
             "diff": cmd_diff,
             "check": cmd_check,
+            "prune": cmd_prune,
         }[args.command](args)
     except BigsmoothError as exc:
         code = exit_code_of(exc)

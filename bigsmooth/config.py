@@ -316,6 +316,14 @@ RULES = {
             default="_adjusted",
             doc="suffix of the adjusted score columns (the change column ends in '_change')",
         ),
+        "keep_versions": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=100_000,
+            doc="keep this many newest published versions (and always the current one); older ones are deleted after each successful publish and by `bigsmooth prune` (0 = keep all)",
+            affects_result=False,
+        ),
     },
     "audit": {
         "select_rate": Rule(
@@ -409,6 +417,14 @@ RULES = {
         ),
     },
     "run": {
+        "keep_runs": Rule(
+            "int",
+            default=0,
+            lo=0,
+            hi=100_000,
+            doc="keep this many newest run directories of this job (runs publishing to output.path; always the run behind the current version and any run in progress); older ones are deleted after each successful publish and by `bigsmooth prune` (0 = keep all)",
+            affects_result=False,
+        ),
         "dir": Rule(
             "str",
             default="",

@@ -335,6 +335,17 @@ def with_kept_space(fp, cfg, chash):
     return base | {"hash": mark, "fair_space_from": source}
 
 
+def _retention(cfg):
+    """Old versions and runs after a successful publish (output.keep_versions, run.keep_runs); a
+    failure here is a warning: tonight's output is published either way."""
+    from .prune import prune
+
+    try:
+        prune(cfg)
+    except OSError as exc:
+        log.warning("retention: could not delete old versions or runs (%s); run `bigsmooth prune` later", exc)
+
+
 @contextlib.contextmanager
 def _tagged(rid, path):
     """Errors leaving the run carry its id and directory (for `run --json` and the final log event)."""
@@ -429,6 +440,8 @@ def run_job(config_path, fresh=False, upto=None, then=None):
             run_stages(ctx, upto=upto, fresh=fresh)
             if upto is not None:
                 return {"run_dir": rd.path, "run_id": rid, "then": then(rd, cfg) if then else None}
+            if cfg["output"]["keep_versions"] or cfg["run"]["keep_runs"]:
+                _retention(cfg)
         out = os.path.join(cfg["output"]["path"], rd.summary("publish")["version"])
         _check_gates(rd, cfg, before_publish=False)
         return {"run_dir": rd.path, "run_id": rid, "already_complete": False, "output": out}

@@ -191,6 +191,27 @@ def hold_lock(folder, what):
         os.close(fd)
 
 
+def lock_holder(folder):
+    """Who holds ``folder``/.lock ("pid N on HOST since T"), or None when no process holds it (the
+    lock is only tried, never kept)."""
+    path = os.path.join(folder, artifacts.LOCK)
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return None
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except OSError as exc:
+            if exc.errno not in (errno.EAGAIN, errno.EACCES):
+                raise
+            return os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
+        fcntl.flock(fd, fcntl.LOCK_UN)
+        return None
+    finally:
+        os.close(fd)
+
+
 def relative_roots(run_root, **roots):
     """{name: path relative to ``run_root``} (see :meth:`RunDir.root`)."""
     base = os.path.abspath(run_root)

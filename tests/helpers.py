@@ -3,6 +3,7 @@
 import os
 import subprocess
 import sys
+import time
 
 import pyarrow as pa
 import pyarrow.dataset as ds
@@ -50,3 +51,26 @@ def _assert_nothing_published(tmp_path):
     out = tmp_path / "out"
     assert not (out / "current").exists()
     assert not out.exists() or not [p for p in out.iterdir() if not p.name.startswith(".")]
+
+
+def _popen(*args, env=None):
+    full = {**os.environ, "PYTHONPATH": ROOT, **(env or {})}
+    return subprocess.Popen(
+        [sys.executable, "-m", "bigsmooth", *args],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=full,
+    )
+
+
+def _wait_stopped(proc, timeout=300):
+    """Wait until ``proc`` has stopped itself (SIGSTOP at a fault point)."""
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < timeout:
+        with open(f"/proc/{proc.pid}/stat") as fh:
+            if fh.read().split(") ", 1)[1][0] == "T":
+                return
+        assert proc.poll() is None, proc.communicate()
+        time.sleep(0.05)
+    raise AssertionError("the job did not reach the fault point")

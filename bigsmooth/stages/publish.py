@@ -113,9 +113,16 @@ def _clear_leftovers(root):
                 os.unlink(p)
 
 
-def _move_pointers(root, version, run_id, rows):
+def _move_pointers(root, version, run_id, rows, run_dir):
     faults.point("publish:before-pointer")
-    pointer = {"version": version, "run_id": run_id, "rows": rows, "published": version[:16]}
+    # run_dir relative to the output folder (found again where both are mounted elsewhere)
+    pointer = {
+        "version": version,
+        "run_id": run_id,
+        "rows": rows,
+        "published": version[:16],
+        "run_dir": os.path.relpath(os.path.abspath(run_dir), os.path.abspath(root)),
+    }
     atomic.write_bytes(
         os.path.join(root, art.OUTPUT_POINTER), (json.dumps(pointer, indent=2) + "\n").encode()
     )
@@ -172,7 +179,7 @@ def run(ctx):
         _clear_leftovers(root)
         if os.path.isdir(final):
             log.info("the version folder %s was completed before an interruption; moving the pointers", final)
-            _move_pointers(root, version, run_id, fp["rows"])
+            _move_pointers(root, version, run_id, fp["rows"], rundir.path)
             return {"version": version, "rows": fp["rows"], "files": len(fp["files"])}
     except OSError as exc:
         raise OutputError(f"cannot write the output under {root}: {exc}") from None
@@ -219,7 +226,7 @@ def run(ctx):
         shutil.rmtree(staging, ignore_errors=True)
         raise
     try:
-        _move_pointers(root, version, run_id, written)
+        _move_pointers(root, version, run_id, written, rundir.path)
     except OSError as exc:
         raise OutputError(f"cannot move the output pointers under {root} to {version}: {exc}") from None
     logs.event(

@@ -8,37 +8,22 @@ import signal
 import stat
 import subprocess
 import sys
-import time
 
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
 from bigsmooth.errors import EXIT_CANTCREAT, EXIT_DATA, EXIT_USAGE
-from helpers import ROOT, _assert_nothing_published, _small_table, _write_case, cli, read_output
-
-
-def _popen(*args, env=None):
-    full = {**os.environ, "PYTHONPATH": ROOT, **(env or {})}
-    return subprocess.Popen(
-        [sys.executable, "-m", "bigsmooth", *args],
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-        env=full,
-    )
-
-
-def _wait_stopped(proc, timeout=300):
-    """Wait until ``proc`` has stopped itself (SIGSTOP at a fault point)."""
-    t0 = time.monotonic()
-    while time.monotonic() - t0 < timeout:
-        with open(f"/proc/{proc.pid}/stat") as fh:
-            if fh.read().split(") ", 1)[1][0] == "T":
-                return
-        assert proc.poll() is None, proc.communicate()
-        time.sleep(0.05)
-    raise AssertionError("the job did not reach the fault point")
+from helpers import (
+    ROOT,
+    _assert_nothing_published,
+    _popen,
+    _small_table,
+    _wait_stopped,
+    _write_case,
+    cli,
+    read_output,
+)
 
 
 @pytest.mark.parametrize("point", ["stage:graph:start", "stage:publish:start"])

@@ -63,7 +63,9 @@ def test_run_json_and_json_logs(case):
 
 
 def test_a_held_run_and_a_bad_config_in_json(case):
-    res = cli("run", str(case), "--json", "--log-format", "json", "--set", "gates.min_neighbour_consistency=1.0")
+    res = cli(
+        "run", str(case), "--json", "--log-format", "json", "--set", "gates.min_neighbour_consistency=1.0"
+    )
     assert res.returncode == EXIT_GATE
     out = json.loads(res.stdout)
     assert out["status"] == "held" and out["exit_code"] == EXIT_GATE and out["output_version"] is None
