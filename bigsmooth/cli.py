@@ -73,7 +73,7 @@ def build_parser():
         formatter_class=argparse.RawDescriptionHelpFormatter,
         epilog=EPILOG,
         help="run (or resume) the job described by a config file",
-        description="Run the job described by CONFIG (TOML; see configs/template.toml). "
+        description="Run the job described by CONFIG (TOML; `bigsmooth init` writes a template). "
         "The run directory is named by a hash of the settings and the input "
         "files: the same config and input resume an interrupted run, and a "
         "finished one is not redone. A run whose settings differ from an earlier "
@@ -190,6 +190,20 @@ def build_parser():
         action="store_true",
         help="print a JSON record instead (schema bigsmooth.status/1, documented in README: Status)",
     )
+
+    it = sub.add_parser(
+        "init",
+        parents=[common],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=EPILOG,
+        help="write a starter config and the scheduler kit (systemd, cron, container) into a folder",
+        description="Write DIR/bigsmooth.toml (the config template: every option with its default) "
+        "and DIR/jobs/ (nightly.sh, a systemd service and timer, a cron line, a container recipe and "
+        "an orchestrator example). They ship inside the package, so this works after a plain pip "
+        "install. Existing files are never overwritten unless --force.",
+    )
+    it.add_argument("dir", metavar="DIR", nargs="?", default=".", help="target folder (default: here)")
+    it.add_argument("--force", action="store_true", help="overwrite files that exist")
 
     pr = sub.add_parser(
         "prune",
@@ -463,6 +477,20 @@ def cmd_status(args):
     return EXIT_OK
 
 
+def cmd_init(args):
+    from .kit import init
+
+    written = init(args.dir, force=args.force)
+    for p in written:
+        print(f"wrote {p}")
+    cfg = os.path.join(args.dir, "bigsmooth.toml")
+    print(
+        f"next: fill in [input] and [output] in {cfg}, then `bigsmooth check {cfg}`; "
+        f"scheduling: {os.path.join(args.dir, 'jobs')} (README, Scheduling)"
+    )
+    return EXIT_OK
+
+
 def cmd_prune(args):
     from . import prune
     from .config import load_config
@@ -586,6 +614,7 @@ def main(argv=None):
             "diff": cmd_diff,
             "check": cmd_check,
             "prune": cmd_prune,
+            "init": cmd_init,
         }[args.command](args)
     except BigsmoothError as exc:
         code = exit_code_of(exc)

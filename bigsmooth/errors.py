@@ -44,6 +44,8 @@ EXIT_TABLE = {
     EXIT_CONFIG: ("bad configuration", "fix the config; alert"),
 }
 EXIT_CODES = {code: meaning for code, (meaning, _) in EXIT_TABLE.items()}
+# what a scheduler does with a failure: retry these later (the run resumes), alert on the others
+RETRY_LATER = (EXIT_TEMPFAIL,)
 
 
 def markdown_table():
@@ -54,8 +56,25 @@ def markdown_table():
 
 
 def shell_comment():
-    """The exit-code table as comment lines for shell scripts in jobs/."""
+    """The exit-code table as comment lines for shell scripts and unit files in jobs/."""
     return "\n".join(f"#   {c:>3}  {m}" for c, (m, _) in EXIT_TABLE.items())
+
+
+def alert_codes():
+    """The failure codes a scheduler should alert on rather than retry."""
+    return [c for c in EXIT_TABLE if c != EXIT_OK and c not in RETRY_LATER]
+
+
+def systemd_restart():
+    """The restart policy lines of jobs/bigsmooth.service: retry later on RETRY_LATER (and when the
+    process was killed), never on the codes that need a person."""
+    return "\n".join(
+        [
+            "Restart=on-failure",
+            "RestartSec=15min",
+            "RestartPreventExitStatus=" + " ".join(str(c) for c in alert_codes()),
+        ]
+    )
 
 
 class BigsmoothError(Exception):
@@ -110,3 +129,5 @@ if __name__ == "__main__":
     print(markdown_table())
     print()
     print(shell_comment())
+    print()
+    print(systemd_restart())

@@ -1,10 +1,13 @@
 #!/usr/bin/env bash
 # Nightly entry point for a scheduler: config path in, the job's exit code out.
 #
-#   jobs/nightly.sh /etc/bigsmooth/tenancy.toml
+#   jobs/nightly.sh /etc/bigsmooth/tenancy.toml [more bigsmooth run options, e.g. --set input.path=...]
 #
-# Example crontab line (02:30 every night; logs appended, one line per event):
-#   30 2 * * *  /opt/bigsmooth/jobs/nightly.sh /etc/bigsmooth/tenancy.toml >>/var/log/bigsmooth.log 2>&1
+# Exit 75 (another run holds the lock, or the Dask cluster is unreachable) is retried here
+# BIGSMOOTH_RETRIES times (default 3), BIGSMOOTH_RETRY_SECONDS apart (default 900); the run resumes
+# where it stopped. Every other code is passed on for the scheduler to alert on.
+# cron: see jobs/crontab.example (flock keeps two nights from overlapping). systemd: the
+# bigsmooth.service and .timer beside this file do the retrying themselves and call bigsmooth directly.
 #
 # Exit codes are bigsmooth's own (README "Exit codes"); 75 means retry later:
 # exit-codes:start (generated from bigsmooth/errors.py: python -m bigsmooth.errors)
@@ -20,8 +23,8 @@
 # exit-codes:end
 # Running it again after an interruption resumes the same run.
 set -u
-if [ $# -ne 1 ]; then
-  echo "usage: $0 CONFIG.toml" >&2
+if [ $# -lt 1 ]; then
+  echo "usage: $0 CONFIG.toml [bigsmooth run options]" >&2
   exit 64
 fi
 here=$(cd "$(dirname "$0")" && pwd)
@@ -32,7 +35,16 @@ elif [ -x "$here/../.venv/bin/bigsmooth" ]; then
 else
   bin=$(command -v bigsmooth) || { echo "$0: bigsmooth not found (run 'make install' or set BIGSMOOTH)" >&2; exit 70; }
 fi
-"$bin" run "$1"
-code=$?
-echo "$(date -u +%Y-%m-%dT%H:%M:%SZ) nightly: bigsmooth run $1 exited $code" >&2
-exit $code
+retries=${BIGSMOOTH_RETRIES:-3}
+wait=${BIGSMOOTH_RETRY_SECONDS:-900}
+attempt=0
+while :; do
+  $bin run "$@"
+  code=$?
+  echo "$(date -u +%Y-%m-%dT%H:%M:%SZ) nightly: bigsmooth run $* exited $code (attempt $((attempt + 1)))" >&2
+  if [ "$code" -ne 75 ] || [ "$attempt" -ge "$retries" ]; then
+    exit $code
+  fi
+  attempt=$((attempt + 1))
+  sleep "$wait"
+done
