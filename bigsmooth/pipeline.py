@@ -21,6 +21,12 @@ from .table import changed_files, fingerprint, portable, unreadable_files, verif
 
 log = logging.getLogger("bigsmooth.run")
 
+# tables of this many rows or more get a full garbage collection before each stage, so that arrays
+# the last stage left in reference cycles do not count in the next stage's peak memory; below it the
+# arrays are small and the collection (about 40 ms a stage after matplotlib and numba are imported)
+# would cost more than the stage
+COLLECT_ABOVE = 100_000
+
 # stages that read the input files (each checks, before it starts, that they are the files the run
 # began on; embed also after its two passes, publish also before its version folder is renamed)
 READS_INPUT = ("scan", "embed", "audit", "publish")
@@ -237,7 +243,8 @@ def run_stages(ctx, upto=None, fresh=False):
                 # one BLAS thread for the stage's own array work: BLAS reductions (dot products in
                 # the audit's CG, norms) split by thread count, and the results must not depend on
                 # the machine's cores (tasks on other executors run with one BLAS thread too)
-                gc.collect()  # arrays the last stage left in reference cycles: not this stage's peak
+                if fp["rows"] >= COLLECT_ABOVE:
+                    gc.collect()  # arrays the last stage left in reference cycles: not this stage's peak
                 own = reset_peak_rss()
                 with parallel.one_blas_thread(), Heartbeat(log, name):
                     record.update(_reading(name, fp, lambda: spec.module().run(ctx.for_stage(name))))

@@ -6,7 +6,19 @@ group's selection rate with the highest group's (29 CFR 1607.4(D)).
 """
 
 import numpy as np
-from scipy.stats import rankdata
+
+
+def average_ranks(x):
+    """Ranks 1..n of ``x``, tied values sharing the mean of their ranks (scipy.stats.rankdata's
+    "average" method, written here so that the audit does not import scipy.stats: 0.4 s a process)."""
+    x = np.asarray(x)
+    order = np.argsort(x, kind="mergesort")
+    xs = x[order]
+    first = np.flatnonzero(np.r_[True, xs[1:] != xs[:-1]]) if x.size else np.zeros(0, dtype=np.int64)
+    counts = np.diff(np.r_[first, x.size])
+    ranks = np.empty(x.size, dtype=np.float64)
+    ranks[order] = np.repeat(first + (counts + 1) / 2.0, counts)
+    return ranks
 
 
 def roc_auc(labels, scores):
@@ -17,7 +29,7 @@ def roc_auc(labels, scores):
     n_neg = labels.size - n_pos
     if n_pos == 0 or n_neg == 0:
         return float("nan")
-    ranks = rankdata(scores)
+    ranks = average_ranks(scores)
     return float((ranks[labels].sum() - n_pos * (n_pos + 1) / 2.0) / (n_pos * n_neg))
 
 

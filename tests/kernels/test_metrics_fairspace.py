@@ -15,6 +15,13 @@ def test_auc_matches_sklearn_with_ties(rng):
     assert metrics.roc_auc(y, s) == np.float64(roc_auc_score(y, s))  # sklearn.metrics.roc_auc_score
 
 
+def test_average_ranks_match_scipy_rankdata(rng):
+    from scipy.stats import rankdata  # the reference: scipy's "average" method
+
+    for x in (np.round(rng.normal(size=400), 1), rng.integers(0, 3, 50), np.array([2.0]), np.zeros(0)):
+        assert np.array_equal(metrics.average_ranks(x), rankdata(x))
+
+
 def test_accuracy_matches_sklearn(rng):
     y = rng.integers(0, 2, 300)
     d = rng.integers(0, 2, 300)
