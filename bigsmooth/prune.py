@@ -17,7 +17,7 @@ from . import logs
 from .atomic import read_json
 from .errors import LockHeldError
 from .rundir import RunDir, hold_lock
-from .status import output_versions, tree_bytes
+from .status import created_key, output_versions, tree_bytes
 
 log = logging.getLogger("bigsmooth.prune")
 
@@ -34,7 +34,7 @@ def _job_runs(run_root, output):
         except (OSError, ValueError):
             continue
         if os.path.abspath(RunDir(path).root("output", m)) == os.path.abspath(output):
-            out.append((m.get("created", ""), path))
+            out.append((created_key(m), path))
     return sorted(out)
 
 

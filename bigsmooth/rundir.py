@@ -47,7 +47,12 @@ class RunDir:
             os.makedirs(self.path, exist_ok=True)
         except OSError as exc:
             raise OutputError(f"cannot create run directory {self.path}: {exc.strerror}") from None
-        manifest = {**identity, "created": _now(), "stages": {s: {"state": "pending"} for s in STAGES}}
+        manifest = {
+            **identity,
+            "created": _now(),
+            "created_ns": time.time_ns(),  # orders runs created within the same second (retention)
+            "stages": {s: {"state": "pending"} for s in STAGES},
+        }
         self.save(manifest)
         return manifest
 

@@ -46,18 +46,22 @@ def tree_bytes(path):
 
 
 def output_versions(output):
-    """[{version, bytes, current, run_id}] of an output folder, oldest first."""
+    """[{version, bytes, current, run_id}] of an output folder, oldest first (by when the version
+    folder was completed: names only have seconds, and two runs can publish within one)."""
     pointer = os.path.join(output, art.OUTPUT_POINTER)
     current = read_json(pointer)["version"] if os.path.exists(pointer) else None
     out = []
     if not os.path.isdir(output):
         return out
-    for name in sorted(os.listdir(output)):
+    names = []
+    for name in os.listdir(output):
         path = os.path.join(output, name)
         if name.startswith(".") or name in (art.OUTPUT_POINTER, art.OUTPUT_LINK) or not os.path.isdir(path):
             continue
-        if os.path.islink(path):
-            continue
+        if not os.path.islink(path):
+            names.append((os.stat(path).st_mtime_ns, name))
+    for _, name in sorted(names):
+        path = os.path.join(output, name)
         out.append(
             {
                 "version": name,
@@ -99,12 +103,17 @@ def latest_run(run_root, config_path=None):
         mine = config_path is not None and os.path.abspath(RunDir(path).config_path(m)) == os.path.abspath(
             config_path
         )
-        runs.append((mine, m.get("created", ""), path))
+        runs.append((mine, created_key(m), path))
     if not runs:
         return None
     if any(r[0] for r in runs):
         runs = [r for r in runs if r[0]]
     return max(runs, key=lambda r: (r[1], r[2]))[2]
+
+
+def created_key(manifest):
+    """Sort key of a run's creation: the time to the second, then to the nanosecond when recorded."""
+    return (manifest.get("created", ""), manifest.get("created_ns", 0))
 
 
 def resolve(target):
