@@ -417,6 +417,12 @@ RULES = {
         ),
     },
     "run": {
+        "drop_intermediates": Rule(
+            "bool",
+            default=False,
+            doc="after a successful publish, delete the run's intermediate files that no later command reads (the order stage's split graph, the solver's scaled system and checkpoint, the graph's partition plan): about half of a run directory. A later run that reuses this run's stages computes the order stage again",
+            affects_result=False,
+        ),
         "keep_runs": Rule(
             "int",
             default=0,

@@ -342,6 +342,34 @@ def with_kept_space(fp, cfg, chash):
     return base | {"hash": mark, "fair_space_from": source}
 
 
+# files of a finished run that no later command reads (run.drop_intermediates)
+INTERMEDIATES = ("order.split", "solve.system", "solve.work", "solve.checkpoint", "graph.parts")
+
+
+def drop_intermediates(rd):
+    """Delete a published run's :data:`INTERMEDIATES`; a stage that declared one of them as an
+    output is marked ``dropped`` so that no other run adopts its outputs (it is computed again)."""
+    m = rd.load()
+    freed = 0
+    for key in INTERMEDIATES:
+        a = artifacts.CATALOGUE[key]
+        path = a.path(rd)
+        if not os.path.exists(path):
+            continue
+        if os.path.isdir(path):
+            from .status import tree_bytes
+
+            freed += tree_bytes(path)
+            shutil.rmtree(path)
+        else:
+            freed += os.path.getsize(path)
+            os.unlink(path)
+        if key in stage_base.BY_NAME[a.stage].writes:
+            m["stages"][a.stage].setdefault("dropped", []).append(key)
+    rd.save(m)
+    log.info("run.drop_intermediates: %.1f MB of intermediate files deleted from %s", freed / 1e6, rd.path)
+
+
 def _retention(cfg):
     """Old versions and runs after a successful publish (output.keep_versions, run.keep_runs); a
     failure here is a warning: tonight's output is published either way."""
@@ -447,6 +475,8 @@ def run_job(config_path, fresh=False, upto=None, then=None):
             run_stages(ctx, upto=upto, fresh=fresh)
             if upto is not None:
                 return {"run_dir": rd.path, "run_id": rid, "then": then(rd, cfg) if then else None}
+            if cfg["run"]["drop_intermediates"]:
+                drop_intermediates(rd)
             if cfg["output"]["keep_versions"] or cfg["run"]["keep_runs"]:
                 _retention(cfg)
         out = os.path.join(cfg["output"]["path"], rd.summary("publish")["version"])

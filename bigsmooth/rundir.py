@@ -247,6 +247,7 @@ def find_stage(run_root, name, identity, exclude):
             continue
         if (
             st.get("state") == "done"
+            and not st.get("dropped")  # outputs deleted by run.drop_intermediates
             and st.get("identity") == identity
             and os.path.isdir(os.path.join(path, name))
         ):

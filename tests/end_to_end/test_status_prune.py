@@ -139,3 +139,26 @@ def test_retention_runs_after_each_publish(tmp_path):
         run_job(str(cfg))
     assert len([p for p in os.listdir(tmp_path / "out") if p.startswith("20")]) == 1
     assert len(os.listdir(tmp_path / "runs")) == 2  # run.keep_runs = 0 keeps every run
+
+
+def test_dropped_intermediates_leave_a_run_that_explains_and_is_not_adopted(tmp_path):
+    cfg = _write_case(tmp_path, _small_table(300, seed=9), "\n[gates]\nmax_auc_drop = 1.0\n")
+    res = cli("run", str(cfg), "--set", "run.drop_intermediates=true")
+    assert res.returncode == EXIT_OK, res.stderr
+    (run,) = list((tmp_path / "runs").iterdir())
+    for rel in ("order/split", "solve/system", "checkpoint/solver.npz"):
+        assert not (run / rel).exists(), rel
+    before = _find_bytes(run)
+    assert "intermediate files deleted" in res.stderr
+    m = json.loads((run / "manifest.json").read_text())
+    assert m["stages"]["order"]["dropped"] == ["order.split"]
+    # the published run still explains a row and draws its report
+    ids = read_output(tmp_path / "out").column("applicant_id").to_pylist()
+    assert cli("explain", str(cfg), str(ids[0]), "--json").returncode == EXIT_OK
+    assert cli("report", str(run)).returncode == EXIT_OK
+    # a new lam reuses scan, embed and graph, and computes the order stage again
+    cfg.write_text(cfg.read_text().replace("lam = 1.0", "lam = 2.0"))
+    res = cli("run", str(cfg))
+    assert res.returncode == EXIT_OK, res.stderr
+    assert "stage graph: reusing the outputs" in res.stderr and "stage order: reusing" not in res.stderr
+    assert _find_bytes(run) == before
