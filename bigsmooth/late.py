@@ -132,12 +132,24 @@ def cells(night, rng_seed):
     """The late-row index of the night (built and saved on first use, under a lock): (centres,
     ptr, rows, cell-ordered embedding memory-mapped)."""
     rd = night.rd
-    if not art.LATE_CELLS.exists_member(rd, "ptr"):
+    if not art.LATE_CELLS.exists_member(rd, "norms"):
         with hold_lock(art.LATE_CELLS.folder(rd), f"the late-row index of {rd.path}"):
             if not art.LATE_CELLS.exists_member(rd, "ptr"):
                 _build_cells(night, rng_seed)
+            if not art.LATE_CELLS.exists_member(rd, "norms"):  # indexes built before norms were kept
+                _save_norms(rd)
     load = lambda name, mm=False: art.LATE_CELLS.load(rd, member=name, mmap=mm)  # noqa: E731
-    return load("centres"), load("ptr"), load("rows", True), load("embedding", True)
+    return load("centres"), load("ptr"), load("rows", True), load("embedding", True), load("norms", True)
+
+
+def _save_norms(rd):
+    """The squared norms of the index's rows (float32, cell order): read by the search instead of
+    computed for every visit of a cell (that was 40% of the search time at 10M rows)."""
+    E = art.LATE_CELLS.load(rd, member="embedding", mmap=True)
+    block = 1 << 20
+    with atomic.npy_writer(art.LATE_CELLS.path(rd, "norms"), np.float32, (len(E),)) as w:
+        for lo in range(0, len(E), block):
+            w.write(lk.sq_norms(np.asarray(E[lo : lo + block])))
 
 
 def _build_cells(night, seed):
@@ -167,7 +179,7 @@ def _build_cells(night, seed):
             w.write(part)
     art.LATE_CELLS.save(night.rd, order.astype(np.int64), member="rows")
     art.LATE_CELLS.save(night.rd, centres, member="centres")
-    art.LATE_CELLS.save(night.rd, ptr, member="ptr")  # written last: marks the index whole
+    art.LATE_CELLS.save(night.rd, ptr, member="ptr")  # written last but norms: marks the index whole
     log.info(
         "late-row index: %d cells of up to %d night rows, built in %.1f s (once per run)",
         len(centres),
@@ -265,14 +277,15 @@ def features(table, inp, levels):
     return encoded(table, inp, levels)
 
 
-def neighbours(night, Q, centres, ptr, rows, E_cells, exclude, probe=PROBE, rounds=ROUNDS):
+def neighbours(night, Q, centres, ptr, rows, E_cells, exclude, probe=PROBE, rounds=ROUNDS, norms=None):
     """Each late row's k nearest night rows (the rows of its ``probe`` nearest cells, then
     ``rounds`` of neighbours of neighbours), without the night rows in ``exclude`` (ids being
     replaced): (ind (b, k), dist (b, k), every measured triplet)."""
     k = night.k
 
     def read(p):
-        return np.asarray(rows[ptr[p] : ptr[p + 1]]), E_cells[ptr[p] : ptr[p + 1]]
+        got = np.asarray(rows[ptr[p] : ptr[p + 1]]), E_cells[ptr[p] : ptr[p + 1]]
+        return got if norms is None else (*got, norms[ptr[p] : ptr[p + 1]])
 
     def drop(t):
         if not len(exclude) or not len(t[0]):
@@ -361,7 +374,7 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
         )
     exclude = np.array(sorted(present.values()), dtype=np.int64)
     t_load = time.monotonic()
-    centres, ptr, crow, cemb = cells(night, night.manifest["settings"]["run"]["seed"])
+    centres, ptr, crow, cemb, norms = cells(night, night.manifest["settings"]["run"]["seed"])
     log.info(
         "loaded run %s (%d night rows) in %.1f s",
         night.manifest["run_id"],
@@ -378,7 +391,7 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
 
     def one(lo):
         hi = min(rows, lo + batch)
-        nind, ndist, trip = neighbours(night, Q[lo:hi], centres, ptr, crow, cemb, exclude)
+        nind, ndist, trip = neighbours(night, Q[lo:hi], centres, ptr, crow, cemb, exclude, norms=norms)
         F[lo:hi], ratio[lo:hi], lonely[lo:hi] = score_batch(night, Q[lo:hi], Y[lo:hi], nind, ndist, trip, far)
 
     # batches are independent (each is solved against the night alone), so they run on one thread

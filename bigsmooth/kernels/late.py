@@ -116,10 +116,17 @@ def nearest_cells(Q, centres, probe, map_fn=map, chunk=16_384):
     return (np.vstack(parts) if parts else np.empty((0, probe), np.int64)).astype(np.int32)
 
 
+def sq_norms(X):
+    """Squared norms of float32 rows, in float32 (the ranking term of :func:`search`; row by row,
+    so a block of rows gives each row the same value as the row alone)."""
+    return np.einsum("ij,ij->i", X, X)
+
+
 def search(Q, cells_of, read_cell, k):
     """Candidate night rows for late rows Q (b, d): each late row against every night row of the
     cells ``cells_of`` (b, probe) lists; ``read_cell(p)`` returns (night rows (m,), their
-    fair-space rows (m, d) float32). Returns triplets (late row, night row, distance) with each
+    fair-space rows (m, d) float32[, their squared norms (m,) float32 as :func:`sq_norms` gives
+    them, read instead of computed]). Returns triplets (late row, night row, distance) with each
     late row's k nearest per cell, distances taken directly in float64 (:func:`best` picks the
     lists)."""
     Q = np.asarray(Q, dtype=np.float64)
@@ -131,7 +138,8 @@ def search(Q, cells_of, read_cell, k):
     Q32 = (-2.0 * Q).astype(np.float32)
     for p in sorted(by_cell):
         qs = np.array(by_cell[p], dtype=np.int64)
-        rows, X = read_cell(p)
+        got = read_cell(p)
+        rows, X = got[0], got[1]
         if not len(rows):
             continue
         X = np.asarray(X, dtype=np.float32)
@@ -140,7 +148,7 @@ def search(Q, cells_of, read_cell, k):
             # ranked in float32 by ||x||^2 - 2 q.x, with a few candidates to spare for round-off;
             # the chosen distances are then taken directly in float64 and :func:`best` decides
             G = Q32[qs] @ X.T
-            G += np.einsum("ij,ij->i", X, X)[None, :]
+            G += (np.asarray(got[2]) if len(got) > 2 else sq_norms(X))[None, :]
             sel = np.argpartition(G, take - 1, axis=1)[:, :take]
         else:
             sel = np.broadcast_to(np.arange(len(rows)), (len(qs), len(rows)))

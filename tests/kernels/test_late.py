@@ -104,6 +104,27 @@ def test_search_over_every_cell_is_exact(rng):
     np.testing.assert_allclose(dist, ref_d, rtol=1e-12)
 
 
+def test_search_reads_stored_norms_and_finds_the_same(rng):
+    # the index keeps each row's squared norm (computed over all rows at once); reading them gives
+    # the same triplets as computing them cell by cell
+    E = rng.normal(size=(3000, 6)).astype(np.float32)
+    Q = rng.normal(size=(50, 6))
+    centres, ptr, order = _cells(E, 8, rng)
+    norms = lk.sq_norms(E[order])
+    # numpy reference: the sum of squares in float64
+    np.testing.assert_allclose(norms, (E[order].astype(np.float64) ** 2).sum(axis=1), rtol=1e-6)
+
+    def read(p, with_norms):
+        got = order[ptr[p] : ptr[p + 1]], E[order[ptr[p] : ptr[p + 1]]]
+        return (*got, norms[ptr[p] : ptr[p + 1]]) if with_norms else got
+
+    cells_of = lk.nearest_cells(Q, centres, 3)
+    a = lk.search(Q, cells_of, lambda p: read(p, False), 10)
+    b = lk.search(Q, cells_of, lambda p: read(p, True), 10)
+    for x, y in zip(a, b):
+        assert np.array_equal(x, y)
+
+
 def test_neighbours_of_neighbours_recover_what_the_cells_miss(rng):
     # clustered data, one cell probed: the expansion over the night's own exact lists (sklearn)
     # must raise recall@10 against sklearn's exact neighbours, and never lower it
