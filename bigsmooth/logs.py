@@ -55,9 +55,49 @@ def _plain(v):
     return str(v)
 
 
+# True when progress is drawn as a live bar (text logs on a terminal): Progress then updates it
+# about twice a second instead of logging a line every few seconds
+LIVE = [False]
+
+
+class TerminalHandler(logging.StreamHandler):
+    """Text logs on a terminal: counted progress (``progress`` events with done and total) is one
+    bar redrawn in place; any other record first clears the bar and is printed as a line."""
+
+    WIDTH = 30
+
+    def __init__(self, stream):
+        super().__init__(stream)
+        self.bar = False
+
+    def emit(self, record):
+        f = getattr(record, "fields", None) or {}
+        try:
+            if getattr(record, "event", None) == "progress" and f.get("total"):
+                share = min(1.0, f["done"] / f["total"])
+                filled = int(round(share * self.WIDTH))
+                self.stream.write(
+                    f"\r\033[K[{'#' * filled}{'-' * (self.WIDTH - filled)}] {record.getMessage()}"
+                )
+                self.bar = share < 1.0
+                if not self.bar:
+                    self.stream.write("\n")
+                self.flush()
+                return
+            if self.bar:
+                self.stream.write("\r\033[K")
+                self.bar = False
+        except Exception:  # a closed terminal: as logging does, never fail the job over a log line
+            self.handleError(record)
+            return
+        super().emit(record)
+
+
 def setup(fmt="text", level="info"):
-    """Send the ``bigsmooth`` loggers to stderr in ``fmt`` at ``level`` (replacing earlier handlers)."""
-    handler = logging.StreamHandler(sys.stderr)
+    """Send the ``bigsmooth`` loggers to stderr in ``fmt`` at ``level`` (replacing earlier handlers);
+    text on a terminal draws counted progress as a live bar (:class:`TerminalHandler`)."""
+    LIVE[0] = fmt == "text" and sys.stderr.isatty()
+    handler = TerminalHandler(sys.stderr) if LIVE[0] else logging.StreamHandler(sys.stderr)
     if fmt == "json":
         handler.setFormatter(JsonFormatter())
     else:

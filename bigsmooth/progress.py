@@ -11,9 +11,13 @@ HEARTBEAT = 15.0  # seconds without a progress line before the heartbeat speaks
 _LAST = [time.monotonic()]  # when the last progress line was logged (any Progress or heartbeat)
 
 
+LIVE_EVERY = 0.5  # seconds between redraws of the live bar (logs.LIVE: text logs on a terminal)
+
+
 class Progress:
     def __init__(self, log, what, total, every=10.0):
-        self.log, self.what, self.total, self.every = log, what, total, every
+        self.log, self.what, self.total = log, what, total
+        self.every = LIVE_EVERY if logs.LIVE[0] else every
         self.done = 0
         self.t0 = self.last = time.monotonic()
         self._lock = threading.Lock()  # tasks on a thread pool report as they finish

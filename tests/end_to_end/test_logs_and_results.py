@@ -118,3 +118,39 @@ def test_json_formatter_fields_and_context():
         logs.CONTEXT.update(run_id=None, stage=None)
     assert obj["message"] == "5 rows" and obj["level"] == "warning" and obj["rows"] == 5
     assert obj["run_id"] == "abc" and obj["stage"] == "embed"  # an event's stage fills an empty context
+
+
+def test_a_terminal_gets_a_live_bar_and_a_pipe_gets_lines(case, tmp_path):
+    # stderr on a pseudo-terminal (os.openpty): counted progress is redrawn in place ("\r", erase to
+    # the end of the line); the same run on a pipe logs plain lines only
+    import os
+    import subprocess
+    import sys
+
+    from helpers import ROOT
+
+    master, slave = os.openpty()
+    cmd = [sys.executable, "-m", "bigsmooth", "run", str(case), "--fresh", "--set", "solve.lam=3"]
+    env = {**os.environ, "PYTHONPATH": ROOT}
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=slave, env=env)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 65536)
+        except OSError:  # the child closed the terminal
+            break
+        if not data:
+            break
+        chunks.append(data)
+    os.close(master)
+    assert proc.wait(timeout=600) == EXIT_OK
+    seen = b"".join(chunks).decode(errors="replace")
+    assert "\r\x1b[K[" + "#" * 30 + "] embed pass 1 (statistics): 400 / 400 rows" in seen
+    assert " INFO bigsmooth.run: stage graph" in seen  # other records stay lines
+    res = cli("run", str(case), "--fresh", "--set", "solve.lam=4")
+    assert (
+        res.returncode == EXIT_OK
+        and "\r" not in res.stderr
+        and "embed pass 1 (statistics): 400 / 400" in res.stderr
+    )
