@@ -348,25 +348,27 @@ INTERMEDIATES = ("order.split", "solve.system", "solve.work", "solve.checkpoint"
 
 def drop_intermediates(rd):
     """Delete a published run's :data:`INTERMEDIATES`; a stage that declared one of them as an
-    output is marked ``dropped`` so that no other run adopts its outputs (it is computed again)."""
-    m = rd.load()
-    freed = 0
-    for key in INTERMEDIATES:
-        a = artifacts.CATALOGUE[key]
-        path = a.path(rd)
-        if not os.path.exists(path):
-            continue
-        if os.path.isdir(path):
-            from .status import tree_bytes
+    output is marked ``dropped`` first (so that, even if the deletion is interrupted, no other run
+    adopts its outputs; it is computed again where needed)."""
+    from .status import tree_bytes
 
+    present = [
+        artifacts.CATALOGUE[k] for k in INTERMEDIATES if os.path.exists(artifacts.CATALOGUE[k].path(rd))
+    ]
+    m = rd.load()
+    for a in present:
+        if a.key in stage_base.BY_NAME[a.stage].writes:
+            m["stages"][a.stage].setdefault("dropped", []).append(a.key)
+    rd.save(m)
+    freed = 0
+    for a in present:
+        path = a.path(rd)
+        if os.path.isdir(path):
             freed += tree_bytes(path)
             shutil.rmtree(path)
         else:
             freed += os.path.getsize(path)
             os.unlink(path)
-        if key in stage_base.BY_NAME[a.stage].writes:
-            m["stages"][a.stage].setdefault("dropped", []).append(key)
-    rd.save(m)
     log.info("run.drop_intermediates: %.1f MB of intermediate files deleted from %s", freed / 1e6, rd.path)
 
 
@@ -476,7 +478,10 @@ def run_job(config_path, fresh=False, upto=None, then=None):
             if upto is not None:
                 return {"run_dir": rd.path, "run_id": rid, "then": then(rd, cfg) if then else None}
             if cfg["run"]["drop_intermediates"]:
-                drop_intermediates(rd)
+                try:
+                    drop_intermediates(rd)
+                except OSError as exc:  # tonight's output is published either way
+                    log.warning("run.drop_intermediates: could not delete them from %s (%s)", rd.path, exc)
             if cfg["output"]["keep_versions"] or cfg["run"]["keep_runs"]:
                 _retention(cfg)
         out = os.path.join(cfg["output"]["path"], rd.summary("publish")["version"])

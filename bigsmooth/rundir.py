@@ -80,6 +80,7 @@ class RunDir:
         entry.update(state="running", started=_now())
         entry.pop("reused_from", None)
         entry.pop("error", None)
+        entry.pop("dropped", None)  # computed again: whole again
         self.save(m)
         t0 = time.monotonic()
         record = {}
