@@ -11,7 +11,7 @@ import os
 import numpy as np
 
 from .. import artifacts as art
-from .. import atomic, explain, provenance
+from .. import atomic, explain, logs, provenance
 from ..kernels import metrics
 from ..kernels.audit_figures import (
     CHUNK,
@@ -484,6 +484,18 @@ def run(ctx):
             },
         }
     report["gates"] = check_gates(report, cfg["gates"])
+    for g in report["gates"]:
+        logs.event(
+            log,
+            "gate",
+            "gate %s: %s (%s)",
+            g["gate"],
+            g["state"],
+            g["line"],
+            level=logging.WARNING if g["state"] == "failed" else logging.INFO,
+            gate=g["gate"],
+            state=g["state"],
+        )
     version = provenance.version_name(rundir, ctx.run_id)
     report["provenance"] = provenance.record(rundir, cfg, fp, version, report["gates"])
     report["night_over_night"] = night_over_night(cfg, fp, version, y, f, per_score[inp["scores"][0]])

@@ -53,6 +53,7 @@ def test_run_json_and_json_logs(case):
     assert all(r["seconds"] >= 0 for r in recs if r["event"] == "stage_done")
     sweeps = [r for r in recs if r["event"] == "sweep"]
     assert sweeps and all(r["stage"] == "solve" and r["residual"] >= 0 for r in sweeps)
+    assert {r["gate"]: r["state"] for r in recs if r["event"] == "gate"} == out["gates"]
     (pub,) = [r for r in recs if r["event"] == "published"]
     assert pub["rows"] == 400 and pub["version"] == out["output_version"]
     assert recs[-1]["status"] == "published" and recs[-1]["output_version"] == out["output_version"]
