@@ -39,7 +39,7 @@ retries=${BIGSMOOTH_RETRIES:-3}
 wait=${BIGSMOOTH_RETRY_SECONDS:-900}
 attempt=0
 while :; do
-  $bin run "$@"
+  "$bin" run "$@"
   code=$?
   echo "$(date -u +%Y-%m-%dT%H:%M:%SZ) nightly: bigsmooth run $* exited $code (attempt $((attempt + 1)))" >&2
   if [ "$code" -ne 75 ] || [ "$attempt" -ge "$retries" ]; then
