@@ -10,6 +10,7 @@ import os
 import shutil
 from pathlib import Path
 
+from . import atomic
 from .errors import InputMissingError, OutputError
 
 HERE = Path(__file__).resolve().parent
@@ -47,11 +48,9 @@ def init(target, force=False):
     try:
         for rel, src in files.items():
             dst = target / rel
-            dst.parent.mkdir(parents=True, exist_ok=True)
-            tmp = dst.with_name(f".{dst.name}.tmp")
-            shutil.copyfile(src, tmp)
-            os.chmod(tmp, 0o755 if os.access(src, os.X_OK) else 0o644)
-            os.replace(tmp, dst)
+            with atomic.atomic_path(dst) as tmp:
+                shutil.copyfile(src, tmp)
+                os.chmod(tmp, 0o755 if os.access(src, os.X_OK) else 0o644)
             written.append(str(dst))
     except OSError as exc:
         raise OutputError(f"cannot write into {target}: {exc}") from None

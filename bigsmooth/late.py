@@ -31,13 +31,12 @@ from . import __version__, atomic, provenance
 from . import artifacts as art
 from .config import load_config
 from .errors import DataError, InputMissingError, OutputError, examples
-from .kernels import fairspace
 from .kernels import late as lk
 from .kernels import partition
 from .parallel import one_blas_thread
 from .rundir import RunDir, hold_lock
 from .stages import scan
-from .stages.embed import _floats, encoded
+from .stages.embed import _floats, encoded, saved_space
 from .table import Source, connect_budget, fingerprint, quote
 
 log = logging.getLogger("bigsmooth.score")
@@ -91,15 +90,7 @@ class Night:
         self.manifest = m
         s = m["settings"]
         self.inp, self.g, self.solve, self.out = s["input"], s["graph"], s["solve"], s["output"]
-        info = art.EMBED_INFO.load(rd)
-        self.fs = fairspace.FairSpace(
-            mean=np.asarray(info["mean"]),
-            scale=np.asarray(info["scale"]),
-            transform=np.asarray(info["transform"]),
-            removed=info["removed_dimensions"],
-            constant=np.zeros(len(info["mean"]), dtype=bool),
-            explained=np.zeros(0),
-        )
+        self.fs = saved_space(art.EMBED_INFO.load(rd))
         scan_info = art.SCAN_INFO.load(rd)
         self.levels = scan_info["levels"]
         self.inp = dict(self.inp, list_lengths=scan_info.get("list_lengths", {}))

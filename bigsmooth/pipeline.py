@@ -15,7 +15,7 @@ from . import config as config_mod
 from .atomic import read_json
 from .progress import Heartbeat
 from .errors import BigsmoothError, DataError, GateError, InputMissingError, OutputError
-from .rundir import STAGES, RunDir, find_stage, hold_lock, relative_roots, run_id
+from .rundir import STAGES, RunDir, find_stage, hold_lock, manifests, relative_roots, run_id
 from .stages import base as stage_base
 from .table import changed_files, fingerprint, portable, unreadable_files, verify_unchanged
 
@@ -61,18 +61,11 @@ def _allow_numba_threads(threads):
 def _unfinished_with_other_input(run_root, chash, input_hash):
     """Unfinished runs under ``run_root`` with the same settings but another input: [(dir, manifest)]."""
     out = []
-    if not os.path.isdir(run_root):
-        return out
-    for name in sorted(os.listdir(run_root)):
-        path = os.path.join(run_root, name, artifacts.MANIFEST)
-        try:
-            m = read_json(path)
-        except (OSError, ValueError):
-            continue
+    for path, m in manifests(run_root):
         if m.get("config_hash") != chash or m["input"]["hash"] == input_hash or m.get("superseded_by"):
             continue
         if not all(v["state"] == "done" for v in m["stages"].values()):
-            out.append((os.path.join(run_root, name), m))
+            out.append((path, m))
     return out
 
 

@@ -16,7 +16,7 @@ from . import artifacts as art
 from . import logs
 from .atomic import read_json
 from .errors import LockHeldError
-from .rundir import RunDir, hold_lock
+from .rundir import RunDir, hold_lock, manifests
 from .status import created_key, output_versions, tree_bytes
 
 log = logging.getLogger("bigsmooth.prune")
@@ -24,17 +24,11 @@ log = logging.getLogger("bigsmooth.prune")
 
 def _job_runs(run_root, output):
     """[(created, path)] of the run directories under ``run_root`` that publish to ``output``."""
-    out = []
-    if not os.path.isdir(run_root):
-        return out
-    for name in sorted(os.listdir(run_root)):
-        path = os.path.join(run_root, name)
-        try:
-            m = read_json(os.path.join(path, art.MANIFEST))
-        except (OSError, ValueError):
-            continue
-        if os.path.abspath(RunDir(path).root("output", m)) == os.path.abspath(output):
-            out.append((created_key(m), path))
+    out = [
+        (created_key(m), path)
+        for path, m in manifests(run_root)
+        if os.path.abspath(RunDir(path).root("output", m)) == os.path.abspath(output)
+    ]
     return sorted(out)
 
 

@@ -181,15 +181,9 @@ def hold_lock(folder, what):
     except OSError as exc:
         raise OutputError(f"cannot create the lock file in {folder}: {exc.strerror}") from None
     try:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError as exc:
-            if exc.errno not in (errno.EAGAIN, errno.EACCES):
-                raise
-            holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
-            raise LockHeldError(
-                f"{what} is in use by another bigsmooth process ({holder}); retry later"
-            ) from None
+        holder = _try_flock(fd, fcntl.LOCK_EX)
+        if holder is not None:
+            raise LockHeldError(f"{what} is in use by another bigsmooth process ({holder}); retry later")
         os.ftruncate(fd, 0)
         os.pwrite(fd, f"pid {os.getpid()} on {socket.gethostname()} since {_now()}\n".encode(), 0)
         yield
@@ -206,16 +200,24 @@ def lock_holder(folder):
     except OSError:
         return None
     try:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
-        except OSError as exc:
-            if exc.errno not in (errno.EAGAIN, errno.EACCES):
-                raise
-            return os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
-        fcntl.flock(fd, fcntl.LOCK_UN)
-        return None
+        holder = _try_flock(fd, fcntl.LOCK_SH)
+        if holder is None:
+            fcntl.flock(fd, fcntl.LOCK_UN)
+        return holder
     finally:
         os.close(fd)
+
+
+def _try_flock(fd, mode):
+    """Take the lock ``mode`` on ``fd`` without waiting: None when taken, else the holder the lock
+    file names ("unknown" if it names none)."""
+    try:
+        fcntl.flock(fd, mode | fcntl.LOCK_NB)
+    except OSError as exc:
+        if exc.errno not in (errno.EAGAIN, errno.EACCES):
+            raise
+        return os.pread(fd, 200, 0).decode(errors="replace").strip() or "unknown"
+    return None
 
 
 def relative_roots(run_root, **roots):
@@ -232,20 +234,29 @@ def _link_or_copy(src, dst):
     return dst
 
 
+def manifests(run_root):
+    """[(run directory, its manifest)] of the runs under ``run_root``, by folder name; folders
+    without a readable manifest are left out."""
+    out = []
+    if not os.path.isdir(run_root):
+        return out
+    for name in sorted(os.listdir(run_root)):
+        path = os.path.join(run_root, name)
+        try:
+            out.append((path, atomic.read_json(os.path.join(path, artifacts.MANIFEST))))
+        except (OSError, ValueError):
+            continue
+    return out
+
+
 def find_stage(run_root, name, identity, exclude):
     """A finished run directory under ``run_root`` whose stage ``name`` is done with ``identity``
     (newest first), or None."""
-    if not os.path.isdir(run_root):
-        return None
     found = []
-    for entry in os.listdir(run_root):
-        path = os.path.join(run_root, entry)
+    for path, m in manifests(run_root):
         if path == exclude:
             continue
-        try:
-            st = atomic.read_json(os.path.join(path, artifacts.MANIFEST))["stages"].get(name, {})
-        except (OSError, ValueError, KeyError):
-            continue
+        st = m.get("stages", {}).get(name, {})
         if (
             st.get("state") == "done"
             and not st.get("dropped")  # outputs deleted by run.drop_intermediates

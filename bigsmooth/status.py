@@ -24,7 +24,7 @@ import os
 from . import artifacts as art
 from .atomic import read_json
 from .errors import InputMissingError
-from .rundir import STAGES, RunDir, lock_holder
+from .rundir import STAGES, RunDir, lock_holder, manifests
 
 STATUS_SCHEMA = "bigsmooth.status/1"
 
@@ -81,25 +81,11 @@ def _version_run(path):
         return None
 
 
-def _run_dirs(run_root):
-    if not os.path.isdir(run_root):
-        return []
-    return [
-        os.path.join(run_root, n)
-        for n in sorted(os.listdir(run_root))
-        if os.path.exists(os.path.join(run_root, n, art.MANIFEST))
-    ]
-
-
 def latest_run(run_root, config_path=None):
     """The run directory under ``run_root`` created last, among the runs of ``config_path`` when any
     was made with it (else among all)."""
     runs = []
-    for path in _run_dirs(run_root):
-        try:
-            m = read_json(os.path.join(path, art.MANIFEST))
-        except (OSError, ValueError):
-            continue
+    for path, m in manifests(run_root):
         mine = config_path is not None and os.path.abspath(RunDir(path).config_path(m)) == os.path.abspath(
             config_path
         )
@@ -162,7 +148,8 @@ def record(target):
     stages = {}
     for name in STAGES:
         st = m["stages"][name]
-        stages[name] = {k: st.get(k) for k in ("state", "seconds", "peak_rss_mb", "reused_from", "error")}
+        stages[name] = {k: st.get(k) for k in ("state", "seconds", "reused_from", "error")}
+        # the runner stores a stage's peak memory in its summary
         stages[name]["peak_rss_mb"] = (st.get("summary") or {}).get("peak_rss_mb", st.get("peak_rss_mb"))
     states = [s["state"] for s in stages.values()]
     running = [n for n, s in stages.items() if s["state"] == "running"]

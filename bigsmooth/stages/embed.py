@@ -259,16 +259,16 @@ def _pair_diffs(con, fp, sql, inp, levels):
     return X[np.searchsorted(got, ra)] - X[np.searchsorted(got, rb)]
 
 
-def _kept_space(run_root, source, names, fitted):
+def _kept_space(run_root, source, names):
     """(fair space, source) for embed.fair_space = "previous": the space saved by the source run when
-    its features are tonight's (same names in the same order), else tonight's ``fitted`` space and
-    None, with a warning that says why."""
+    its features are tonight's (same names in the same order), else (None, None) with a warning
+    that says why (the caller fits the space on tonight's rows)."""
     info_path = art.EMBED_INFO.path(os.path.join(run_root, source["run_id"]))
     try:
         info = atomic.read_json(info_path)
     except (OSError, ValueError) as exc:
         log.warning("fair space: cannot read %s (%s); fitted on tonight's rows instead", info_path, exc)
-        return fitted, None
+        return None, None
     if info["features"] != names:
         added = [f for f in names if f not in info["features"]]
         gone = [f for f in info["features"] if f not in names]
@@ -281,22 +281,28 @@ def _kept_space(run_root, source, names, fitted):
             len(gone),
             examples(gone, 3) or "-",
         )
-        return fitted, None
+        return None, None
     log.info(
         "fair space: kept from run %s (version %s; first fitted by run %s), not fitted tonight",
         source["run_id"],
         source["version"],
         source["origin"],
     )
-    space = fairspace.FairSpace(
+    return saved_space(info), source
+
+
+def saved_space(info):
+    """The fair space a run saved in its embed.json (:data:`bigsmooth.artifacts.EMBED_INFO`), for
+    mapping rows the run did not embed: late rows, or the next night's rows."""
+    constant = set(info.get("constant_features", []))
+    return fairspace.FairSpace(
         mean=np.asarray(info["mean"], dtype=np.float64),
         scale=np.asarray(info["scale"], dtype=np.float64),
         transform=np.asarray(info["transform"], dtype=np.float64),
         removed=info["removed_dimensions"],
-        constant=np.array([f in info["constant_features"] for f in names], dtype=bool),
+        constant=np.array([f in constant for f in info["features"]], dtype=bool),
         explained=np.zeros(0),
     )
-    return space, source
 
 
 def run(ctx):
@@ -366,28 +372,29 @@ def run(ctx):
     if seen != n:
         raise RuntimeError(f"embed pass 1 streamed {seen} rows; the footers say {n}")
 
-    weights = encoding.weight_vector(names, ecfg["feature_weights"])
-    indicator = np.arange(p) >= len(numeric_names(inp))
-    diffs = None
-    if ecfg["pair_directions"] and inp["pairs"]:
-        diffs = _pair_diffs(con, fp, sql, inp, levels)
-        log.info(
-            "comparable pairs: %d pairs' feature differences, their %d principal direction(s) removed",
-            len(diffs),
-            ecfg["pair_directions"],
-        )
-    fs = fairspace.fit_fair_space(
-        mom,
-        weights,
-        ecfg["remove_sensitive"],
-        ecfg["components"],
-        indicator,
-        pair_diffs=diffs,
-        pair_count=ecfg["pair_directions"],
-    )
+    # embed.fair_space = "previous": the space of the run behind the current version, if usable
     kept = fp.get("fair_space_from")
-    if kept:
-        fs, kept = _kept_space(cfg["run"]["dir"], kept, names, fs)
+    fs, kept = _kept_space(cfg["run"]["dir"], kept, names) if kept else (None, None)
+    diffs = None
+    if fs is None:
+        weights = encoding.weight_vector(names, ecfg["feature_weights"])
+        indicator = np.arange(p) >= len(numeric_names(inp))
+        if ecfg["pair_directions"] and inp["pairs"]:
+            diffs = _pair_diffs(con, fp, sql, inp, levels)
+            log.info(
+                "comparable pairs: %d pairs' feature differences, their %d principal direction(s) removed",
+                len(diffs),
+                ecfg["pair_directions"],
+            )
+        fs = fairspace.fit_fair_space(
+            mom,
+            weights,
+            ecfg["remove_sensitive"],
+            ecfg["components"],
+            indicator,
+            pair_diffs=diffs,
+            pair_count=ecfg["pair_directions"],
+        )
     if fs.constant.any():
         log.warning(
             "constant features (no information, ignored): %s", ", ".join(np.array(names)[fs.constant][:10])

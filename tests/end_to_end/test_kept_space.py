@@ -13,7 +13,6 @@ import pyarrow.parquet as pq
 import pytest
 
 from bigsmooth.errors import EXIT_OK
-from bigsmooth.kernels import fairspace
 from bigsmooth.stages import embed
 from helpers import cli
 
@@ -90,28 +89,21 @@ def test_running_the_second_night_again_finds_the_same_run(two_nights):
 
 
 def test_a_space_with_other_features_is_not_kept(tmp_path, caplog):
-    # the saved space encoded a category level tonight's table lacks: tonight's fitted space is used
+    # the saved space encoded a category level tonight's table lacks: nothing is kept (the embed
+    # stage then fits the space on tonight's rows)
     saved = tmp_path / "r1" / "embed"
     saved.mkdir(parents=True)
     names = ["x", "colour=red", "colour=blue"]
     rng = np.random.default_rng(0)
-    fitted = fairspace.FairSpace(
-        mean=rng.normal(size=2),
-        scale=np.ones(2),
-        transform=np.eye(2),
-        removed=0,
-        constant=np.zeros(2, dtype=bool),
-        explained=np.ones(2),
-    )
     info = {"features": names, "mean": [0.0] * 3, "scale": [1.0] * 3, "transform": np.eye(3).tolist()}
     info |= {"removed_dimensions": 0, "constant_features": []}
     (saved / "embed.json").write_text(json.dumps(info))
     source = {"run_id": "r1", "version": "v1", "origin": "r1"}
     with caplog.at_level(logging.WARNING, logger="bigsmooth"):
-        space, kept = embed._kept_space(str(tmp_path), source, ["x", "colour=red"], fitted)
-    assert space is fitted and kept is None
+        space, kept = embed._kept_space(str(tmp_path), source, ["x", "colour=red"])
+    assert space is None and kept is None
     assert "0 new here" in caplog.text and "1 gone, e.g. 'colour=blue'" in caplog.text
-    space, kept = embed._kept_space(str(tmp_path), source, names, fitted)
+    space, kept = embed._kept_space(str(tmp_path), source, names)
     assert kept == source and np.array_equal(space.transform, np.eye(3))
     X = rng.normal(size=(5, 3))
     assert np.allclose(space.apply(X), X)  # numpy: ((X - 0) * 1) @ I
