@@ -225,6 +225,20 @@ SOLVE_WORK = _a(
 )
 SOLVE_X0 = _a("solve.x0", "solve", "solve/x0.npy", "npy", "warm start: the starting iterate")
 SOLVE_X0_INFO = _a("solve.x0_info", "solve", "solve/x0.npy.json", "json", "warm start: rows matched and new")
+SOLVE_ANCHOR = _a(
+    "solve.anchor",
+    "solve",
+    "solve/last-night",
+    "dir",
+    "solve.stability: the anchored rows (member rows) and last night's adjusted scores they are pulled towards (member target)",
+)
+SOLVE_ANCHOR_INFO = _a(
+    "solve.anchor_info",
+    "solve",
+    "solve/anchor.json",
+    "json",
+    "solve.stability: the version and rows anchored",
+)
 SOLVE_CHECKPOINT = _a(
     "solve.checkpoint", "solve", "checkpoint/solver.npz", "npz", "solver state after the last sweep"
 )

@@ -292,6 +292,13 @@ RULES = {
             default=False,
             doc="start the solver from the adjusted scores currently published in output.path, for ids present in both (new ids start from their raw score); converges to the same answer within tol, in fewer sweeps",
         ),
+        "stability": Rule(
+            "float",
+            default=0.0,
+            lo=0.0,
+            hi=1000.0,
+            doc="weight mu of a pull towards the adjusted score currently published (last night's) for rows whose raw scores did not change: the solve becomes (C + mu C_S + lam L) f = C y + mu C_S f_last (S those rows); 0 (default) is the published method as it is. Fewer decisions flip night over night; similar rows can then differ by their history (README, Night over night)",
+        ),
         "tol": Rule(
             "float", default=1e-6, lo=1e-15, hi=1.0, doc="stop when ||C y - A f|| / ||C y|| falls below this"
         ),

@@ -3,7 +3,9 @@
 At the solution of (C + lam L) f = C y, row i satisfies the coordinate update
     f_i = c_i y_i / (c_i + lam d_i) + sum_j lam w_ij f_j / (c_i + lam d_i),
 so the adjusted score splits into the row's own score's share and each neighbour's share (they
-add up to f_i up to the row's residual, i.e. the solver's tolerance). The breakdown reads one row of
+add up to f_i up to the row's residual, i.e. the solver's tolerance). A row anchored by
+solve.stability = mu has c_i (1 + mu) + lam d_i below the line and a third share, mu c_i t_i / (...),
+from t_i, its adjusted score in the version published before the run. The breakdown reads one row of
 the stored graph and the neighbours' scores; the audit uses the same function for the report's
 largest changes.
 """
@@ -32,7 +34,11 @@ def breakdown(rd, row, lam, kind, top=TOP):
     f_nb = np.asarray(F[cols], dtype=np.float64).reshape(len(cols), -1)
     d = float(w.sum())
     c = 1.0 if kind == "unnormalised" else (d if d > 0 else 1.0)
-    own, each = lk.terms(y, w, f_nb, lam, c)
+    pull, anchor = _anchor(rd, row, len(y))
+    own, each = lk.terms(y, w, f_nb, lam, c, pull=pull)
+    from_last = (
+        pull * c * anchor["last_adjusted"] / (c * (1.0 + pull) + lam * d) if pull else np.zeros(len(y))
+    )
     dist = np.sqrt(
         ((np.asarray(E[cols], dtype=np.float64) - np.asarray(E[row], dtype=np.float64)) ** 2).sum(axis=1)
     )
@@ -48,7 +54,9 @@ def breakdown(rd, row, lam, kind, top=TOP):
         "adjusted": f.tolist(),
         "own_share": np.atleast_1d(own).tolist(),
         "neighbours_share": each.sum(axis=0).tolist(),
-        "residual": (f - np.atleast_1d(own) - each.sum(axis=0)).tolist(),
+        "anchor": anchor | {"last_adjusted": anchor["last_adjusted"].tolist()} if pull else None,
+        "anchor_share": from_last.tolist(),
+        "residual": (f - np.atleast_1d(own) - each.sum(axis=0) - from_last).tolist(),
         "heaviest": [
             {
                 "row": int(cols[t]),
@@ -60,6 +68,24 @@ def breakdown(rd, row, lam, kind, top=TOP):
             }
             for t in heavy
         ],
+    }
+
+
+def _anchor(rd, row, c):
+    """(mu, {"weight", "version", "last_adjusted" (c,)}) when solve.stability anchored ``row`` in
+    this run, else (0.0, None)."""
+    if not art.SOLVE_ANCHOR_INFO.exists(rd):
+        return 0.0, None
+    info = art.SOLVE_ANCHOR_INFO.load(rd)
+    rows = art.SOLVE_ANCHOR.load(rd, mmap=True, member="rows")
+    at = int(np.searchsorted(rows, row))
+    if not info.get("used") or at >= len(rows) or int(rows[at]) != row:
+        return 0.0, None
+    t = np.asarray(art.SOLVE_ANCHOR.load(rd, mmap=True, member="target")[at], dtype=np.float64).reshape(c)
+    return float(info["weight"]), {
+        "weight": float(info["weight"]),
+        "version": info["version"],
+        "last_adjusted": t,
     }
 
 
@@ -142,17 +168,28 @@ def lines(rec):
     )
     if "protected" in rec:
         out.append("protected attributes: " + ", ".join(f"{k} = {v}" for k, v in rec["protected"].items()))
-    den = rec["c"] + rec["lam"] * rec["degree"]
+    a = rec.get("anchor")
+    mu = a["weight"] if a else 0.0
+    den = rec["c"] * (1 + mu) + rec["lam"] * rec["degree"]
+    below = "c (1 + mu) + lam d" if a else "c + lam d"
     out.append(
         f"where the adjusted score comes from (the update at the solution; lam {rec['lam']:g}, "
         f"{rec['laplacian']} Laplacian, c = {rec['c']:.4g}, {rec['neighbours']} neighbours of total weight "
-        f"d = {rec['degree']:.4g}, so c + lam d = {den:.4g}):"
+        f"d = {rec['degree']:.4g}"
+        + (f", anchored by solve.stability mu = {mu:g} to version {a['version']}" if a else "")
+        + f", so {below} = {den:.4g}):"
     )
     for j, c in enumerate(rec["scores"]):
+        last = (
+            f"; last night's adjusted score mu c t / ({below}) = {rec['anchor_share'][j]:.4f} "
+            f"(t = {a['last_adjusted'][j]:.4f})"
+            if a
+            else ""
+        )
         out.append(
-            f"  {c}: own score c y / (c + lam d) = {rec['own_share'][j]:.4f}; neighbours "
-            f"sum lam w_j f_j / (c + lam d) = {rec['neighbours_share'][j]:.4f}; together "
-            f"{rec['own_share'][j] + rec['neighbours_share'][j]:.6f} against the solution "
+            f"  {c}: own score c y / ({below}) = {rec['own_share'][j]:.4f}; neighbours "
+            f"sum lam w_j f_j / ({below}) = {rec['neighbours_share'][j]:.4f}{last}; together "
+            f"{rec['own_share'][j] + rec['neighbours_share'][j] + rec['anchor_share'][j]:.6f} against the solution "
             f"{rec['adjusted'][j]:.6f} (difference {rec['residual'][j]:.1e}: the solver's tolerance)"
         )
     if rec["heaviest"]:

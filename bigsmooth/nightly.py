@@ -22,6 +22,32 @@ from .table import connect_budget, quote
 SCHEMA = 1
 
 
+def last_night(root, table):
+    """(version, None): the published version that stands for last night in output folder
+    ``root``, for a run on the input table whose fingerprint is ``table``: the current version,
+    unless its provenance says it was published from this same table (an earlier run tonight, e.g.
+    with another lam), then the version that run took as last night (its comparison's, else its
+    anchor's). (None, reason) when there is none."""
+    from .atomic import read_json
+
+    pointer = os.path.join(root, art.OUTPUT_POINTER)
+    if not os.path.exists(pointer):
+        return None, "nothing published yet"
+    current = read_json(pointer)["version"]
+    try:
+        audit = read_json(os.path.join(root, current, art.OUTPUT_AUDIT))
+    except (OSError, ValueError):
+        return current, None  # nothing tells: taken as last night's
+    if (audit.get("provenance") or {}).get("input_table") != table:
+        return current, None
+    earlier = (audit.get("night_over_night") or {}).get("last_version") or (
+        (audit["provenance"].get("stability") or {}).get("version")
+    )
+    if earlier and os.path.isdir(os.path.join(root, earlier)):
+        return earlier, None
+    return None, f"the current version {current} is of tonight's table and names no earlier night"
+
+
 def version_select(folder, id_col, score, suffix):
     """SQL of (id, y, f) over a published version folder's Parquet files."""
     path = os.path.join(folder, "**", "*.parquet").replace("'", "''")

@@ -55,6 +55,8 @@ def record(rundir, cfg, fp, version, gates):
         "input_rows": int(fp["rows"]),
         "input_files": len(fp["files"]),
         "input_fingerprint": fp["hash"],
+        # the table's own fingerprint (input_fingerprint also folds in a kept fair space's run)
+        "input_table": fp.get("hash_before_space", fp["hash"]),
         "id_column": cfg["input"]["id"],
         "score_columns": list(cfg["input"]["scores"]),
         "adjusted_suffix": cfg["output"]["suffix"],
@@ -63,6 +65,7 @@ def record(rundir, cfg, fp, version, gates):
         "neighbours": cfg["graph"]["neighbours"],
         **_graph_record(rundir),
         "fair_space_from": _space_record(rundir),
+        "stability": _anchor_record(rundir),
         "output_path": cfg["output"]["path"],
         "output_version": version if status == "published" else None,
         "status": status,
@@ -82,6 +85,13 @@ def _space_record(rundir):
     from . import artifacts as art
 
     return art.EMBED_INFO.load(rundir).get("fair_space_from") if art.EMBED_INFO.exists(rundir) else None
+
+
+def _anchor_record(rundir):
+    """solve.stability's record (weight, the version anchored to, rows anchored), or None."""
+    from . import artifacts as art
+
+    return art.SOLVE_ANCHOR_INFO.load(rundir) if art.SOLVE_ANCHOR_INFO.exists(rundir) else None
 
 
 def _graph_record(rundir):

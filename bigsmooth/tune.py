@@ -50,7 +50,16 @@ def tune_run(rd, cfg, lams, budget, holdout):
     deg = np.empty(n)
     deg[perm] = split.degree
     c = laplacian.row_weights_from_degrees(deg, s["laplacian"])
-    b = (c[:, None] * Y)[perm]
+    anchor = art.SOLVE_ANCHOR_INFO.load(rd) if art.SOLVE_ANCHOR_INFO.exists(rd) else {}
+    if anchor.get("used"):
+        # the run's solve.stability anchor, as its solve stage had it: every lam is tried with it
+        from .stages.solve import anchored
+
+        rows, target = (art.SOLVE_ANCHOR.load(rd, member=m) for m in ("rows", "target"))
+        c, b = anchored(c, Y, rows, target, anchor["weight"])
+    else:
+        b = c[:, None] * Y
+    b = b[perm]
     known = np.flatnonzero(np.isfinite(labels))
     if len(known) < 20:
         raise ConfigError(f"tuning needs labelled rows; only {len(known)} rows have a label")

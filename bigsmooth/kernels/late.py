@@ -78,13 +78,15 @@ def solve_batch(y, old_row, old_w, old_f, late_W, lam, kind="unnormalised"):
     return np.asarray(f, dtype=np.float64).reshape(b, -1), c, deg
 
 
-def terms(y, w, f_nb, lam, c):
+def terms(y, w, f_nb, lam, c, pull=0.0):
     """The terms of the coordinate update at the solution for one row: (own share c y / (c + lam d),
     each neighbour's share lam w_j f_j / (c + lam d)); they add up to the row's adjusted score.
-    ``y`` a score or a row of scores (s,); ``f_nb`` (len(w),) or (len(w), s)."""
+    ``y`` a score or a row of scores (s,); ``f_nb`` (len(w),) or (len(w), s). A row anchored by
+    solve.stability (``pull`` = mu) has c (1 + mu) + lam d below the line, and a third share,
+    mu c t / (c (1 + mu) + lam d), which the caller adds (t: last night's adjusted score)."""
     w = np.asarray(w, dtype=np.float64)
     f_nb = np.asarray(f_nb, dtype=np.float64)
-    den = c + lam * w.sum()
+    den = c * (1.0 + pull) + lam * w.sum()
     wb = w.reshape((-1,) + (1,) * (f_nb.ndim - 1))
     return c * np.asarray(y, dtype=np.float64) / den, lam * wb * f_nb / den
 

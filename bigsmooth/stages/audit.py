@@ -529,9 +529,9 @@ def gates_line(gates):
 
 
 def night_over_night(cfg, fp, version, y, f, fig):
-    """The current published version (last night) against tonight's first score column (see
-    :mod:`bigsmooth.nightly`), or None when nothing was published before (or the current version is
-    this run's own). Tonight's ids come from the input files by row number; its adjusted scores are
+    """Last night's published version (:func:`nightly.last_night`: the current version, unless it
+    was published from tonight's own table) against tonight's first score column (see
+    :mod:`bigsmooth.nightly`), or None when there is none. Tonight's ids come from the input files by row number; its adjusted scores are
     clipped to the score range as they will be published."""
     import duckdb
     import pyarrow as pa
@@ -540,10 +540,9 @@ def night_over_night(cfg, fp, version, y, f, fig):
     from ..table import Source, connect_budget, quote
 
     root, inp = cfg["output"]["path"], cfg["input"]
-    pointer = os.path.join(root, art.OUTPUT_POINTER)
-    if not os.path.exists(pointer):
+    last, _ = nightly.last_night(root, fp.get("hash_before_space", fp["hash"]))
+    if last is None:
         return None
-    last = atomic.read_json(pointer)["version"]
     folder = os.path.join(root, last)
     if last == version or not os.path.exists(os.path.join(folder, art.OUTPUT_AUDIT)):
         return None

@@ -173,7 +173,7 @@ SPECS = (
         reads=("embed.embedding", "graph.weights"),
         writes=("order.perm", "order.groups", "order.split"),
     ),
-    # a warm start reads the output published at the time: not shareable then (see shareable())
+    # a warm start or an anchor reads the output published at the time: not shareable then (see shareable())
     StageSpec(
         "solve",
         ("solve.*",),
@@ -261,7 +261,7 @@ def identities(cfg, input_hash):
 
 
 def shareable(name, cfg):
-    if name == "solve" and cfg["solve"]["warm_start"]:
+    if name == "solve" and (cfg["solve"]["warm_start"] or cfg["solve"]["stability"] > 0):
         return False
     return BY_NAME[name].shareable
 

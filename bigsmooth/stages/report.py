@@ -181,6 +181,19 @@ def _space_line(prov):
     )
 
 
+def _anchor_line(prov):
+    a = prov.get("stability")
+    if not a:
+        return "off (solve.stability = 0): the published method as it is"
+    if not a.get("used"):
+        return f"solve.stability = {a['weight']:g}, but no row anchored: {a.get('reason', '-')}"
+    return (
+        f"solve.stability = {a['weight']:g}: {a['rows_anchored']:,} rows whose raw scores did not change "
+        f"pulled towards their adjusted score in version {a['version']}; {a['rows_rescored']:,} re-scored "
+        f"and {a['rows_new']:,} new rows free"
+    )
+
+
 def _search_line(prov):
     search = prov.get("graph_search") or "not recorded"
     if prov.get("graph_recall") is None:
@@ -200,9 +213,10 @@ def _table(header, rows, cls=""):
     return f"<table class='{cls}'><tr>{h}</tr>{body}</table>"
 
 
-def _night_over_night(nn, kept):
+def _night_over_night(nn, kept, anchored=False):
     """The section comparing tonight with the version published before (bigsmooth.nightly); ``kept``:
-    the fair space was kept from an earlier run (embed.fair_space = "previous")."""
+    the fair space was kept from an earlier run (embed.fair_space = "previous"); ``anchored``: rows
+    were pulled towards last night's scores (solve.stability)."""
     e = html.escape
 
     def pct(v):
@@ -240,6 +254,13 @@ def _night_over_night(nn, kept):
             else ' The fair space was fitted tonight: <code>embed.fair_space = "previous"</code> keeps '
             "the space of the version before and removes most such flips (README, night over night)."
         )
+        + (
+            ""
+            if anchored
+            else " <code>solve.stability</code> (off tonight) pulls rows whose raw score did not change "
+            "towards last night's adjusted score, at the price that two similar rows can then differ by "
+            "their history (README, night over night)."
+        )
         + "</p>"
         if nn["rows_in_both"] and nn["adjusted_flips"] > nn["raw_flips"]
         else ""
@@ -259,11 +280,19 @@ def _why(t, c):
     breakdown as `bigsmooth explain ID`) and its heaviest neighbours."""
     w = c["why"]
     e = html.escape
+    a = w.get("anchor")
+    below = "c (1 + &mu;) + &lambda; d" if a else "c + &lambda; d"
+    last = (
+        f" + last night's share {fmt(w['anchor_share'][0])} (&mu; c t / ({below}), &mu; = {fmt(a['weight'])}, "
+        f"t = {fmt(a['last_adjusted'][0])} in {e(a['version'])})"
+        if a
+        else ""
+    )
     head = (
         f"<h4 id='why-{t}'>Why {e(str(c['id']))} moved</h4><p>Adjusted {fmt(w['adjusted'][0])} = own score's share "
-        f"{fmt(w['own_share'][0])} (c y / (c + &lambda; d), raw {fmt(w['raw'][0])}) + neighbours' share "
-        f"{fmt(w['neighbours_share'][0])} (&lambda; &Sigma; w<sub>j</sub> f<sub>j</sub> / (c + &lambda; d), "
-        f"{w['neighbours']} neighbours of total weight d = {fmt(w['degree'])}). Same breakdown: "
+        f"{fmt(w['own_share'][0])} (c y / ({below}), raw {fmt(w['raw'][0])}) + neighbours' share "
+        f"{fmt(w['neighbours_share'][0])} (&lambda; &Sigma; w<sub>j</sub> f<sub>j</sub> / ({below}), "
+        f"{w['neighbours']} neighbours of total weight d = {fmt(w['degree'])}){last}. Same breakdown: "
         f"<code>bigsmooth explain CONFIG {e(str(c['id']))}</code>.</p>"
     )
     rows = [
@@ -335,6 +364,7 @@ def render(report, plots, tune=None, applied_lam=None):
             ["neighbours k", prov["neighbours"]],
             ["neighbour search", _search_line(prov)],
             ["fair space", _space_line(prov)],
+            ["night-to-night anchor", _anchor_line(prov)],
         ]
         parts += [
             "<section id='provenance'><h2>Where these figures come from</h2>",
@@ -564,7 +594,12 @@ def render(report, plots, tune=None, applied_lam=None):
     parts += [_caution(FLIP_CAUTION), "</section>"]
     nn = report.get("night_over_night")
     if nn:
-        parts.append(_night_over_night(nn, bool((report.get("provenance") or {}).get("fair_space_from"))))
+        prov = report.get("provenance") or {}
+        parts.append(
+            _night_over_night(
+                nn, bool(prov.get("fair_space_from")), bool((prov.get("stability") or {}).get("used"))
+            )
+        )
 
     sv = report.get("solver", {})
     if sv:

@@ -10,6 +10,11 @@ The system is permuted into the order stage's group ordering and solved by
 - ``blocks``: plain blocked coordinate descent (block Gauss-Seidel);
 - ``direct``: a sparse direct solve (small tables; the reference).
 
+With solve.stability = mu > 0 the rows whose raw scores equal those of the version currently
+published (last night's) are pulled towards its adjusted scores t: (C + mu C_S + lam L) f = C y +
+mu C_S t, S those rows, i.e. min ||f - y||^2_C + mu ||f - t||^2_{C_S} + lam f'Lf; only the diagonal
+and the right-hand side change, so every method solves it as it is.
+
 The result is written in input row order. The checkpoint (iterate and solver state) is replaced
 atomically after every ``solve.checkpoint_every`` sweeps; a run that is started again continues
 from it and reaches the same bits as an uninterrupted run.
@@ -23,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import artifacts as art
-from .. import atomic, faults, logs, parallel
+from .. import atomic, faults, logs, nightly, parallel
 from ..errors import EngineUnavailableError
 from ..kernels import laplacian, solver, sweepcg
 
@@ -47,9 +52,10 @@ def save_checkpoint(path, **arrays):
         faults.point("checkpoint:write")
 
 
-def previous_scores(rundir, cfg, fp, Y):
-    """The warm-start iterate: the adjusted scores currently published in output.path for ids in
-    both tables, the raw score for the others. Returns (X0, record)."""
+def _published(cfg, fp, n, raw=False, version=None):
+    """The version currently published in output.path (or ``version``), joined to tonight's rows by
+    id: (version, rows (m,) tonight's row numbers, adjusted (m, c), raw (m, c) or None), or (None,
+    reason)."""
     import glob
 
     import duckdb
@@ -59,33 +65,46 @@ def previous_scores(rundir, cfg, fp, Y):
 
     inp, out = cfg["input"], cfg["output"]
     pointer = os.path.join(out["path"], art.OUTPUT_POINTER)
-    if not os.path.exists(pointer):
-        log.info("warm start: nothing published in %s yet; starting from the raw scores", out["path"])
-        return Y, {"used": False, "reason": "nothing published yet"}
-    version = read_json(pointer)["version"]
+    if version is None and not os.path.exists(pointer):
+        return None, "nothing published yet"
+    version = version or read_json(pointer)["version"]
     files = sorted(glob.glob(os.path.join(out["path"], version, "**", "*.parquet"), recursive=True))
     con = connect_budget(cfg["run"]["memory_mb"])
     src = Source(con, fp)
     idq = quote(inp["id"])
-    adj = [quote(c + out["suffix"]) for c in inp["scores"]]
+    cols = [quote(c + out["suffix"]) for c in inp["scores"]]
+    if raw:
+        cols += [quote(c) for c in inp["scores"]]
     try:
         t = src.fetch_arrow(
             con,
-            f"SELECT src.{ROW}, {', '.join('p.' + a for a in adj)} FROM {{src}} "
+            f"SELECT src.{ROW}, {', '.join('p.' + a for a in cols)} FROM {{src}} "
             f"JOIN read_parquet($prev, union_by_name = true) p ON src.{idq} = p.{idq}",
             prev=files,
         )
     except duckdb.Error as exc:
-        log.warning(
-            "warm start: cannot read the published version %s (%s); starting from the raw scores",
-            version,
-            str(exc).splitlines()[0],
-        )
-        return Y, {"used": False, "reason": f"cannot read version {version}"}
+        log.warning("cannot read the published version %s: %s", version, str(exc).splitlines()[0])
+        return None, f"cannot read version {version}"
+    finally:
+        con.close()
+    c = len(inp["scores"])
     rows = t.column(0).to_numpy()
+    got = np.empty((len(rows), len(cols)))
+    for j in range(len(cols)):
+        got[:, j] = t.column(j + 1).to_numpy(zero_copy_only=False)
+    return (version, rows, got[:, :c], got[:, c:] if raw else None), None
+
+
+def previous_scores(rundir, cfg, fp, Y):
+    """The warm-start iterate: the adjusted scores currently published in output.path for ids in
+    both tables, the raw score for the others. Returns (X0, record)."""
+    got, reason = _published(cfg, fp, len(Y))
+    if got is None:
+        log.info("warm start: %s in %s; starting from the raw scores", reason, cfg["output"]["path"])
+        return Y, {"used": False, "reason": reason}
+    version, rows, adjusted, _ = got
     X0 = np.array(Y, dtype=np.float64)
-    for j in range(len(adj)):
-        X0[rows, j] = t.column(j + 1).to_numpy(zero_copy_only=False)
+    X0[rows] = adjusted
     log.info(
         "warm start from version %s: %d of %d rows start from last night's adjusted score, %d new",
         version,
@@ -99,6 +118,65 @@ def previous_scores(rundir, cfg, fp, Y):
         "rows_matched": int(len(rows)),
         "rows_new": int(len(Y) - len(rows)),
     }
+
+
+def anchor_of(cfg, fp, Y):
+    """solve.stability: the rows of tonight's table whose raw scores equal those of the version
+    currently published (every score column, compared as published), and that version's adjusted
+    scores for them. Returns (rows (m,) int64, target (m, c), record); no rows when nothing is
+    published or it cannot be read (the record says why)."""
+    n, c = Y.shape
+    mu = cfg["solve"]["stability"]
+    last, reason = nightly.last_night(cfg["output"]["path"], fp.get("hash_before_space", fp["hash"]))
+    if last is not None and os.path.exists(os.path.join(cfg["output"]["path"], art.OUTPUT_POINTER)):
+        current = atomic.read_json(os.path.join(cfg["output"]["path"], art.OUTPUT_POINTER))["version"]
+        if last != current:
+            log.info(
+                "solve.stability: the current version %s is of tonight's table (an earlier run); "
+                "anchoring to the version it took as last night, %s",
+                current,
+                last,
+            )
+    got, reason = _published(cfg, fp, n, raw=True, version=last) if reason is None else (None, reason)
+    if got is None:
+        log.warning(
+            "solve.stability = %g: %s in %s, so no row is anchored tonight", mu, reason, cfg["output"]["path"]
+        )
+        return np.empty(0, np.int64), np.empty((0, c)), {"used": False, "weight": mu, "reason": reason}
+    version, rows, adjusted, raw = got
+    same = np.all(raw == np.asarray(Y, dtype=np.float64)[rows], axis=1)
+    order = np.argsort(rows[same], kind="stable")
+    kept, target = rows[same][order].astype(np.int64), adjusted[same][order]
+    rec = {
+        "used": True,
+        "weight": mu,
+        "version": version,
+        "rows_anchored": int(len(kept)),
+        "rows_rescored": int(len(rows) - len(kept)),
+        "rows_new": int(n - len(rows)),
+    }
+    log.info(
+        "solve.stability = %g: %d rows pulled towards their adjusted score in version %s (raw scores "
+        "unchanged); %d re-scored and %d new rows are not",
+        mu,
+        rec["rows_anchored"],
+        version,
+        rec["rows_rescored"],
+        rec["rows_new"],
+    )
+    return kept, target, rec
+
+
+def anchored(cvec, Y, rows, target, mu):
+    """(c_eff, b) of the anchored system (C + mu C_S + lam L) f = C y + mu C_S t: c_eff = c (1 + mu)
+    on the anchored ``rows`` (c elsewhere), b = c y + mu c t there (c y elsewhere). With no rows (or
+    mu = 0) the published method's (c, c y)."""
+    c_eff = np.array(cvec, dtype=np.float64)
+    b = c_eff[:, None] * Y
+    if len(rows) and mu > 0:
+        c_eff[rows] *= 1.0 + mu
+        b[rows] += (mu * np.asarray(cvec, dtype=np.float64)[rows])[:, None] * target
+    return c_eff, b
 
 
 def _sweeps_saved(system, b, Yp, X0p, residuals, sweeps):
@@ -127,7 +205,8 @@ def workers_for(s):
 class Problem:
     """One solve: (C + lam L) f = C y in input row order, with the settings of [solve].
 
-    ``Y`` raw scores (n, c); ``cvec`` the diagonal of C (n,); ``b`` = cvec * Y; ``perm`` the order
+    ``Y`` raw scores (n, c); ``cvec`` the diagonal of C (n,), with solve.stability's anchor added
+    (:func:`anchored`); ``b`` = C y (plus the anchor's term); ``perm`` the order
     stage's row order; ``X0`` the start (raw scores, or last night's for a warm start); ``cold``
     whether the start is the raw scores (then scaled, see sweepcg.scaled_start); ``ck_path`` the
     checkpoint file."""
@@ -366,6 +445,15 @@ def _blocks(pb, A):
     }
 
 
+def _system(W, s, cvec, c_eff):
+    """A = C + lam L, plus the anchor's diagonal (c_eff - c) when solve.stability anchors rows."""
+    import scipy.sparse as sp
+
+    A, _ = laplacian.system(W, s["lam"], s["laplacian"])
+    extra = c_eff - cvec
+    return (A + sp.diags(extra)).tocsr() if np.any(extra) else A
+
+
 def run(ctx):
     """The solve stage (see the module docstring)."""
     rundir, cfg = ctx.rundir, ctx.cfg
@@ -384,8 +472,20 @@ def run(ctx):
         deg = laplacian.degrees(W)
         edges = W.nnz
     cvec = laplacian.row_weights_from_degrees(deg, s["laplacian"])
-    b = cvec[:, None] * Y
     info = {"method": s["method"], "laplacian": s["laplacian"], "lam": s["lam"], "rows": n, "columns": c}
+    a_rows = np.empty(0, np.int64)
+    if s["stability"] > 0:
+        # kept in the run directory, as the warm start is, so that a resumed run solves the same system
+        if art.SOLVE_ANCHOR.exists(rundir) and art.SOLVE_ANCHOR_INFO.exists(rundir):
+            a_rows = art.SOLVE_ANCHOR.load(rundir, member="rows")
+            a_target = art.SOLVE_ANCHOR.load(rundir, member="target")
+            info["anchor"] = art.SOLVE_ANCHOR_INFO.load(rundir)
+        else:
+            a_rows, a_target, info["anchor"] = anchor_of(cfg, ctx.fp, Y)
+            art.SOLVE_ANCHOR.save(rundir, a_target, member="target")
+            art.SOLVE_ANCHOR.save(rundir, a_rows, member="rows")
+            art.SOLVE_ANCHOR_INFO.save(rundir, info["anchor"])
+    c_eff, b = anchored(cvec, Y, a_rows, a_target if len(a_rows) else None, s["stability"])
     ck_path = art.SOLVE_CHECKPOINT.path(rundir)
     art.SOLVE_CHECKPOINT.folder(rundir)
     if s["lam"] == 0 or edges == 0:
@@ -398,7 +498,7 @@ def run(ctx):
             note="nothing to smooth",
         )
     elif s["method"] == "direct":
-        A, _ = laplacian.system(W, s["lam"], s["laplacian"])
+        A = _system(W, s, cvec, c_eff)
         F = solver.direct_solve(A, b)
         res = solver.relative_residual(A, b, F)
         info.update(status=solver.STATUS_CONVERGED, sweeps=0, residuals=[res], final_residual=res)
@@ -419,10 +519,12 @@ def run(ctx):
             # back from solve/x0.npy
             cold = not info.get("warm_start", {}).get("used", False)
             tasks = _sweep_tasks(ctx)
-            Xp, more = _sweep_cg(Problem(rundir, s, Y, cvec, b, perm, X0, cold, ck_path, ctx.executor, tasks))
+            Xp, more = _sweep_cg(
+                Problem(rundir, s, Y, c_eff, b, perm, X0, cold, ck_path, ctx.executor, tasks)
+            )
         else:
-            A, _ = laplacian.system(W, s["lam"], s["laplacian"])
-            Xp, more = _blocks(Problem(rundir, s, Y, cvec, b, perm, X0, False, ck_path), A)
+            A = _system(W, s, cvec, c_eff)
+            Xp, more = _blocks(Problem(rundir, s, Y, c_eff, b, perm, X0, False, ck_path), A)
         info.update(more)
         F = np.empty_like(Xp)
         F[perm] = Xp
