@@ -45,6 +45,15 @@ def _check_writable(path):
         probe = parent
     if not os.path.isdir(probe) or not os.access(probe, os.W_OK | os.X_OK):
         raise OutputError(f"output.path {path} is not writable (checked {probe})")
+    link = os.path.join(path, artifacts.OUTPUT_LINK)
+    if os.path.isdir(link) and not os.path.islink(link):
+        # e.g. the output folder copied without keeping symbolic links: publishing could not
+        # replace it, so say so before the run does its work
+        raise OutputError(
+            f"{link} is a folder, not the symbolic link to the current version that bigsmooth keeps "
+            "(was the output folder copied without its links?); replace it by a link to the version "
+            f"named in {artifacts.OUTPUT_POINTER}, or remove it"
+        )
 
 
 def _allow_numba_threads(threads):

@@ -275,6 +275,13 @@ CASES = [
         says=["not writable"],
     ),
     Case(
+        "output's current link copied as a folder",
+        [B],
+        setup=lambda tmp: (tmp / "out" / "current").mkdir(parents=True),
+        code=EXIT_CANTCREAT,
+        says=["out/current is a folder, not the symbolic link", "copied without its links"],
+    ),
+    Case(
         "run directory locked by another run",
         [B],
         setup=lambda tmp: _hold_run_lock(tmp),
@@ -705,7 +712,12 @@ def test_bad_input_case(tmp_path, case):
     for phrase in case.says:
         assert phrase in res.stderr, (phrase, res.stderr[-3000:])
     assert "Traceback" not in res.stderr
-    _assert_nothing_published(tmp_path)
+    if case.name == "output's current link copied as a folder":
+        # the folder the case put there is left as it was, and nothing else was written
+        assert [p.name for p in (tmp_path / "out").iterdir()] == ["current"]
+        assert not list((tmp_path / "out" / "current").iterdir())
+    else:
+        _assert_nothing_published(tmp_path)
 
 
 def test_the_table_has_at_least_eighty_cases():
