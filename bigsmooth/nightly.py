@@ -22,9 +22,15 @@ from .table import connect_budget, quote
 SCHEMA = 1
 
 
+def table_key(fp):
+    """The fingerprint of the input table itself (a run's ``fp["hash"]`` also folds in the run
+    whose fair space it keeps): two runs on the same table tonight share it."""
+    return fp.get("hash_before_space", fp["hash"])
+
+
 def last_night(root, table):
     """(version, None): the published version that stands for last night in output folder
-    ``root``, for a run on the input table whose fingerprint is ``table``: the current version,
+    ``root``, for a run on the input table whose :func:`table_key` is ``table``: the current version,
     unless its provenance says it was published from this same table (an earlier run tonight, e.g.
     with another lam), then the version that run took as last night (its comparison's, else its
     anchor's). (None, reason) when there is none."""

@@ -36,6 +36,8 @@ def status_of(gates, on_fail):
 
 def record(rundir, cfg, fp, version, gates):
     """The provenance record of a run's audit and output."""
+    from .nightly import table_key
+
     manifest = rundir.load()
     status, failed = status_of(gates, cfg["gates"]["on_fail"])
     cfg_path = rundir.config_path(manifest)
@@ -56,7 +58,7 @@ def record(rundir, cfg, fp, version, gates):
         "input_files": len(fp["files"]),
         "input_fingerprint": fp["hash"],
         # the table's own fingerprint (input_fingerprint also folds in a kept fair space's run)
-        "input_table": fp.get("hash_before_space", fp["hash"]),
+        "input_table": table_key(fp),
         "id_column": cfg["input"]["id"],
         "score_columns": list(cfg["input"]["scores"]),
         "adjusted_suffix": cfg["output"]["suffix"],

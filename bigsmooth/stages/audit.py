@@ -531,8 +531,8 @@ def gates_line(gates):
 def night_over_night(cfg, fp, version, y, f, fig):
     """Last night's published version (:func:`nightly.last_night`: the current version, unless it
     was published from tonight's own table) against tonight's first score column (see
-    :mod:`bigsmooth.nightly`), or None when there is none. Tonight's ids come from the input files by row number; its adjusted scores are
-    clipped to the score range as they will be published."""
+    :mod:`bigsmooth.nightly`), or None when there is none. Tonight's ids come from the input files
+    by row number; its adjusted scores are clipped to the score range as they will be published."""
     import duckdb
     import pyarrow as pa
 
@@ -540,7 +540,7 @@ def night_over_night(cfg, fp, version, y, f, fig):
     from ..table import Source, connect_budget, quote
 
     root, inp = cfg["output"]["path"], cfg["input"]
-    last, _ = nightly.last_night(root, fp.get("hash_before_space", fp["hash"]))
+    last, _ = nightly.last_night(root, nightly.table_key(fp))
     if last is None:
         return None
     folder = os.path.join(root, last)

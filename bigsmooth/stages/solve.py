@@ -52,7 +52,7 @@ def save_checkpoint(path, **arrays):
         faults.point("checkpoint:write")
 
 
-def _published(cfg, fp, n, raw=False, version=None):
+def _published(cfg, fp, raw=False, version=None):
     """The version currently published in output.path (or ``version``), joined to tonight's rows by
     id: (version, rows (m,) tonight's row numbers, adjusted (m, c), raw (m, c) or None), or (None,
     reason)."""
@@ -98,7 +98,7 @@ def _published(cfg, fp, n, raw=False, version=None):
 def previous_scores(rundir, cfg, fp, Y):
     """The warm-start iterate: the adjusted scores currently published in output.path for ids in
     both tables, the raw score for the others. Returns (X0, record)."""
-    got, reason = _published(cfg, fp, len(Y))
+    got, reason = _published(cfg, fp)
     if got is None:
         log.info("warm start: %s in %s; starting from the raw scores", reason, cfg["output"]["path"])
         return Y, {"used": False, "reason": reason}
@@ -127,7 +127,7 @@ def anchor_of(cfg, fp, Y):
     published or it cannot be read (the record says why)."""
     n, c = Y.shape
     mu = cfg["solve"]["stability"]
-    last, reason = nightly.last_night(cfg["output"]["path"], fp.get("hash_before_space", fp["hash"]))
+    last, reason = nightly.last_night(cfg["output"]["path"], nightly.table_key(fp))
     if last is not None and os.path.exists(os.path.join(cfg["output"]["path"], art.OUTPUT_POINTER)):
         current = atomic.read_json(os.path.join(cfg["output"]["path"], art.OUTPUT_POINTER))["version"]
         if last != current:
@@ -137,7 +137,7 @@ def anchor_of(cfg, fp, Y):
                 current,
                 last,
             )
-    got, reason = _published(cfg, fp, n, raw=True, version=last) if reason is None else (None, reason)
+    got, reason = _published(cfg, fp, raw=True, version=last) if reason is None else (None, reason)
     if got is None:
         log.warning(
             "solve.stability = %g: %s in %s, so no row is anchored tonight", mu, reason, cfg["output"]["path"]
@@ -474,7 +474,7 @@ def run(ctx):
     cvec = laplacian.row_weights_from_degrees(deg, s["laplacian"])
     info = {"method": s["method"], "laplacian": s["laplacian"], "lam": s["lam"], "rows": n, "columns": c}
     a_rows = np.empty(0, np.int64)
-    if s["stability"] > 0:
+    if s["stability"] > 0 and s["lam"] != 0 and edges:
         # kept in the run directory, as the warm start is, so that a resumed run solves the same system
         if art.SOLVE_ANCHOR.exists(rundir) and art.SOLVE_ANCHOR_INFO.exists(rundir):
             a_rows = art.SOLVE_ANCHOR.load(rundir, member="rows")
