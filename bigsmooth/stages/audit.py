@@ -625,6 +625,20 @@ def summary_lines(report):
             f"{nn['rows_removed']} removed); decisions flipped night over night: raw {nn['raw_flip_rate']:.2%}, "
             f"adjusted {nn['adjusted_flip_rate']:.2%} ({nn['flips_added_by_smoothing']} added by the smoothing)"
         )
+        prov = report.get("provenance") or {}
+        off = [
+            name
+            for name, on in (
+                ('embed.fair_space = "previous"', prov.get("fair_space_from")),
+                ("solve.stability", (prov.get("stability") or {}).get("used")),
+            )
+            if not on
+        ]
+        if nn["adjusted_flips"] > nn["raw_flips"] and off:
+            lines.append(
+                f"  more decisions flipped after smoothing than before; {' and '.join(off)} "
+                "(off tonight) make them flip less (README, Tonight against last night)"
+            )
     s = report["scores"][report["decision_score"]]
     lines.append(
         f"  neighbour consistency of decisions (fair space) {s['before']['neighbour_consistency']:.4f} -> "

@@ -88,6 +88,12 @@ def test_second_night_audit_compares_with_the_first(two_nights):
     # more adjusted than raw flips with the space fitted tonight: the page says so and names the setting
     hint = 'The fair space was fitted tonight: <code>embed.fair_space = "previous"</code>'
     assert (hint in page) == (ref["adjusted_flips"] > ref["raw_flips"])
+    assert ("<code>solve.stability</code> (off tonight)" in page) == (
+        ref["adjusted_flips"] > ref["raw_flips"]
+    )
+    # and so does the run's summary
+    said = 'embed.fair_space = "previous" and solve.stability (off tonight) make them flip less'
+    assert (said in res.stdout) == (ref["adjusted_flips"] > ref["raw_flips"])
 
 
 def test_diff_command_matches_numpy(two_nights, tmp_path):
