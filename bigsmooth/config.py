@@ -415,6 +415,13 @@ RULES = {
             hi=1.0,
             doc="fail when any group's selection-rate ratio to the highest group (the four-fifths ratio, 29 CFR 1607.4(D)) falls by more than this after smoothing, e.g. 0.02 (1 = off)",
         ),
+        "max_added_night_flips": Rule(
+            "float",
+            default=1.0,
+            lo=0.0,
+            hi=1.0,
+            doc="fail when the adjusted scores flipped more decisions night over night than the raw scores did, by more than this share of the rows in both nights, e.g. 0.005 (1 = off; off as well, and said so, when there is no earlier night to compare with)",
+        ),
         "on_fail": Rule(
             "str",
             default="hold",

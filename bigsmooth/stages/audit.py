@@ -218,7 +218,29 @@ def check_gates(report, gates):
             "max_selection_ratio_drop", state, what + (" (gate off)" if lim >= 1 else f" (limit {lim:.3f})")
         )
     )
+    out.append(_night_gate(report.get("night_over_night"), gates["max_added_night_flips"]))
     return out
+
+
+def _night_gate(nn, lim):
+    """gates.max_added_night_flips: adjusted flip rate night over night less the raw one."""
+    name = "max_added_night_flips"
+    if not nn or not nn["rows_in_both"]:
+        return _gate(
+            name, "off", "decisions flipped night over night: off, cannot be evaluated (no earlier night)"
+        )
+    extra = nn["adjusted_flip_rate"] - nn["raw_flip_rate"]
+    line = (
+        f"decisions flipped night over night: adjusted {nn['adjusted_flip_rate']:.2%}, raw "
+        f"{nn['raw_flip_rate']:.2%} ({100 * extra:+.2f} points)"
+    )
+    if lim >= 1:
+        return _gate(name, "off", line + " (gate off)")
+    state = "passed" if extra <= lim else "failed"
+    hint = (
+        '; embed.fair_space = "previous" and solve.stability make them flip less' if state == "failed" else ""
+    )
+    return _gate(name, state, line + f" (limit {100 * lim:+.2f} points{hint})")
 
 
 def _sample(n, size, rng):
@@ -483,6 +505,8 @@ def run(ctx):
                 "after": np.bincount(af, minlength=Y.shape[1]) / len(af),
             },
         }
+    version = provenance.version_name(rundir, ctx.run_id)
+    report["night_over_night"] = night_over_night(cfg, fp, version, y, f, per_score[inp["scores"][0]])
     report["gates"] = check_gates(report, cfg["gates"])
     for g in report["gates"]:
         logs.event(
@@ -496,9 +520,7 @@ def run(ctx):
             gate=g["gate"],
             state=g["state"],
         )
-    version = provenance.version_name(rundir, ctx.run_id)
     report["provenance"] = provenance.record(rundir, cfg, fp, version, report["gates"])
-    report["night_over_night"] = night_over_night(cfg, fp, version, y, f, per_score[inp["scores"][0]])
     art.AUDIT_REPORT_JSON.save(rundir, report)
     from . import report as html_report
 

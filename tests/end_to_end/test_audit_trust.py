@@ -142,7 +142,7 @@ def test_gates_that_are_off_say_off_and_a_held_run_says_held(tmp_path):
     assert res.returncode == 0
     assert (
         "gate min_neighbour_consistency: off" in res.stdout
-        and "gates: the one gate that is on passed (3 off)" in res.stdout
+        and "gates: the one gate that is on passed (4 off)" in res.stdout
     )
     assert "passed (neighbour consistency" not in res.stdout
     text = cfg.read_text() + "\n[gates]\nmax_decision_change_rate = 0.0001\n"

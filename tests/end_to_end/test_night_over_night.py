@@ -8,7 +8,7 @@ import numpy as np
 import pyarrow.dataset as ds
 import pytest
 
-from bigsmooth.errors import EXIT_NOINPUT, EXIT_OK
+from bigsmooth.errors import EXIT_GATE, EXIT_NOINPUT, EXIT_OK
 from helpers import cli
 
 
@@ -106,3 +106,30 @@ def test_diff_command_matches_numpy(two_nights, tmp_path):
     assert res.returncode == EXIT_OK and "decisions flipped" in res.stdout
     res = cli("diff", str(base / "output"), "20990101T000000Z-nothere", versions[1])
     assert res.returncode == EXIT_NOINPUT and versions[0] in res.stderr
+
+
+def test_the_night_flip_gate(two_nights):
+    from bigsmooth.stages import audit as audit_stage
+
+    base, versions, _ = two_nights
+    ref = _reference(base, versions)
+    rows = ref["rows_in_both"]
+    extra = (ref["adjusted_flips"] - ref["raw_flips"]) / rows
+    assert extra > 0  # the demo's second night with the default settings (measured: 75 against 21)
+    first = json.loads((base / "output" / versions[0] / "_audit.json").read_text())
+    gate = {g["gate"]: g for g in first["gates"]}["max_added_night_flips"]
+    assert gate["state"] == "off" and "no earlier night" in gate["line"]
+    second = json.loads((base / "output" / versions[1] / "_audit.json").read_text())
+    gate = {g["gate"]: g for g in second["gates"]}["max_added_night_flips"]
+    assert gate["state"] == "off" and f"({100 * extra:+.2f} points) (gate off)" in gate["line"]
+    # the same audit against a limit above and below the measured excess
+    limits = {k: 1.0 for k in ("max_auc_drop", "max_decision_change_rate", "max_selection_ratio_drop")}
+    limits["min_neighbour_consistency"] = 0.0
+    for lim, state in ((extra + 1e-4, "passed"), (extra - 1e-4, "failed")):
+        got = audit_stage.check_gates(second, limits | {"max_added_night_flips": lim})
+        assert {g["gate"]: g["state"] for g in got}["max_added_night_flips"] == state
+    # through the CLI: held, nothing published, and the line says what makes decisions flip less
+    res = cli("--set", f"gates.max_added_night_flips={extra / 2}", "run", str(base / "bigsmooth.toml"))
+    assert res.returncode == EXIT_GATE, res.stderr[-2000:]
+    assert 'embed.fair_space = "previous" and solve.stability make them flip less' in res.stderr
+    assert json.loads((base / "output" / "CURRENT").read_text())["version"] == versions[1]
