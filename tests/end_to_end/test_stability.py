@@ -18,7 +18,7 @@ from scipy.sparse.csgraph import laplacian
 from bigsmooth import explain
 from bigsmooth.errors import EXIT_CONFIG, EXIT_OK
 from bigsmooth.rundir import RunDir
-from helpers import cli
+from helpers import _small_table, _write_case, cli, read_output
 
 MU = 2.0
 
@@ -82,14 +82,20 @@ def _check_against_reference(base, v1, run):
     assert info["used"] and info["version"] == v1 and info["weight"] == MU
     assert info["rows_anchored"] == int(anchored.sum())
     W = _graph(run)
-    lam = json.loads((run / "manifest.json").read_text())["settings"]["solve"]["lam"]
-    A = np.eye(len(y)) + MU * np.diag(anchored.astype(float)) + lam * laplacian(W).toarray()
-    ref = np.linalg.solve(A, y + MU * anchored * t)
+    solve = json.loads((run / "manifest.json").read_text())["settings"]["solve"]
+    lam = solve["lam"]
+    # C = I (unnormalised) or C = D, the degrees (random walk; no row is isolated here)
+    deg = np.asarray(W.sum(axis=1)).ravel()
+    assert deg.min() > 0
+    c = np.ones(len(y)) if solve["laplacian"] == "unnormalised" else deg
+    L = laplacian(W).toarray()
+    A = np.diag(c + MU * c * anchored) + lam * L
+    ref = np.linalg.solve(A, c * y + MU * c * anchored * t)
     F = np.load(run / "solve" / "adjusted.npy")[:, 0]
-    # the solver stops at relative residual 1e-6 (solve.tol); A is well conditioned (eigenvalues >= 1)
+    # the solver stops at relative residual 1e-6 (solve.tol); A is well conditioned
     assert np.linalg.norm(F - ref) / np.linalg.norm(ref) < 1e-5
     # the published method without the anchor is a different answer, farther than that
-    plain = np.linalg.solve(np.eye(len(y)) + lam * laplacian(W).toarray(), y)
+    plain = np.linalg.solve(np.diag(c) + lam * L, c * y)
     assert np.linalg.norm(F - plain) / np.linalg.norm(ref) > 1e-3
 
 
@@ -98,17 +104,12 @@ def test_the_solution_is_the_minimiser_of_the_anchored_objective(nights):
     _check_against_reference(base, v1, run)
 
 
-@pytest.mark.parametrize("method", ["direct", "blocks"])
-def test_the_other_solvers_solve_the_same_anchored_system(nights, method):
+@pytest.mark.parametrize(
+    "setting", ["solve.method=direct", "solve.method=blocks", "solve.laplacian=random_walk"]
+)
+def test_the_other_solvers_solve_the_same_anchored_system(nights, setting):
     base, v1, _, _, _ = nights
-    res = cli(
-        "--set",
-        f"solve.stability={MU}",
-        "--set",
-        f"solve.method={method}",
-        "run",
-        str(base / "bigsmooth.toml"),
-    )
+    res = cli("--set", f"solve.stability={MU}", "--set", setting, "run", str(base / "bigsmooth.toml"))
     assert res.returncode == EXIT_OK, res.stderr
     cur = json.loads((base / "output" / "CURRENT").read_text())
     _check_against_reference(base, v1, base / "runs" / cur["run_id"])
@@ -187,3 +188,36 @@ def test_killed_mid_solve_then_resumed_is_bit_identical(tmp_path):
     assert info[0]["used"] and info[0]["rows_anchored"] == info[1]["rows_anchored"]
     a, b = (np.load(r / "solve" / "adjusted.npy") for r in runs)
     assert a.tobytes() == b.tobytes()
+
+
+def test_class_scores_stay_on_the_simplex_with_an_anchor(tmp_path):
+    # three class scores per row summing to 1, last night's adjusted ones too: with f = 1 in every
+    # row, (C + mu C_S + lam L) 1 = C 1 + mu C_S 1 (L 1 = 0), so rows keep summing to 1; a row is
+    # anchored only when all three of its scores are unchanged
+    cols = _small_table(900, seed=6)
+    raw = np.random.default_rng(0).dirichlet([2, 2, 2], size=900)
+    names = ("p_low", "p_mid", "p_high")
+    for j, name in enumerate(names):
+        cols[name] = pa.array(raw[:, j])
+    cfg = _write_case(tmp_path, cols)
+    cfg.write_text(
+        cfg.read_text()
+        .replace('scores = ["sustain_score"]', f"scores = {list(names)}".replace("'", '"'))
+        .replace("tol = 1e-6", f"tol = 1e-10\nstability = {MU}")
+    )
+    assert cli("run", str(cfg)).returncode == EXIT_OK
+    picked = np.random.default_rng(1).choice(900, 110, replace=False)
+    moved, swapped = picked[:100], picked[100:]
+    raw[moved] = np.random.default_rng(2).dirichlet([2, 2, 2], size=100)
+    raw[swapped, 1:] = raw[swapped, 1:][:, ::-1]  # p_low unchanged, the other two swapped
+    for j, name in enumerate(names):
+        cols[name] = pa.array(raw[:, j])
+    pq.write_table(pa.table(cols), tmp_path / "in" / "part-0.parquet")
+    res = cli("run", str(cfg))
+    assert res.returncode == EXIT_OK, res.stderr[-2000:]
+    cur = json.loads((tmp_path / "out" / "CURRENT").read_text())
+    info = json.loads((tmp_path / "runs" / cur["run_id"] / "solve" / "solve.json").read_text())["anchor"]
+    assert info["rows_anchored"] == 790 and info["rows_rescored"] == 110 and info["rows_new"] == 0
+    out = read_output(tmp_path / "out")
+    F = np.column_stack([out.column(f"{c}_adjusted").to_numpy() for c in names])
+    assert np.allclose(F.sum(axis=1), 1.0, atol=1e-7) and F.min() >= 0
