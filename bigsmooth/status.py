@@ -11,7 +11,8 @@ The record (``--json``; schema :data:`STATUS_SCHEMA`, documented in README "Stat
 - ``held_by``: the lock holder ("pid N on HOST since T") or null; ``live``: {"stage", "sweep",
   "residual"} of the stage in progress (sweep from the solver's checkpoint) or null;
 - ``stages``: {name: {"state", "seconds", "peak_rss_mb", "reused_from", "error"}} in pipeline order;
-- ``solver``: {"method", "status", "sweeps", "final_residual"} or null;
+- ``solver``: {"method", "status", "sweeps", "final_residual", "anchor"} or null (``anchor``:
+  solve.stability's record, or null when it is off);
 - ``published``: {"version", "output", "current"} (this run's version, and whether the output's
   current version is it) or null; ``status``: "published", "held" or null (not audited yet);
   ``gates``: {name: "passed" | "failed" | "off"}; ``report``: path of the HTML report or null;
@@ -172,7 +173,7 @@ def record(target):
     solver = None
     if art.SOLVE_INFO.exists(rd):
         s = art.SOLVE_INFO.load(rd)
-        solver = {k: s.get(k) for k in ("method", "status", "sweeps", "final_residual")}
+        solver = {k: s.get(k) for k in ("method", "status", "sweeps", "final_residual", "anchor")}
     output = rd.root("output", m)
     published = None
     version = (m["stages"]["publish"].get("summary") or {}).get("version")
@@ -270,6 +271,13 @@ def solver_lines(run_dir):
             f"solver: {s['method']} ({s['laplacian']}, lam={s['lam']:g}) {s['status']} after {s['sweeps']} "
             f"sweeps; final relative residual {s['final_residual']:.3e}"
         )
+        a = s.get("anchor")
+        if a:
+            out.append(
+                f"  solve.stability = {a['weight']:g}: {a['rows_anchored']:,} rows anchored to version {a['version']}"
+                if a.get("used")
+                else f"  solve.stability = {a['weight']:g}: no row anchored ({a.get('reason', '-')})"
+            )
         res = s["residuals"]
         what = "preconditioned residual" if s["method"] == "sweep-cg" else "relative residual"
         step = max(1, len(res) // 20)

@@ -221,3 +221,13 @@ def test_class_scores_stay_on_the_simplex_with_an_anchor(tmp_path):
     out = read_output(tmp_path / "out")
     F = np.column_stack([out.column(f"{c}_adjusted").to_numpy() for c in names])
     assert np.allclose(F.sum(axis=1), 1.0, atol=1e-7) and F.min() >= 0
+
+
+def test_status_names_the_anchor(nights):
+    base, v1, _, run, _ = nights
+    res = cli("status", str(run), "--json")
+    assert res.returncode == EXIT_OK, res.stderr
+    anchor = json.loads(res.stdout)["solver"]["anchor"]
+    assert anchor["used"] and anchor["version"] == v1
+    res = cli("status", str(run))
+    assert f"rows anchored to version {v1}" in res.stdout
