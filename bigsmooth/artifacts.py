@@ -112,9 +112,10 @@ def index_dtype(n):
 
 
 class RowReader:
-    """Rows of a .npy file read on demand: each ``reader[key]`` maps the file, copies the rows
-    asked for and unmaps it, so a pass over a large array in blocks keeps only the current block
-    in the process's resident memory (a long-lived memory map would keep every page it touched).
+    """Rows of a .npy file read on demand: ``reader[a:b]`` reads that run of rows at its offset,
+    any other key maps the file, copies the rows asked for and unmaps it, so a pass over a large
+    array in blocks keeps only the current block in the process's resident memory (a long-lived
+    memory map would keep every page it touched).
     Kernels take it like an array (``shape``, ``dtype``, ``len``, slices and index arrays)."""
 
     def __init__(self, path):
@@ -122,12 +123,29 @@ class RowReader:
         with open(path, "rb") as fh:  # the header only: readers are made once per block in loops
             major, _ = np.lib.format.read_magic(fh)
             read = np.lib.format.read_array_header_1_0 if major == 1 else np.lib.format.read_array_header_2_0
-            self.shape, _, self.dtype = read(fh)
+            self.shape, self._fortran, self.dtype = read(fh)
+            self._offset = fh.tell()
 
     def __len__(self):
         return self.shape[0]
 
     def __getitem__(self, key):
+        if isinstance(key, slice) and not self._fortran and not self.dtype.hasobject and self.shape:
+            start, stop, step = key.indices(self.shape[0])
+            if step == 1:
+                # a run of rows: one read at its offset (no mapping: the pages stay in the page
+                # cache, not in the process; measured on 400 kB slices of small files: about 3x
+                # faster than mapping the file for each slice)
+                rows = max(0, stop - start)
+                width = int(np.prod(self.shape[1:], dtype=np.int64))
+                with open(self.path, "rb") as fh:
+                    out = np.fromfile(
+                        fh,
+                        dtype=self.dtype,
+                        count=rows * width,
+                        offset=self._offset + start * width * self.dtype.itemsize,
+                    )
+                return out.reshape((rows,) + tuple(self.shape[1:]))
         m = np.load(self.path, mmap_mode="r")
         try:
             return np.array(m[key])

@@ -226,6 +226,14 @@ def _merge_parts(rundir, membership, ptr, k, block):
     cuts = np.empty((parts, len(bounds)), dtype=np.int64)
     for p in range(parts):  # where each block starts in each partition
         cuts[p] = ptr[p] + np.searchsorted(rows_all[ptr[p] : ptr[p + 1]], bounds)
+    # one reader a file, made once (its header read once): each block reads one run of rows of each
+    readers = [
+        (
+            art.GRAPH_PARTS.rows(rundir, _part_name(p) + "-ind"),
+            art.GRAPH_PARTS.rows(rundir, _part_name(p) + "-dist"),
+        )
+        for p in range(parts)
+    ]
     with contextlib.ExitStack() as stack:
         out_ind, out_dist32, out_dist = _lists_writers(stack, rundir, n, k)
         for b in range(len(bounds) - 1):
@@ -243,8 +251,8 @@ def _merge_parts(rundir, membership, ptr, k, block):
                     local,
                     p,
                     rows_all[ptr[p] + a : ptr[p] + e] - lo,
-                    art.GRAPH_PARTS.rows(rundir, _part_name(p) + "-ind")[a:e],
-                    art.GRAPH_PARTS.rows(rundir, _part_name(p) + "-dist")[a:e],
+                    readers[p][0][a:e],
+                    readers[p][1][a:e],
                 )
             ind, dist = partition.merge(cand_ind, cand_dist, k)
             del cand_ind, cand_dist
