@@ -235,8 +235,12 @@ def recall_hits(E, ind, rows, chunk=8192):
         xx = np.einsum("ij,ij->i", X, X)
         g = Qm2 @ X.T
         g += xx[None, :]
-        r, c = np.nonzero(g <= limit[:, None])
-        c = c + lo
+        hit = g <= limit[:, None]
+        # few rows of a chunk lie within any radius: their columns first, then the hits among them
+        # (np.nonzero over the whole chunk took half the pass; measured at 10M, 1,000 rows a thread)
+        cols = np.flatnonzero(hit.any(axis=0))
+        r, c = np.nonzero(hit[:, cols])
+        c = cols[c] + lo
         keep = c != s[r]  # a row is not its own neighbour
         found_r.append(r[keep])
         found_c.append(c[keep])
