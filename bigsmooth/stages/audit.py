@@ -97,8 +97,8 @@ def block_task(root, cuts, constant, lo, hi):
 def neighbour_pass(ctx, vectors, rate, constant):
     """Neighbour disagreement, consistency and the local Lipschitz check for each score vector:
     the vectors go to audit/vectors.npy, the rows are cut into blocks of :data:`CHUNK`, one task
-    each (here one after another, or on the Dask cluster with run.engine = "dask"), and the blocks'
-    sums are added in block order, so the figures do not depend on where the tasks ran."""
+    each (here on a thread per core, or on the Dask cluster with run.engine = "dask"), and the
+    blocks' sums are added in block order, so the figures do not depend on where the tasks ran."""
     rundir = ctx.rundir
     n = len(vectors[0])
     cuts = [metrics.quantile_cutoff(v, rate) for v in vectors]
@@ -113,7 +113,12 @@ def neighbour_pass(ctx, vectors, rate, constant):
     sizes = [c[4] - c[3] for c in calls]
     prog = Progress(log, "audit neighbour pass (rows)", n)
     blocks = ctx.run_tasks(
-        block_task, calls, sizes, "audit neighbour figures (row blocks)", done=lambda j: prog.update(sizes[j])
+        block_task,
+        calls,
+        sizes,
+        "audit neighbour figures (row blocks)",
+        done=lambda j: prog.update(sizes[j]),
+        threads=True,
     )
     os.unlink(art.AUDIT_VECTORS.path(rundir))
     return neighbour_figures(blocks, n)

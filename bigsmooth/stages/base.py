@@ -120,11 +120,13 @@ class Context:
             return parallel.DaskTasks.connect(run["dask_scheduler"])
         return parallel.make_executor(os.cpu_count() or 1, "threads")
 
-    def run_tasks(self, fn, calls, sizes, what, done=None, local=None):
+    def run_tasks(self, fn, calls, sizes, what, done=None, local=None, threads=False):
         """``fn`` over ``calls``, results in the order of the calls: tasks on the Dask cluster when
-        run.engine = "dask" (``done(j)`` as call j finishes), else one after another here as
-        ``fn(*call, **local)``, then ``done(j)`` unless ``local`` gives fn a progress hook of its
-        own. ``what`` names the tasks in the log line; ``sizes`` weigh them for the scheduler."""
+        run.engine = "dask" (``done(j)`` as call j finishes), else here: with ``threads`` on a
+        thread per core (for numpy-heavy tasks that release the GIL; ``done(j)`` as call j
+        finishes), otherwise one after another as ``fn(*call, **local)``, then ``done(j)`` unless
+        ``local`` gives fn a progress hook of its own. ``what`` names the tasks in the log line;
+        ``sizes`` weigh them for the scheduler."""
         if self.cfg["run"]["engine"] == "dask":
             executor = self.task_executor()
             try:
@@ -132,6 +134,13 @@ class Context:
                     "%s: %d tasks on %s", what, len(calls), executor.describe()
                 )
                 return executor.map_calls(fn, calls, None, sizes, done=done)
+            finally:
+                executor.shutdown()
+        if threads and local is None and (os.cpu_count() or 1) > 1 and len(calls) > 1:
+            executor = self.task_executor()
+            try:
+                order = sorted(range(len(calls)), key=lambda j: (-sizes[j], j))
+                return executor.map_calls(fn, calls, order, sizes, done=done or (lambda j: None))
             finally:
                 executor.shutdown()
         out = []
