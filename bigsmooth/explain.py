@@ -71,8 +71,8 @@ def breakdown(rd, row, lam, kind, top=TOP):
     }
 
 
-def _anchor(rd, row, c):
-    """(mu, {"weight", "version", "last_adjusted" (c,)}) when solve.stability anchored ``row`` in
+def _anchor(rd, row, columns):
+    """(mu, {"weight", "version", "last_adjusted" (columns,)}) when solve.stability anchored ``row`` in
     this run, else (0.0, None)."""
     if not art.SOLVE_ANCHOR_INFO.exists(rd):
         return 0.0, None
@@ -81,7 +81,9 @@ def _anchor(rd, row, c):
     at = int(np.searchsorted(rows, row))
     if not info.get("used") or at >= len(rows) or int(rows[at]) != row:
         return 0.0, None
-    t = np.asarray(art.SOLVE_ANCHOR.load(rd, mmap=True, member="target")[at], dtype=np.float64).reshape(c)
+    t = np.asarray(art.SOLVE_ANCHOR.load(rd, mmap=True, member="target")[at], dtype=np.float64).reshape(
+        columns
+    )
     return float(info["weight"]), {
         "weight": float(info["weight"]),
         "version": info["version"],

@@ -473,7 +473,7 @@ def run(ctx):
         edges = W.nnz
     cvec = laplacian.row_weights_from_degrees(deg, s["laplacian"])
     info = {"method": s["method"], "laplacian": s["laplacian"], "lam": s["lam"], "rows": n, "columns": c}
-    a_rows = np.empty(0, np.int64)
+    a_rows, a_target = np.empty(0, np.int64), np.empty((0, c))  # no row anchored
     if s["stability"] > 0 and s["lam"] != 0 and edges:
         # kept in the run directory, as the warm start is, so that a resumed run solves the same system
         if art.SOLVE_ANCHOR.exists(rundir) and art.SOLVE_ANCHOR_INFO.exists(rundir):
@@ -485,7 +485,7 @@ def run(ctx):
             art.SOLVE_ANCHOR.save(rundir, a_target, member="target")
             art.SOLVE_ANCHOR.save(rundir, a_rows, member="rows")
             art.SOLVE_ANCHOR_INFO.save(rundir, info["anchor"])
-    c_eff, b = anchored(cvec, Y, a_rows, a_target if len(a_rows) else None, s["stability"])
+    c_eff, b = anchored(cvec, Y, a_rows, a_target, s["stability"])
     ck_path = art.SOLVE_CHECKPOINT.path(rundir)
     art.SOLVE_CHECKPOINT.folder(rundir)
     if s["lam"] == 0 or edges == 0:
