@@ -289,8 +289,9 @@ LATE_CELLS = _a(
     "score",
     "late/cells",
     "dir",
-    "late-row index (bigsmooth score): cell centres, ptr, night rows in cell order and their "
-    "fair-space rows in that order (built on first use)",
+    "late-row index (bigsmooth score), built on first use: cell centres; codes (the coded index, "
+    "faiss-serialised); for nights searched by exact cells, ptr, night rows in cell order, their "
+    "fair-space rows in that order and squared norms",
 )
 TUNE_INFO = _a("tune.info", "tune", "tune/tune.json", "json", "lam path and recommendation (bigsmooth tune)")
 TUNE_PLOT = _a("tune.plot", "tune", "tune/tradeoff.png", "png", "trade-off plot (bigsmooth tune)")

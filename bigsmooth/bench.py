@@ -448,15 +448,13 @@ def late_rows_bench(base, rundir, rows, batch, sample, seed):
     from .rundir import RunDir
 
     night = late.Night(RunDir(rundir))
-    centres, ptr, crow, cemb, norms = late.cells(night, 0)
+    index = late.search_index(night, night.manifest["settings"]["run"]["seed"])
     table = pq.read_table(path)
     X, _ = late.features(table.slice(0, sample), late.late_input(night.inp), night.levels)
     Q = night.fs.apply(X).astype(np.float32).astype(np.float64)
     got = np.vstack(
         [
-            late.neighbours(
-                night, Q[lo : lo + batch], centres, ptr, crow, cemb, np.empty(0, np.int64), norms=norms
-            )[0]
+            late.neighbours(night, Q[lo : lo + batch], index, np.empty(0, np.int64))[0]
             for lo in range(0, len(Q), batch)
         ]
     )

@@ -4,9 +4,10 @@ the night's solution held fixed.
 Reads the run behind the output's current version (or a given run directory); checks the late
 table with the nightly scan's rules (the same messages and exit codes) and refuses ids the night
 already scored unless ``replace``; maps the rows into the night's fair space; finds each row's k
-nearest night rows (:mod:`bigsmooth.kernels.late`: the rows of its nearest cells of a fine
-partition of the night, then neighbours of neighbours from the night's lists) and the late rows
-near each other; weights them with the night's kernel rule and scale; solves each batch jointly;
+nearest night rows (:mod:`bigsmooth.kernels.late`: candidates from its nearest cells of a fine
+partition of the night, by their 4-bit codes (:class:`Coded`) or, for small nights, every row
+(:class:`Cells`), measured exactly, then neighbours of neighbours from the night's lists) and the
+late rows near each other; weights them with the night's kernel rule and scale; solves each batch jointly;
 and writes DIR/late.parquet (never touching the output's versions or its ``current`` pointer).
 
 The cell index is built once per run on first use and kept in the run directory (late/cells).
@@ -42,8 +43,13 @@ from .table import Source, connect_budget, fingerprint, quote
 log = logging.getLogger("bigsmooth.score")
 
 CELL_ROWS = 4096  # night rows per cell of the late-row index (a row is stored in its nearest cell)
-PROBE = 4  # cells a late row is compared with
-ROUNDS = 2  # neighbour-of-neighbour rounds after the cells
+PROBE = 4  # cells a late row is compared with (exact cells)
+ROUNDS = 2  # neighbour-of-neighbour rounds after the cells (exact cells)
+CODED_MIN_ROWS = 5_000  # nights from this size are searched by their codes; smaller by exact cells
+CODED_PROBE = 10  # cells whose codes a late row is compared with
+CODED_TAKE = 48  # candidates by code a late row gets, then measured exactly
+CODED_ROUNDS = 1  # neighbour-of-neighbour rounds after the coded candidates
+CODED_WIDTH = 4  # the list places whose night neighbours a round measures
 SAMPLE_ROWS = 100_000  # rows the cell centres are trained on
 OUT_FILE = "late.parquet"
 OUT_RECORD = "_late.json"
@@ -119,9 +125,48 @@ class Night:
         return lk.row_sigma(self.dist[rows], self.rule, self.factor, self.median)
 
 
+class Cells:
+    """The exact cell search (the slow reference; used for nights below :data:`CODED_MIN_ROWS`)."""
+
+    rounds, width = ROUNDS, None
+
+    def __init__(self, night, seed, probe=PROBE):
+        self.probe = probe
+        self.centres, self.ptr, self.rows, self.E, self.norms = cells(night, seed)
+
+    def candidates(self, night, Q):
+        def read(p):
+            lo, hi = self.ptr[p], self.ptr[p + 1]
+            return np.asarray(self.rows[lo:hi]), self.E[lo:hi], self.norms[lo:hi]
+
+        return lk.search(Q, lk.nearest_cells(Q, self.centres, self.probe), read, night.k)
+
+
+class Coded:
+    """The coded search (:func:`kernels.late.coded_search`, then exact distances)."""
+
+    rounds, width = CODED_ROUNDS, CODED_WIDTH
+
+    def __init__(self, night, seed, probe=CODED_PROBE, take=CODED_TAKE):
+        import faiss
+
+        self.probe, self.take = probe, take
+        self.index = faiss.deserialize_index(np.asarray(codes(night, seed)))
+        faiss.omp_set_num_threads(1)  # batches run on one thread per core, each search on its own
+
+    def candidates(self, night, Q):
+        return lk.measure(Q, lk.coded_search(self.index, Q, self.probe, self.take), lambda r: night.E[r])
+
+
+def search_index(night, seed):
+    """The night's late-row search: :class:`Coded` from :data:`CODED_MIN_ROWS` night rows, else
+    :class:`Cells` (built and saved on first use)."""
+    return Coded(night, seed) if night.n >= CODED_MIN_ROWS else Cells(night, seed)
+
+
 def cells(night, rng_seed):
-    """The late-row index of the night (built and saved on first use, under a lock): (centres,
-    ptr, rows, cell-ordered embedding memory-mapped)."""
+    """The exact cell index of the night (built and saved on first use, under a lock): (centres,
+    ptr, rows, cell-ordered embedding memory-mapped, their squared norms)."""
     rd = night.rd
     if not art.LATE_CELLS.exists_member(rd, "norms"):
         with hold_lock(art.LATE_CELLS.folder(rd), f"the late-row index of {rd.path}"):
@@ -131,6 +176,47 @@ def cells(night, rng_seed):
                 _save_norms(rd)
     load = lambda name, mm=False: art.LATE_CELLS.load(rd, member=name, mmap=mm)  # noqa: E731
     return load("centres"), load("ptr"), load("rows", True), load("embedding", True), load("norms", True)
+
+
+def codes(night, rng_seed):
+    """The coded index of the night, serialised (uint8, memory-mapped; built and saved on first use,
+    under a lock): the cells' centres and each row's 4-bit codes (:func:`kernels.late.code_index`)."""
+    rd = night.rd
+    if not art.LATE_CELLS.exists_member(rd, "codes"):
+        with hold_lock(art.LATE_CELLS.folder(rd), f"the late-row index of {rd.path}"):
+            if not art.LATE_CELLS.exists_member(rd, "codes"):
+                _build_codes(night, rng_seed)
+    return art.LATE_CELLS.load(rd, member="codes", mmap=True)
+
+
+def _plan(night, seed):
+    """(centres, sample rows): the cells' centres, k-means on a seeded sample of the night (saved
+    once; both indexes share them)."""
+    rng = np.random.default_rng(seed)
+    n = night.n
+    sample = np.sort(rng.choice(n, size=min(n, SAMPLE_ROWS), replace=False))
+    if art.LATE_CELLS.exists_member(night.rd, "centres"):
+        return art.LATE_CELLS.load(night.rd, member="centres"), sample
+    centres = lk.cell_plan(np.asarray(night.E[sample]), max(1, -(-n // CELL_ROWS)), rng)
+    art.LATE_CELLS.save(night.rd, centres, member="centres")
+    return centres, sample
+
+
+def _build_codes(night, seed):
+    import faiss
+
+    t0 = time.monotonic()
+    centres, sample = _plan(night, seed)
+    E, block = night.E, 1 << 20
+    blocks = (np.asarray(E[lo : lo + block]) for lo in range(0, night.n, block))
+    index = lk.code_index(centres, np.asarray(E[sample]), blocks, threads=os.cpu_count() or 1)
+    art.LATE_CELLS.save(night.rd, faiss.serialize_index(index), member="codes")
+    log.info(
+        "late-row index: %d cells, %d night rows coded, built in %.1f s (once per run)",
+        len(centres),
+        night.n,
+        time.monotonic() - t0,
+    )
 
 
 def _save_norms(rd):
@@ -146,10 +232,7 @@ def _save_norms(rd):
 def _build_cells(night, seed):
     t0 = time.monotonic()
     E, n = night.E, night.n
-    rng = np.random.default_rng(seed)
-    count = max(1, -(-n // CELL_ROWS))
-    sample = np.sort(rng.choice(n, size=min(n, SAMPLE_ROWS), replace=False))
-    centres = lk.cell_plan(np.asarray(E[sample]), count, rng)
+    centres, _ = _plan(night, seed)
     near = np.empty(n, dtype=np.int32)
     block = 1 << 20
     with one_blas_thread(), ThreadPoolExecutor(os.cpu_count() or 1) as pool:
@@ -169,7 +252,6 @@ def _build_cells(night, seed):
             part[s] = E[idx[s]]  # read in file order, placed in cell order
             w.write(part)
     art.LATE_CELLS.save(night.rd, order.astype(np.int64), member="rows")
-    art.LATE_CELLS.save(night.rd, centres, member="centres")
     art.LATE_CELLS.save(night.rd, ptr, member="ptr")  # written last but norms: marks the index whole
     log.info(
         "late-row index: %d cells of up to %d night rows, built in %.1f s (once per run)",
@@ -268,15 +350,14 @@ def features(table, inp, levels):
     return encoded(table, inp, levels)
 
 
-def neighbours(night, Q, centres, ptr, rows, E_cells, exclude, probe=PROBE, rounds=ROUNDS, norms=None):
-    """Each late row's k nearest night rows (the rows of its ``probe`` nearest cells, then
-    ``rounds`` of neighbours of neighbours), without the night rows in ``exclude`` (ids being
-    replaced): (ind (b, k), dist (b, k), every measured triplet)."""
+def neighbours(night, Q, index, exclude, rounds=None):
+    """Each late row's k nearest night rows (the candidates of ``index``, a :class:`Coded` or
+    :class:`Cells`, then ``rounds`` (the index's own by default) of the night's neighbours of the
+    first ``index.width`` places of each list),
+    without the night rows in ``exclude`` (ids being replaced): (ind (b, k), dist (b, k), every
+    measured triplet)."""
     k = night.k
-
-    def read(p):
-        got = np.asarray(rows[ptr[p] : ptr[p + 1]]), E_cells[ptr[p] : ptr[p + 1]]
-        return got if norms is None else (*got, norms[ptr[p] : ptr[p + 1]])
+    rounds = index.rounds if rounds is None else rounds
 
     def drop(t):
         if not len(exclude) or not len(t[0]):
@@ -284,12 +365,13 @@ def neighbours(night, Q, centres, ptr, rows, E_cells, exclude, probe=PROBE, roun
         keep = ~np.isin(t[1], exclude)
         return tuple(x[keep] for x in t)
 
-    trip = drop(lk.search(Q, lk.nearest_cells(Q, centres, probe), read, k))
+    trip = drop(index.candidates(night, Q))
     ind, dist = lk.best(trip, len(Q), k)
     measured = [trip]
     for _ in range(rounds):
         seen = lk.keys(lk.concat(measured), night.n)
-        new = drop(lk.expand(Q, ind, lambda r: night.nb[r], lambda r: night.E[r], seen, night.n))
+        near = ind[:, : index.width]  # the neighbours of each late row's nearest few
+        new = drop(lk.expand(Q, near, lambda r: night.nb[r], lambda r: night.E[r], seen, night.n))
         if not len(new[0]):
             break
         measured.append(new)
@@ -303,11 +385,12 @@ def score_batch(night, Q, y, nind, ndist, trip, far):
     b, k, n = len(Q), night.k, night.n
     ratio = ndist[:, 0] / night.sigma_night
     lonely = ~(ratio <= far)  # also rows that found no night row at all
-    lind, ldist = lk.late_pairs(Q, k)
-    # each late row's list: its k nearest of the night rows and the other late rows (as n + i)
-    q_all = np.concatenate([np.repeat(np.arange(b), k), np.repeat(np.arange(b), lind.shape[1])])
-    j_all = np.concatenate([nind.ravel(), n + lind.ravel()])
-    d_all = np.concatenate([ndist.ravel(), ldist.ravel()])
+    # each late row's list: its k nearest of the night rows and the other late rows (as n + i) that
+    # are closer than its k-th night row
+    lq, lj, ld = lk.late_pairs_within(Q, ndist[:, k - 1], k)
+    q_all = np.concatenate([np.repeat(np.arange(b), k), lq])
+    j_all = np.concatenate([nind.ravel(), n + lj])
+    d_all = np.concatenate([ndist.ravel(), ld])
     ok = j_all >= 0
     ind, dist = lk.best((q_all[ok], j_all[ok], d_all[ok]), b, k)
     sig = lk.row_sigma(np.where(np.isfinite(dist), dist, 0.0), night.rule, night.factor, night.median)
@@ -365,7 +448,7 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
         )
     exclude = np.array(sorted(present.values()), dtype=np.int64)
     t_load = time.monotonic()
-    centres, ptr, crow, cemb, norms = cells(night, night.manifest["settings"]["run"]["seed"])
+    index = search_index(night, night.manifest["settings"]["run"]["seed"])
     log.info(
         "loaded run %s (%d night rows) in %.1f s",
         night.manifest["run_id"],
@@ -382,7 +465,7 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
 
     def one(lo):
         hi = min(rows, lo + batch)
-        nind, ndist, trip = neighbours(night, Q[lo:hi], centres, ptr, crow, cemb, exclude, norms=norms)
+        nind, ndist, trip = neighbours(night, Q[lo:hi], index, exclude)
         F[lo:hi], ratio[lo:hi], lonely[lo:hi] = score_batch(night, Q[lo:hi], Y[lo:hi], nind, ndist, trip, far)
 
     # batches are independent (each is solved against the night alone), so they run on one thread
