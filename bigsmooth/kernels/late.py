@@ -346,27 +346,26 @@ def late_pairs_within(Q, radius, k, chunk=1024):
     fewer), as triplets (row, other row, distance) by (row, distance, other row). A late row
     farther than that loses to the night row at the k-th place (ties go to the night row, whose
     number is lower), so merging these gives the same lists as merging :func:`late_pairs`' (the
-    reference). Pairs are screened in float32 with a margin for round-off and measured directly in
+    reference). Pairs are screened in float32 by ||x_j||^2 - 2 x_i.x_j (one product of augmented
+    rows, compared with the row's own bound with a margin for round-off) and measured directly in
     float64, as the graph stage measures distances."""
     Q = np.asarray(Q, dtype=np.float32)
     b = Q.shape[0]
-    r2 = np.asarray(radius, dtype=np.float64) ** 2
     Q64 = Q.astype(np.float64)
-    A = -2.0 * Q
-    sq = np.einsum("ij,ij->i", Q, Q)
+    sq = np.einsum("ij,ij->i", Q64, Q64)
+    r = np.asarray(radius, dtype=np.float64)
+    margin = 1e-5 * (sq + (sq.max() if b else 0.0) + np.where(np.isfinite(r), r**2, 0.0)) + 1e-12
+    bound = (r**2 - sq + margin).astype(np.float32)  # inf stays inf
+    A, B = partition._augmented(Q)
     parts = []
     for lo in range(0, b, chunk):
         hi = min(b, lo + chunk)
-        G = A[lo:hi] @ Q.T
-        G += sq[None, :]
-        G += sq[lo:hi, None]
-        margin = 1e-5 * (sq[lo:hi, None] + sq[None, :]) + 1e-12
-        near = G <= r2[lo:hi, None] + margin
+        near = (A[lo:hi] @ B) <= bound[lo:hi, None]
         near[np.arange(hi - lo), np.arange(lo, hi)] = False  # not its own neighbour
         qi, qj = np.nonzero(near)
         qi = qi + lo
         d = _direct(Q64[qi], Q64[qj])
-        ok = d < np.sqrt(r2[qi])
+        ok = d < r[qi]
         parts.append((qi[ok].astype(np.int64), qj[ok].astype(np.int64), d[ok]))
     q, j, d = concat(parts)
     ind, dist = best((q, j, d), b, max(0, min(k, b - 1)))
