@@ -362,8 +362,9 @@ def late_pairs_within(Q, radius, k, chunk=1024):
         hi = min(b, lo + chunk)
         near = (A[lo:hi] @ B) <= bound[lo:hi, None]
         near[np.arange(hi - lo), np.arange(lo, hi)] = False  # not its own neighbour
-        qi, qj = np.nonzero(near)
-        qi = qi + lo
+        rows = np.flatnonzero(near.any(axis=1))  # few rows have any (a vector pass finds them)
+        qi, qj = np.nonzero(near[rows])
+        qi = rows[qi] + lo
         d = _direct(Q64[qi], Q64[qj])
         ok = d < r[qi]
         parts.append((qi[ok].astype(np.int64), qj[ok].astype(np.int64), d[ok]))
