@@ -447,8 +447,9 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
             "(their night rows are then left out of the neighbours), or drop them"
         )
     exclude = np.array(sorted(present.values()), dtype=np.int64)
-    t_load = time.monotonic()
+    t_index = time.monotonic()
     index = search_index(night, night.manifest["settings"]["run"]["seed"])
+    t_load = time.monotonic()  # loading: the run, the checks, the ids and the late-row index
     log.info(
         "loaded run %s (%d night rows) in %.1f s",
         night.manifest["run_id"],
@@ -505,6 +506,7 @@ def score(config, late_path, out_dir, run_dir=None, replace=False, batch=10_000,
         "neighbours": night.k,
         "kernel_scale": night.rule,
         "seconds_loading": round(t_load - t_start, 3),
+        "seconds_index": round(t_load - t_index, 3),
         "seconds_scoring": round(t_score, 3),
     }
     _write(out_dir, table, inp, night.out["suffix"], Y, F, ratio, lonely, unseen, record)
