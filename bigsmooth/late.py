@@ -353,9 +353,8 @@ def features(table, inp, levels):
 def neighbours(night, Q, index, exclude, rounds=None):
     """Each late row's k nearest night rows (the candidates of ``index``, a :class:`Coded` or
     :class:`Cells`, then ``rounds`` (the index's own by default) of the night's neighbours of the
-    first ``index.width`` places of each list),
-    without the night rows in ``exclude`` (ids being replaced): (ind (b, k), dist (b, k), every
-    measured triplet)."""
+    first ``index.width`` places of each list), without the night rows in ``exclude`` (ids being
+    replaced): (ind (b, k), dist (b, k), every measured triplet)."""
     k = night.k
     rounds = index.rounds if rounds is None else rounds
 

@@ -167,9 +167,10 @@ def search(Q, cells_of, read_cell, k):
 
 def code_index(centres, sample, blocks, threads=1):
     """The coded index of the night: an inverted-list index (faiss ``IndexIVFPQFastScan``) whose
-    lists are the cells of ``centres`` (nlist, d) and whose codes quantise each dimension of a row's
-    offset from its cell centre to 4 bits (product quantiser with one dimension a sub-quantiser,
-    trained on ``sample`` on one thread, so that the codes do not depend on the thread count);
+    lists are the cells of ``centres`` (nlist, d) and whose codes quantise each dimension of a row
+    to 4 bits (faiss's default for this index: the row itself, not its offset from the cell centre;
+    a product quantiser with one dimension a sub-quantiser, trained on ``sample`` on one thread, so
+    that the codes do not depend on the thread count);
     ``blocks`` yields the night's rows (float32, in row order) block by block. Returns the index."""
     import faiss
 
