@@ -26,13 +26,13 @@ def pytest_configure(config):
 
     if hasattr(config, "workerinput") or config.getoption("collectonly", False):
         return
-    from helpers import ROOT
+    from helpers import cli_env
 
     with tempfile.TemporaryDirectory() as d:
         subprocess.run(
             [sys.executable, "-m", "bigsmooth", "-q", "demo", "--rows", "600", "--dir", d],
             capture_output=True,
-            env={**os.environ, "PYTHONPATH": ROOT},
+            env=cli_env(),
             timeout=600,
         )
 

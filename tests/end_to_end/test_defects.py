@@ -15,13 +15,13 @@ import pytest
 
 from bigsmooth.errors import EXIT_CANTCREAT, EXIT_DATA, EXIT_USAGE
 from helpers import (
-    ROOT,
     _assert_nothing_published,
     _popen,
     _small_table,
     _wait_stopped,
     _write_case,
     cli,
+    cli_env,
     read_output,
 )
 
@@ -100,7 +100,7 @@ def test_status_into_a_closed_pipe_is_not_an_internal_error(tmp_path):
     cfg = _write_case(tmp_path, _small_table(300, seed=25), "\n[gates]\nmax_auc_drop = 1.0\n")
     assert cli("run", str(cfg)).returncode == 0
     (run_dir,) = list((tmp_path / "runs").iterdir())
-    env = {**os.environ, "PYTHONPATH": ROOT}
+    env = cli_env()
     res = subprocess.run(
         f"set -o pipefail; {sys.executable} -m bigsmooth status {run_dir} | head -1",
         shell=True,

@@ -128,11 +128,11 @@ def test_a_terminal_gets_a_live_bar_and_a_pipe_gets_lines(case, tmp_path):
     import subprocess
     import sys
 
-    from helpers import ROOT
+    from helpers import cli_env
 
     master, slave = os.openpty()
     cmd = [sys.executable, "-m", "bigsmooth", "run", str(case), "--fresh", "--set", "solve.lam=3"]
-    env = {**os.environ, "PYTHONPATH": ROOT}
+    env = cli_env()
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=slave, env=env)
     os.close(slave)
     chunks = []

@@ -21,7 +21,7 @@ import pytest
 
 from bigsmooth import demo
 from bigsmooth.errors import EXIT_CANTCREAT, EXIT_DATA, EXIT_TEMPFAIL
-from helpers import ROOT, cli, read_output
+from helpers import cli, cli_env, read_output
 
 FILES = 3
 ROWS_PER_FILE = 700
@@ -141,7 +141,7 @@ def test_sigkill_from_outside_then_resume_is_bit_identical(source, tmp_path, sta
     cfg = _copy_input(source, tmp_path)
     proc = subprocess.Popen(
         [sys.executable, "-m", "bigsmooth", "run", str(cfg)],
-        env={**os.environ, "PYTHONPATH": ROOT},
+        env=cli_env(),
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
     )
