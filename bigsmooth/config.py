@@ -489,8 +489,8 @@ RULES = {
         "dask_solve": Rule(
             "str",
             default="same-host",
-            choices=("same-host", "always", "never"),
-            doc="with run.engine = 'dask', where the solver's group sweeps run: they share the solver's vectors through memory-mapped files in the run directory, so 'same-host' sends them to the cluster only when every worker runs on this host (else they run here), 'always' also across hosts (only on a file system whose memory maps are coherent between hosts; NFS is not), 'never' keeps them here",
+            choices=("same-host", "by-value", "always", "never"),
+            doc="with run.engine = 'dask', where the solver's group sweeps run and how they exchange the solver's vectors: 'same-host' shares them through memory-mapped files in the run directory, so it sends the sweeps to the cluster only when every worker runs on this host (else they run here); 'by-value' sends them to the cluster wherever its workers run: each task gets its group's rows of the vectors and returns its new rows, which are written back here (and the whole of one vector goes to the cluster once a phase: 8 bytes x rows x score columns); 'always' shares the files across hosts too (only on a file system whose memory maps are coherent between hosts; NFS is not); 'never' keeps them here",
             affects_result=False,
         ),
     },

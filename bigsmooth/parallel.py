@@ -243,6 +243,14 @@ def _call_once(folder, name, fault, fn, args):
     return _call_mapped(fn, args)
 
 
+def _call_after_fault(fault, fn, args):
+    """fn(*args) after the fault point ``fault`` (tests)."""
+    from . import faults
+
+    faults.point(fault)
+    return _call_mapped(fn, args)
+
+
 def task_key(fn, call):
     """A deterministic key for a task: the function's name and a hash of its arguments (the run
     root, artifact keys, row ranges), so the same task submitted again is the same task."""
@@ -304,6 +312,7 @@ class DaskTasks:
         self.address = address
         self.batches = 0  # map_calls so far: part of each task's key
         self.once = None  # (folder, fault prefix): tasks write in place, see run_once
+        self.fault = None  # fault prefix of tasks that may run twice (see fault_points)
 
     def run_once(self, folder, fault):
         """Tasks from now on write in place (the solver's group sweeps update its vectors), so a
@@ -315,6 +324,11 @@ class DaskTasks:
         shutil.rmtree(folder, ignore_errors=True)
         os.makedirs(folder)
         self.once = (folder, fault)
+
+    def fault_points(self, fault):
+        """Tasks from now on fire the fault point ``<fault>:<map number>`` before their work (tests:
+        a task that kills its worker; for tasks that are safe to run twice)."""
+        self.fault = fault
 
     @classmethod
     def connect(cls, address="", timeout=10):
@@ -342,6 +356,11 @@ class DaskTasks:
             ) from None
         return cls(client, address)
 
+    def share(self, a):
+        """``a`` on the cluster once, for the tasks of the next map (each worker that needs it fetches
+        it once, instead of it travelling inside every task); its key is a hash of its content."""
+        return self.client.scatter(a, hash=True)
+
     def on_this_host(self):
         """Whether every worker runs on this host (the same Linux boot id, else the same host
         name): then memory-mapped files in the run directory are shared through one page cache."""
@@ -368,6 +387,8 @@ class DaskTasks:
         handles = [_handle(tuple(c)) for c in calls]
 
         def task(j):
+            if self.once is None and self.fault is not None:
+                return _call_after_fault, (f"{self.fault}:{b}", fn, handles[j])
             if self.once is None:
                 return _call_mapped, (fn, handles[j])
             folder, fault = self.once

@@ -320,6 +320,121 @@ def _phase3(kern, x, r, t, ap, alpha, start, stop):
     return rr
 
 
+# ---- the same phases by value: a group's rows of the vectors go in, its new rows come out ----
+# (for workers that share no memory and no coherent file with the driver: a Dask cluster across
+# hosts. The vectors stay with the caller, which writes each group's rows back; a task writes
+# nothing, so it may run twice. The kernels run on the same values in the same order, so the
+# result is bit-identical to the in-place phases.)
+
+
+def _rows_at(n, g0, a_g):
+    """An (n, c) array of zeros holding ``a_g`` at rows g0.. (numpy's zeros are calloc'ed: the pages
+    of rows the kernel never touches are never written, so this costs the group's rows only)."""
+    out = np.zeros((n,) + a_g.shape[1:])
+    out[g0 : g0 + len(a_g)] = a_g
+    return out
+
+
+def _phase1_rows(kern, U, r_g, p_g, beta, omega, start, stop, n):
+    """Phase 1 of one group by value: (its new rows of p, of t). U couples rows inside the group only."""
+    r, p, t = _rows_at(n, start, r_g), _rows_at(n, start, p_g), np.zeros((n, r_g.shape[1]))
+    _phase1(kern, U, r, p, t, beta, omega, start, stop)
+    return p[start:stop].copy(), t[start:stop].copy()
+
+
+def _phase2_rows(kern, L, O, p_g, t, omega, start, stop):
+    """Phase 2 of one group by value, given the whole t (O reads other groups' rows of it): (its
+    new rows of w, of ap, its part of p.ap)."""
+    n = t.shape[0]
+    p, w, ap = _rows_at(n, start, p_g), np.zeros(t.shape), np.zeros(t.shape)
+    pap = _phase2(kern, L, O, p, t, w, ap, omega, start, stop)
+    return w[start:stop].copy(), ap[start:stop].copy(), pap
+
+
+def _phase3_rows(kern, x_g, r_g, t_g, ap_g, alpha):
+    """Phase 3 of one group by value (the group's rows only): (its new rows of x, of r, its part of r.r)."""
+    x_g, r_g = np.array(x_g), np.array(r_g)
+    rr = _phase3(kern, x_g, r_g, t_g, ap_g, alpha, 0, len(x_g))
+    return x_g, r_g, rr
+
+
+class _InPlace:
+    """The three phases over the groups on the shared vectors of ``work`` (threads, or processes
+    and same-host Dask workers mapping the same files)."""
+
+    def __init__(self, sweep_map, kern, system, groups, work, omega):
+        self.map, self.kern, self.sys, self.groups, self.work, self.omega = (
+            sweep_map,
+            kern,
+            system,
+            groups,
+            work,
+            omega,
+        )
+
+    def phase1(self, beta):
+        k, s, wk = self.kern, self.sys, self.work
+        self.map(_phase1, [(k, s.U, wk.r, wk.p, wk.t, beta, self.omega, g0, g1) for g0, g1 in self.groups])
+
+    def phase2(self):
+        k, s, wk = self.kern, self.sys, self.work
+        calls = [(k, s.L, s.O, wk.p, wk.t, wk.w, wk.ap, self.omega, g0, g1) for g0, g1 in self.groups]
+        return np.sum(self.map(_phase2, calls), axis=0)
+
+    def phase3(self, alpha):
+        k, wk = self.kern, self.work
+        calls = [(k, wk.x, wk.r, wk.t, wk.ap, alpha, g0, g1) for g0, g1 in self.groups]
+        return np.sum(self.map(_phase3, calls), axis=0)
+
+
+class _ByValue(_InPlace):
+    """The same phases by value: each group's rows go to its task and its new rows come back and
+    are written here in group order. ``share(t)`` hands the whole t to the executor once a phase
+    (a Dask executor scatters it), else it travels with every call."""
+
+    def __init__(self, sweep_map, kern, system, groups, work, omega, share=None):
+        super().__init__(sweep_map, kern, system, groups, work, omega)
+        self.share = share or (lambda a: a)
+
+    def phase1(self, beta):
+        k, s, wk, n = self.kern, self.sys, self.work, self.work.x.shape[0]
+        calls = [
+            (k, s.U, np.array(wk.r[g0:g1]), np.array(wk.p[g0:g1]), beta, self.omega, g0, g1, n)
+            for g0, g1 in self.groups
+        ]
+        for (g0, g1), (p_g, t_g) in zip(self.groups, self.map(_phase1_rows, calls)):
+            wk.p[g0:g1], wk.t[g0:g1] = p_g, t_g
+
+    def phase2(self):
+        k, s, wk = self.kern, self.sys, self.work
+        t = self.share(np.array(wk.t))
+        calls = [(k, s.L, s.O, np.array(wk.p[g0:g1]), t, self.omega, g0, g1) for g0, g1 in self.groups]
+        paps = []
+        for (g0, g1), (w_g, ap_g, pap) in zip(self.groups, self.map(_phase2_rows, calls)):
+            wk.w[g0:g1], wk.ap[g0:g1] = w_g, ap_g
+            paps.append(pap)
+        return np.sum(paps, axis=0)
+
+    def phase3(self, alpha):
+        k, wk = self.kern, self.work
+        calls = [
+            (
+                k,
+                np.array(wk.x[g0:g1]),
+                np.array(wk.r[g0:g1]),
+                np.array(wk.t[g0:g1]),
+                np.array(wk.ap[g0:g1]),
+                alpha,
+            )
+            for g0, g1 in self.groups
+        ]
+        rrs = []
+        for (g0, g1), (x_g, r_g, rr) in zip(self.groups, self.map(_phase3_rows, calls)):
+            wk.x[g0:g1], wk.r[g0:g1] = x_g, r_g
+            rrs.append(rr)
+        return np.sum(rrs, axis=0)
+
+
 def _map(executor, fn, calls, order=None, sizes=None):
     """Run fn over the group calls, here in order or on an executor of :mod:`bigsmooth.parallel`
     (anything with ``map_calls(fn, calls, order, sizes)``). Results come back in the order of
@@ -381,6 +496,8 @@ def sweep_cg(
     on_sweep=None,
     omega=1.0,
     scale_start=False,
+    by_value=False,
+    share=None,
 ):
     """Solve A x = b (b of shape (n, c)) by sweep-preconditioned CG; see the module docstring.
 
@@ -398,6 +515,11 @@ def sweep_cg(
     omega : relaxation factor of the symmetric sweeps (SSOR), 0 < omega < 2; 1 = Gauss-Seidel
     scale_start : start from a_k x0_k per column with a_k = x0_k.b_k / x0_k.A x0_k, the multiple of
         x0 closest to the solution in the A-norm (so never farther than x = 0 in that norm)
+    by_value : the group tasks get their rows of the vectors by value and return their new rows,
+        which are written back here (workers that share neither memory nor coherent files with
+        this process); same result, bit for bit
+    share : with ``by_value``, a function that hands the whole t to the executor once a phase (a
+        Dask executor's scatter); by default it travels with each call
 
     Returns
     -------
@@ -414,7 +536,6 @@ def sweep_cg(
     c = b.shape[1]
     bounds = sysm.bounds
     groups = list(zip(bounds[:-1].tolist(), bounds[1:].tolist()))
-    L, U, O = sysm.L, sysm.U, sysm.O
     work = work or Work.allocate(n, c)
     nb = float(np.linalg.norm(b))
     if nb == 0.0:
@@ -431,13 +552,17 @@ def sweep_cg(
     def sweep_map(fn, calls):
         return _map(executor, fn, calls, order, sizes)
 
+    phases = (
+        _ByValue(sweep_map, kern, sysm, groups, work, omega, share)
+        if by_value
+        else _InPlace(sweep_map, kern, sysm, groups, work, omega)
+    )
+
     def forward_solve(v):
         """w = E^-1 v (one forward sweep with t = 0; p is scratch, ap and pap are by-products)."""
         work.t[:] = 0.0
         work.p[:] = v
-        sweep_map(
-            _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1) for g0, g1 in groups]
-        )
+        phases.phase2()
         return work.w
 
     def true_residual():
@@ -492,20 +617,11 @@ def sweep_cg(
         if res <= tol:
             status = STATUS_CONVERGED
     while status != STATUS_CONVERGED and state["sweep"] < max_sweeps:
-        beta = state["beta"]
-        sweep_map(_phase1, [(kern, U, work.r, work.p, work.t, beta, omega, g0, g1) for g0, g1 in groups])
-        pap = np.sum(
-            sweep_map(
-                _phase2, [(kern, L, O, work.p, work.t, work.w, work.ap, omega, g0, g1) for g0, g1 in groups]
-            ),
-            axis=0,
-        )
+        phases.phase1(state["beta"])
+        pap = phases.phase2()
         rho = state["rho"]
         alpha = np.divide(rho, pap, out=np.zeros(c), where=pap > 0)
-        rr = np.sum(
-            sweep_map(_phase3, [(kern, work.x, work.r, work.t, work.ap, alpha, g0, g1) for g0, g1 in groups]),
-            axis=0,
-        )
+        rr = phases.phase3(alpha)
         state["beta"] = np.divide(rr, rho, out=np.zeros(c), where=rho > 0)
         state["rho"] = rr
         state["sweep"] += 1

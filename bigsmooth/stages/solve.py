@@ -224,6 +224,7 @@ class Problem:
     task_executor: object = (
         None  # () -> a Dask executor when run.engine = "dask" (the group sweeps are its tasks)
     )
+    by_value: bool = False  # the group sweeps' tasks get and return their rows by value (run.dask_solve)
 
 
 def _sweep_tasks(ctx):
@@ -232,6 +233,8 @@ def _sweep_tasks(ctx):
     run = ctx.cfg["run"]
     if run["engine"] != "dask" or run["dask_solve"] == "never":
         return None
+    if run["dask_solve"] == "by-value":
+        return ctx.task_executor
     if run["dask_solve"] == "same-host":
         ex = ctx.task_executor()
         try:
@@ -266,7 +269,7 @@ def _sweep_cg(pb):
     atomic.release_pages(split.degree)
     del split
     with contextlib.ExitStack() as stack:
-        if s["backend"] == "processes" or pb.task_executor is not None:
+        if s["backend"] == "processes" or (pb.task_executor is not None and not pb.by_value):
             # process workers and Dask workers map the solver's vectors as files too (Dask's in
             # the run directory, which every worker mounts)
             work = stack.enter_context(
@@ -343,11 +346,22 @@ def _sweep_cg_on(pb, system, bounds, work):
             )
 
     nw = workers_for(s)
+    share = None
     if pb.task_executor is not None:
         executor = pb.task_executor()
-        # a sweep updates the vectors in place: a task must not run twice (see _sweep_cg)
-        executor.run_once(os.path.join(art.SOLVE_WORK.path(pb.rundir), "started"), "solve:task")
-        log.info("group sweeps: %d groups a phase as tasks on %s", len(bounds) - 1, executor.describe())
+        if pb.by_value:
+            # a task gets its group's rows and returns its new rows (written back here): it writes
+            # nothing, so it may run twice; the whole t goes to the cluster once a phase
+            share = executor.share
+            executor.fault_points("solve:task")
+            how = "rows by value"
+        else:
+            # a sweep updates the vectors in place: a task must not run twice (see _sweep_cg)
+            executor.run_once(os.path.join(art.SOLVE_WORK.path(pb.rundir), "started"), "solve:task")
+            how = "vectors in memory-mapped files"
+        log.info(
+            "group sweeps: %d groups a phase as tasks on %s (%s)", len(bounds) - 1, executor.describe(), how
+        )
     else:
         executor = pb.make_executor(nw, s["backend"])
     try:
@@ -365,6 +379,8 @@ def _sweep_cg_on(pb, system, bounds, work):
             work=work,
             state=state,
             on_sweep=on_sweep,
+            by_value=pb.by_value,
+            share=share,
         )
     finally:
         # process workers too: they keep the vectors' files mapped, so their memory goes with them
@@ -519,8 +535,9 @@ def run(ctx):
             # back from solve/x0.npy
             cold = not info.get("warm_start", {}).get("used", False)
             tasks = _sweep_tasks(ctx)
+            by_value = tasks is not None and ctx.cfg["run"]["dask_solve"] == "by-value"
             Xp, more = _sweep_cg(
-                Problem(rundir, s, Y, c_eff, b, perm, X0, cold, ck_path, ctx.executor, tasks)
+                Problem(rundir, s, Y, c_eff, b, perm, X0, cold, ck_path, ctx.executor, tasks, by_value)
             )
         else:
             A = _system(W, s, cvec, c_eff)

@@ -24,8 +24,8 @@ def cluster():
         yield c
 
 
-def _case(path, engine, address=""):
-    """3,000 rows in three input files (so publishing is three tasks)."""
+def _case(path, engine, address="", solve="same-host"):
+    """3,000 rows in three input files (so publishing is three tasks); ``solve``: run.dask_solve."""
     path.mkdir()
     cfg = _write_case(path, _small_table(3000, seed=51), PARTITIONED)
     whole = pq.read_table(path / "in" / "part-0.parquet")
@@ -36,7 +36,9 @@ def _case(path, engine, address=""):
     assert "[graph]" in text and "[run]" in text  # the demo's config template has both sections
     text = text.replace("[graph]", '[graph]\nbuild = "partitioned"\npartition_rows = 900', 1)
     if engine == "dask":
-        text = text.replace("[run]", f'[run]\nengine = "dask"\ndask_scheduler = "{address}"', 1)
+        text = text.replace(
+            "[run]", f'[run]\nengine = "dask"\ndask_scheduler = "{address}"\ndask_solve = "{solve}"', 1
+        )
     cfg.write_text(text)
     return cfg
 
@@ -91,6 +93,24 @@ def test_a_worker_killed_in_embed_publish_or_a_sweep_costs_nothing(cluster, loca
     assert sentinel.exists()
     if point.startswith("solve"):
         assert "goes back to its last checkpoint" in res.stderr, res.stderr[-3000:]
+    got = _published(tmp_path / "case")
+    assert len(got["applicant_id"]) == 3000 and len(set(got["applicant_id"].tolist())) == 3000
+    _assert_same(got, local_output)
+
+
+def test_sweeps_by_value_publish_what_the_local_engine_publishes_and_survive_a_killed_worker(
+    cluster, local_output, tmp_path
+):
+    """run.dask_solve = "by-value" (for workers on other hosts): a group-sweep task gets its rows
+    of the solver's vectors and returns its new rows, so a task whose worker dies simply runs
+    again (no return to the checkpoint); the output is bit-identical to the local engine's."""
+    cfg = _case(tmp_path / "case", "dask", cluster.scheduler_address, solve="by-value")
+    sentinel = tmp_path / "killed-once"
+    res = cli("run", str(cfg), env={"BIGSMOOTH_FAULT": f"solve:task:4=kill-once:{sentinel}"})
+    assert res.returncode == 0, res.stderr[-3000:]
+    assert sentinel.exists()  # a sweep task's worker was killed
+    assert "group sweeps: " in res.stderr and "(rows by value)" in res.stderr
+    assert "goes back to its last checkpoint" not in res.stderr
     got = _published(tmp_path / "case")
     assert len(got["applicant_id"]) == 3000 and len(set(got["applicant_id"].tolist())) == 3000
     _assert_same(got, local_output)

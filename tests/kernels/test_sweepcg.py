@@ -112,6 +112,33 @@ def test_bit_identical_for_one_and_two_workers(rng, tmp_path, backend):
     assert np.array_equal(two.x, serial.x)
 
 
+@pytest.mark.parametrize("workers", [1, 2])
+def test_sweeps_by_value_are_bit_identical_to_sweeps_in_place(rng, workers):
+    """The phases by value (a group's rows go out, its new rows come back: for Dask workers on other
+    hosts) against the phases on shared vectors, cold and warm starts, serial and on two threads;
+    and both against scipy's spsolve."""
+    W, Y, A, b = _system(rng, n=2000, density=0.004, cols=2)
+    system = sweepcg.prepare(A, [0, 300, 700, 1200, 1600, 2000])
+    shared = []
+    for x0 in (None, Y):
+        in_place = sweepcg.sweep_cg(system, b, x0=x0, tol=1e-10)
+        by_value = sweepcg.sweep_cg(
+            system,
+            b,
+            x0=x0,
+            tol=1e-10,
+            by_value=True,
+            executor=parallel.make_executor(workers, "threads"),
+            share=lambda t: shared.append(t) or t,
+        )
+        assert by_value.sweeps == in_place.sweeps > 2
+        assert by_value.residuals == in_place.residuals
+        assert np.array_equal(by_value.x, in_place.x)
+        ref = spla.spsolve(A.tocsc(), b)  # scipy's direct solve
+        assert np.abs(by_value.x - ref).max() < 1e-7 * np.abs(ref).max()
+    assert len(shared) > 4  # t handed over once a phase 2
+
+
 def test_process_workers_follow_files_replaced_under_the_same_name(rng, tmp_path):
     # the workers keep files mapped between tasks; a system written again to the same file names
     # (in place, same size: np.save truncates the same file; or removed and written with another
