@@ -5,8 +5,10 @@ The system is permuted into the order stage's group ordering and solved by
 - ``sweep-cg`` (default): conjugate gradients preconditioned by symmetric Gauss-Seidel sweeps over
   the block groups (:mod:`bigsmooth.kernels.sweepcg`), groups swept in parallel by joblib workers
   (threads or loky processes over memmaps in the run directory), or as tasks on the Dask cluster
-  when run.engine = "dask" (the vectors are memory-mapped files in the run directory; a sweep
-  task that runs twice because its worker died sends the solver back to its last checkpoint);
+  when run.engine = "dask": by default the vectors are memory-mapped files in the run directory
+  and a sweep task that runs twice because its worker died sends the solver back to its last
+  checkpoint; with run.dask_solve = "by-value" a task gets its group's rows and returns its new
+  rows (for workers on other hosts; a task that runs twice does no harm);
 - ``blocks``: plain blocked coordinate descent (block Gauss-Seidel);
 - ``direct``: a sparse direct solve (small tables; the reference).
 
