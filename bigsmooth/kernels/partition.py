@@ -20,6 +20,7 @@ import scipy.sparse as sp
 SAMPLE_ROWS = 100_000  # rows sampled to train the centres
 FILL = 0.6  # partitions are planned at this share of the cap, then split where they overflow
 ROW_BLOCK, COL_BLOCK = 256, 2048  # a float32 tile of the ranking products (2 MB, kept in the core's cache)
+SQUARE = 256  # the side of the square tiles of a search inside one partition (each computed once)
 SLACK = 3  # candidates kept beyond those asked for, so that float32 round-off cannot lose one
 
 
@@ -64,6 +65,57 @@ def _tiled_smallest(A, B, kk, skip_offset=None, row_block=None, col_block=None):
             merge_into(g=tile, col_offset=c, skip_offset=skip, out_ind=part_b, out_val=val_b)
         out[s:e] = part_b
     return out
+
+
+def _augmented_full(X):
+    """([-2 x, 1, ||x||^2] (n, d + 2), [x, ||x||^2, 1]^T (d + 2, n)) in float32: their product is
+    the full squared distance ||x||^2 - 2 x.y + ||y||^2, the same for (x, y) and (y, x), so one
+    product serves the rows of both sides."""
+    X32 = np.ascontiguousarray(X, dtype=np.float32)
+    d = X32.shape[1]
+    sq = _sq(np.asarray(X, dtype=np.float64))
+    A = np.empty((X32.shape[0], d + 2), dtype=np.float32)
+    A[:, :d] = -2.0 * X32
+    A[:, d] = 1.0
+    A[:, d + 1] = sq
+    B = np.empty((d + 2, X32.shape[0]), dtype=np.float32)
+    B[:d] = X32.T
+    B[d] = sq
+    B[d + 1] = 1.0
+    return A, B
+
+
+def _tiled_smallest_within(A, B, kk, side=None):
+    """(m, kk) int64: per row i, the kk columns j != i with the smallest (A @ B)[i, j] (float32),
+    ascending by (value, column), for a symmetric product (:func:`_augmented_full` of one set of
+    rows). Each square tile above the diagonal is computed once and merged twice: into its rows'
+    lists, and transposed (the compiled ``transpose_tile``) into its columns' lists, so about half
+    the products of :func:`_tiled_smallest`. Tiles are visited by row block, then column block,
+    both ascending, so every row's list receives its columns in ascending order and keeps the
+    lower column at a tie, as :func:`_tiled_smallest` does. (The transposed tile's values are the
+    product's (i, j) entries standing for (j, i): equal up to float32 round-off, which the float64
+    re-ranking of the candidates absorbs.)"""
+    m = A.shape[0]
+    side = side or SQUARE
+    merge_into, transpose = _merger(), _transposer()
+    ind = np.full((m, kk), -1, dtype=np.int64)
+    val = np.full((m, kk), np.inf, dtype=np.float32)
+    g = np.empty((side, side), dtype=np.float32)
+    gt = np.empty((side, side), dtype=np.float32)
+    never = -(2 * m + 1)  # a skip offset that matches no column
+    for s in range(0, m, side):
+        e = min(s + side, m)
+        for c in range(s, m, side):
+            ce = min(c + side, m)
+            tile = g[: e - s, : ce - c]
+            np.matmul(A[s:e], B[:, c:ce], out=tile)
+            skip = s if c == s else never
+            merge_into(g=tile, col_offset=c, skip_offset=skip, out_ind=ind[s:e], out_val=val[s:e])
+            if c != s:
+                back = gt[: ce - c, : e - s]
+                transpose(g=tile, out=back)
+                merge_into(g=back, col_offset=s, skip_offset=never, out_ind=ind[c:ce], out_val=val[c:ce])
+    return ind
 
 
 def nearest_centres(E, centres, m, chunk=None, map_fn=map, values=False):
@@ -257,23 +309,25 @@ def members(membership, parts):
     return ptr, row[order]
 
 
-def exact_in(X, k, row_block=None, col_block=None, slack=SLACK):
+def exact_in(X, k, side=None, slack=SLACK):
     """Exact k nearest neighbours among the rows of X (m, d), each row excluding itself:
     (local ind (m, k), dist (m, k) float64) ascending by (distance, index).
 
-    Candidates are ranked by ||x_j||^2 - 2 x_i.x_j in float32 (the row's own ||x_i||^2 does not
-    change the ranking; the embedding is float32 to begin with), computed as one matrix product of
-    [-2 x_i, 1] and [x_j, ||x_j||^2] per tile of ``row_block`` x ``col_block`` (small enough to stay
-    in the core's cache while the compiled pass merges it into each row's k + ``slack`` best). The
-    chosen distances are then computed directly in float64 and the best k kept, so round-off of the
-    expanded form can only matter for a neighbour tied within it at the k-th place. Reference:
-    :func:`graph.exact_knn` (tests/kernels/test_partition.py)."""
+    Candidates are ranked by the squared distance ||x_i||^2 - 2 x_i.x_j + ||x_j||^2 in float32 (the
+    embedding is float32 to begin with), computed as one matrix product of [-2 x_i, 1, ||x_i||^2]
+    and [x_j, ||x_j||^2, 1] per square tile of ``side`` rows (small enough to stay in the core's
+    cache while the compiled pass merges it into each row's k + ``slack`` best); the product is
+    symmetric, so each tile above the diagonal serves both its rows and its columns
+    (:func:`_tiled_smallest_within`). The chosen distances are then computed directly in float64
+    and the best k kept, so round-off of the expanded form can only matter for a neighbour tied
+    within it at the k-th place. Reference: :func:`graph.exact_knn` and sklearn's brute-force
+    search (tests/kernels/test_partition.py)."""
     m = X.shape[0]
     X64 = np.asarray(X, dtype=np.float64)
-    A, B = _augmented(X)
+    A, B = _augmented_full(X)
     kk = min(m - 1, k + slack)
-    row_block = row_block or ROW_BLOCK
-    cand = _tiled_smallest(A, B, kk, skip_offset=0, row_block=row_block, col_block=col_block)
+    row_block = side or SQUARE
+    cand = _tiled_smallest_within(A, B, kk, side=row_block)
     ind = np.empty((m, k), dtype=np.int64)
     dist = np.empty((m, k))
     for s in range(0, m, row_block):
@@ -293,6 +347,15 @@ def _merger():
     except ImportError:
         from .twins import smallest_merge
     return smallest_merge
+
+
+def _transposer():
+    """The compiled tile transpose (kernels._fast.transpose_tile), or its twin without numba."""
+    try:
+        from ._fast import transpose_tile
+    except ImportError:
+        from .twins import transpose_tile
+    return transpose_tile
 
 
 def search_partition(E, rows, k):

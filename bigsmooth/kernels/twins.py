@@ -85,6 +85,10 @@ def smallest_merge(g, col_offset, skip_offset, out_ind, out_val):
         out_ind[i, : len(order)] = c[order]
 
 
+def transpose_tile(g, out):
+    out[:] = g.T
+
+
 def max_merge_fill(rows, cols, w, lo, out_ptr, out_cols, out_w):
     nr = len(out_ptr) - 1
     n = int(cols.max()) + 1 if len(cols) else 1
@@ -155,6 +159,7 @@ def registry():
         "split_residual_sq": split_residual_sq,
         "inside_edges": inside_edges,
         "smallest_merge": smallest_merge,
+        "transpose_tile": transpose_tile,
         "max_merge_fill": max_merge_fill,
         "merge_lists": merge_lists,
         "refine_lists": refine_lists,

@@ -103,6 +103,11 @@ def _inputs(name, rng):
         ind, val = np.full((40, 12), -1, np.int64), np.full((40, 12), np.inf)
         twins.smallest_merge(g0, 0, 280, ind, val)
         return [g, 300, 280, ind, val], [3, 4]
+    if name == "transpose_tile":
+        # sides that are not multiples of the 8 x 8 blocks
+        g = rng.random((21, 35)).astype(np.float32)
+        out = np.zeros((35, 21), np.float32)
+        return [g, out], [1]
     if name == "max_merge_fill":
         # directed edges of rows 50..250 in both directions, some pairs repeated with other weights
         r = rng.integers(50, 250, 3000)

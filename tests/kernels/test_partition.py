@@ -41,6 +41,26 @@ def test_exact_search_inside_a_partition_equals_sklearn(rng):
     np.testing.assert_allclose(dist, ref_d, rtol=0, atol=1e-12)
 
 
+@pytest.mark.parametrize("side", [8, 37, 256])
+def test_square_tiles_of_any_side_give_the_exact_search(rng, side):
+    """Each tile above the diagonal is computed once and merged into its rows' and (transposed)
+    its columns' lists: with tiles that do not divide the rows, and with exact ties (duplicated
+    rows), the result is still the exact search. Reference: scipy's cdist (direct Euclidean
+    distances in float64) fully sorted by (distance, index), so ties at the k-th place are
+    broken by index as the search promises."""
+    from scipy.spatial.distance import cdist
+
+    E = _clustered(rng, n=601)
+    E[300:310] = E[100:110]  # duplicates: tied with each other as neighbours of any other row
+    D = cdist(E.astype(np.float64), E.astype(np.float64))
+    np.fill_diagonal(D, np.inf)
+    cols = np.broadcast_to(np.arange(len(E)), D.shape)
+    ref_i = np.lexsort((cols, D), axis=1)[:, :6]
+    ind, dist = pt.exact_in(E, 6, side=side)
+    np.testing.assert_array_equal(ind, ref_i)
+    np.testing.assert_allclose(dist, np.take_along_axis(D, ref_i, axis=1), rtol=0, atol=1e-12)
+
+
 def test_one_partition_is_the_exact_whole_table_search(rng):
     E = _clustered(rng, n=2000)
     ind, dist, membership, sizes = _build(E, cap=5000, overlap=2, k=6)
